@@ -1,0 +1,88 @@
+"""The notebook-facing API: run a study, get its traces as a pandas DataFrame."""
+
+from __future__ import annotations
+
+import os
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+
+from .runner import replay
+from .spec import Study, load_study
+from .store import read_results, results_dir, write_results
+
+__all__ = ["StudyResult", "run_study", "load_results"]
+
+
+@dataclass
+class StudyResult:
+    """A finished study: the resolved study, its traces and where they were written."""
+
+    study: Study
+    traces: pd.DataFrame
+    path: Path | None = None
+
+    def final(self, budget: int | None = None) -> pd.DataFrame:
+        """Rows at one budget (default the largest): one per policy and replicate."""
+        budget = budget or self.study.campaign.horizon
+        return self.traces[self.traces["trial"] == budget]
+
+    def table(self) -> pd.DataFrame:
+        """Median regret with quartiles and the share within the target, per policy and budget."""
+        rows = []
+        for b in self.study.campaign.budgets:
+            at = self.traces[self.traces["trial"] == b]
+            for label, g in at.groupby("policy", observed=True, sort=False):
+                q = g["regret"].quantile([0.25, 0.5, 0.75]).to_numpy()
+                rows.append({"policy": label, "budget": b, "replicates": len(g),
+                             "regret_median": q[1], "regret_q25": q[0], "regret_q75": q[2],
+                             "within_target": float((g["regret"] <= self.study.target).mean())})
+        return pd.DataFrame(rows)
+
+
+def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.PathLike | None = None,
+              write: bool = True, progress: bool = False) -> StudyResult:
+    """Replay every policy on every replicate and (by default) write the results folder.
+
+    Parameters
+    ----------
+    study : Study or path
+        A study from :func:`simlab.load_study`, or the path of a study file.
+    jobs : int
+        Worker processes; traces are identical for any value.
+    out : path, optional
+        Results folder; default ``results/<study name>``.
+    write : bool
+        Write ``traces.parquet`` and ``study.toml``.
+    progress : bool
+        Show a progress bar (tqdm) on standard error.
+    """
+    if not isinstance(study, Study):
+        study = load_study(study)
+    from . import __version__
+
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+        bar = tqdm(total=study.replicates * len(study.policies), unit="campaign", desc=study.name,
+                   smoothing=0.1)
+    try:
+        traces = replay(study, jobs=jobs, progress=bar.update if bar else None)
+    finally:
+        if bar is not None:
+            bar.close()
+    for message in traces.attrs.get("warnings", ()):
+        warnings.warn(message, RuntimeWarning, stacklevel=2)
+    path = None
+    if write:
+        path = results_dir(study, out)
+        write_results(path, study, traces, version=__version__)
+    return StudyResult(study=study, traces=traces, path=path)
+
+
+def load_results(path: str | os.PathLike) -> StudyResult:
+    """Read a results folder written by :func:`run_study`."""
+    study, traces = read_results(path)
+    return StudyResult(study=study, traces=traces, path=Path(path))

@@ -1,0 +1,176 @@
+"""Command line: argparse subcommands; parsing and printing only, the work is in the API."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+import warnings
+
+__all__ = ["main"]
+
+_EPILOG_RUN = """\
+examples:
+  simlab run configs/demo.toml
+  simlab run configs/demo.toml --jobs 2 --replicates 50 --out /tmp/demo-small
+"""
+_EPILOG_CHECK = """\
+examples:
+  simlab check configs/demo.toml
+  simlab check configs/demo.toml --no-timing
+"""
+_EPILOG_REPORT = """\
+examples:
+  simlab report results/pilot-extruder
+"""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit code 2, as for every user mistake
+        self.exit(2, f"{self.prog}: error: {message}\n")
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number; got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be >= 1; got {value}")
+    return value
+
+
+def _jobs(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number (-1 for all cores); got {text!r}") from None
+    if value == 0 or value < -1:
+        raise argparse.ArgumentTypeError(f"must be >= 1, or -1 for all cores; got {value}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="simlab", description="Replay Bayesian-optimisation campaigns on synthetic worlds drawn "
+                "from your own Gaussian-process prior, to choose a policy and a trial budget.",
+                formatter_class=argparse.RawDescriptionHelpFormatter,
+                epilog="run `simlab COMMAND --help` for each command's options and examples")
+    p.add_argument("--version", action="version", version=f"simlab {_version()}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    run = sub.add_parser("run", help="replay the study and write the results folder",
+                         description="Replay every policy on every replicate world, write "
+                         "traces.parquet and study.toml, and print a summary table.",
+                         epilog=_EPILOG_RUN, formatter_class=argparse.RawDescriptionHelpFormatter)
+    run.add_argument("study", metavar="STUDY.toml")
+    run.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="worker processes (-1: all cores; default 1)")
+    run.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
+    run.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
+    run.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    check = sub.add_parser("check", help="validate a study and estimate its cost",
+                           description="Validate the study file, print it with every default filled in, "
+                           "and estimate the work (timed on one replicate unless --no-timing).",
+                           epilog=_EPILOG_CHECK, formatter_class=argparse.RawDescriptionHelpFormatter)
+    check.add_argument("study", metavar="STUDY.toml")
+    check.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
+    check.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="workers to plan for (default 1)")
+    check.add_argument("--no-timing", action="store_true", help="skip the one-replicate timing run")
+
+    report = sub.add_parser("report", help="summarise a results folder again from its stored traces",
+                            description="Read traces.parquet and study.toml from a results folder and print "
+                            "the summary table, without replaying any campaign.",
+                            epilog=_EPILOG_REPORT, formatter_class=argparse.RawDescriptionHelpFormatter)
+    report.add_argument("folder", metavar="DIR")
+    return p
+
+
+def _version() -> str:
+    from . import __version__
+    return __version__
+
+
+def main(argv=None) -> int:
+    args = build_parser().parse_args(argv)
+    from .spec import StudyError
+    try:
+        return {"run": _run, "check": _check, "report": _report}[args.command](args)
+    except StudyError as exc:
+        print(f"simlab: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("simlab: interrupted", file=sys.stderr)
+        return 130
+
+
+def _load(args):
+    from .spec import load_study
+    study = load_study(args.study)
+    if getattr(args, "replicates", None):
+        study = study.with_replicates(args.replicates)
+    return study
+
+
+def _run(args) -> int:
+    from .api import run_study
+    study = _load(args)
+    t0 = time.perf_counter()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", RuntimeWarning)
+        result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
+    for msg in sorted({str(w.message) for w in caught}):
+        print(f"simlab: warning: {msg}", file=sys.stderr)
+    print(_format_table(result))
+    print(f"\n{study.replicates} replicates x {len(study.policies)} policies in "
+          f"{time.perf_counter() - t0:.1f} s; results in {result.path}")
+    return 0
+
+
+def _check(args) -> int:
+    from .spec import dump_study
+    study = _load(args)
+    print(dump_study(study), end="")
+    c = study.campaign
+    campaigns = study.replicates * len(study.policies)
+    print(f"\n# work: {study.replicates} replicates x {len(study.policies)} policies = {campaigns} campaigns "
+          f"of {c.horizon} trials ({campaigns * c.horizon:,} trials; {c.initial} initial per campaign)")
+    if not args.no_timing:
+        from .runner import replay_replicate
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t0 = time.perf_counter()
+            replay_replicate(study, 0)
+            per = time.perf_counter() - t0
+        workers = args.jobs if args.jobs > 0 else (__import__("os").cpu_count() or 1)
+        total = per * study.replicates / workers
+        print(f"# timing: one replicate took {per:.2f} s here; the study needs about {_duration(total)} "
+              f"with --jobs {workers} (first replicate timed, so treat this as a rough guide)")
+    return 0
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def _report(args) -> int:
+    from .api import load_results
+    result = load_results(args.folder)
+    print(_format_table(result))
+    return 0
+
+
+def _format_table(result) -> str:
+    t = result.table()
+    target = result.study.target
+    lines = [f"simple regret of the recommendation (objective units; target: regret <= {target:g})", ""]
+    header = f"{'policy':<20} {'budget':>6}  {'median regret [q25, q75]':<32} {'within target':>13}"
+    lines += [header, "-" * len(header)]
+    for row in t.itertuples():
+        band = f"{row.regret_median:.3g} [{row.regret_q25:.3g}, {row.regret_q75:.3g}]"
+        lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<32} {row.within_target:>12.0%}")
+    return "\n".join(lines)

@@ -1,0 +1,176 @@
+"""Stationary kernels on the unit cube: value, gradient in the inputs, spectral samples."""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["Kernel", "SquaredExponential", "Matern12", "Matern32", "Matern52", "KERNELS", "make_kernel"]
+
+_S3, _S5 = np.sqrt(3.0), np.sqrt(5.0)
+
+
+class Kernel:
+    """A stationary kernel ``k(a, b) = amplitude**2 * rho(r)`` with scaled distance
+    ``r = ||(a - b) / lengthscale||``.
+
+    A new kernel implements two profile functions of ``r`` and, for world draws and
+    Thompson sampling, :meth:`_spectral_scale`.
+
+    Parameters
+    ----------
+    lengthscale : array_like of shape (d,)
+        One lengthscale per input, in the units the inputs are given in (simlab passes
+        unit-cube inputs, so lengthscales are divided by the input ranges first).
+    amplitude : float
+        Prior standard deviation.
+    """
+
+    name = "kernel"
+    nu = np.inf  # smoothness: Matérn nu, inf for the squared exponential
+
+    def __init__(self, lengthscale, amplitude: float = 1.0):
+        self.lengthscale = np.atleast_1d(np.asarray(lengthscale, dtype=float))
+        self.amplitude = float(amplitude)
+        self.variance = self.amplitude**2
+
+    @property
+    def dim(self) -> int:
+        return self.lengthscale.size
+
+    # profile functions of the scaled distance r (rho(0) = 1)
+    def _rho(self, r):  # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def _drho_over_r(self, r):  # pragma: no cover - abstract
+        """d rho / d r divided by r (finite at r = 0 for differentiable kernels)."""
+        raise NotImplementedError
+
+    def _spectral_scale(self, rng, n):  # pragma: no cover - abstract
+        """Per-frequency radial factors s so that omega = z * s / lengthscale, z ~ N(0, I)."""
+        raise NotImplementedError
+
+    def _diff(self, A, B):
+        A = np.asarray(A, dtype=float) / self.lengthscale
+        B = np.asarray(B, dtype=float) / self.lengthscale
+        return A[:, None, :] - B[None, :, :]
+
+    def _dist(self, A, B):
+        A = np.asarray(A, dtype=float) / self.lengthscale
+        B = np.asarray(B, dtype=float) / self.lengthscale
+        # |a|^2 + |b|^2 - 2ab is fast but loses digits near r = 0, where the Matérn
+        # kernels are steepest; clip and use the exact form for tiny distances.
+        sq = (A * A).sum(1)[:, None] + (B * B).sum(1)[None, :] - 2.0 * A @ B.T
+        np.maximum(sq, 0.0, out=sq)
+        return np.sqrt(sq)
+
+    def __call__(self, A, B=None) -> np.ndarray:
+        """Covariance matrix of shape (n, m) between rows of A (n, d) and B (m, d)."""
+        B = A if B is None else B
+        if A.shape[0] * B.shape[0] <= 4096:
+            r = np.sqrt((self._diff(A, B) ** 2).sum(-1))
+        else:
+            r = self._dist(A, B)
+        return self.variance * self._rho(r)
+
+    def diag(self, A) -> np.ndarray:
+        """``k(a, a)`` for each row of A: shape (n,)."""
+        return np.full(np.asarray(A).shape[0], self.variance)
+
+    def grad(self, A, B) -> np.ndarray:
+        """Gradient of ``k(a, b)`` with respect to ``a``: shape (n, m, d).
+
+        Notes
+        -----
+        dk/da = amplitude**2 * rho'(r) / r * (a - b) / lengthscale**2.
+        """
+        diff = self._diff(A, B)  # (n, m, d), already divided by lengthscale
+        r = np.sqrt((diff**2).sum(-1))
+        return (self.variance * self._drho_over_r(r))[..., None] * diff / self.lengthscale
+
+    def spectral(self, rng: np.random.Generator, n: int) -> np.ndarray:
+        """Draw n angular frequencies (n, d) from the kernel's normalised spectral density.
+
+        References
+        ----------
+        Rahimi & Recht (2007), Random Features for Large-Scale Kernel Machines.
+        Rasmussen & Williams (2006), Gaussian Processes for Machine Learning, section 4.2.
+        """
+        z = rng.standard_normal((n, self.dim))
+        return z * self._spectral_scale(rng, n)[:, None] / self.lengthscale
+
+    def __repr__(self):
+        ls = ", ".join(f"{v:.4g}" for v in self.lengthscale)
+        return f"{type(self).__name__}(lengthscale=[{ls}], amplitude={self.amplitude:.4g})"
+
+
+class SquaredExponential(Kernel):
+    """rho(r) = exp(-r^2 / 2); spectral density N(0, lengthscale^-2 I)."""
+
+    name = "sqexp"
+
+    def _rho(self, r):
+        return np.exp(-0.5 * r * r)
+
+    def _drho_over_r(self, r):
+        return -np.exp(-0.5 * r * r)
+
+    def _spectral_scale(self, rng, n):
+        return np.ones(n)
+
+
+class _Matern(Kernel):
+    """Matérn kernels: spectral density is a multivariate Student-t with 2 nu degrees of freedom."""
+
+    def _spectral_scale(self, rng, n):
+        # omega = (z / l) * sqrt(2 nu / u), u ~ chi^2(2 nu)  (REFERENCES.md, random features)
+        u = rng.chisquare(2.0 * self.nu, size=n)
+        return np.sqrt(2.0 * self.nu / u)
+
+
+class Matern12(_Matern):
+    """rho(r) = exp(-r) (the exponential kernel; not differentiable at r = 0)."""
+
+    name, nu = "matern12", 0.5
+
+    def _rho(self, r):
+        return np.exp(-r)
+
+    def _drho_over_r(self, r):
+        # -exp(-r) / r; at r = 0 the kernel has a kink and we return the zero subgradient.
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out = -np.exp(-r) / r
+        return np.where(r > 0, out, 0.0)
+
+
+class Matern32(_Matern):
+    """rho(r) = (1 + sqrt3 r) exp(-sqrt3 r)."""
+
+    name, nu = "matern32", 1.5
+
+    def _rho(self, r):
+        return (1.0 + _S3 * r) * np.exp(-_S3 * r)
+
+    def _drho_over_r(self, r):
+        return -3.0 * np.exp(-_S3 * r)
+
+
+class Matern52(_Matern):
+    """rho(r) = (1 + sqrt5 r + 5 r^2 / 3) exp(-sqrt5 r)."""
+
+    name, nu = "matern52", 2.5
+
+    def _rho(self, r):
+        return (1.0 + _S5 * r + (5.0 / 3.0) * r * r) * np.exp(-_S5 * r)
+
+    def _drho_over_r(self, r):
+        return -(5.0 / 3.0) * (1.0 + _S5 * r) * np.exp(-_S5 * r)
+
+
+KERNELS: dict[str, type[Kernel]] = {k.name: k for k in (SquaredExponential, Matern12, Matern32, Matern52)}
+
+
+def make_kernel(name: str, lengthscale, amplitude: float) -> Kernel:
+    """Kernel from its study-file name; an unknown name lists the valid ones."""
+    if name not in KERNELS:
+        raise ValueError(f"kernel must be one of {', '.join(KERNELS)}; got {name!r}")
+    return KERNELS[name](lengthscale, amplitude)
