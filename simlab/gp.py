@@ -62,6 +62,7 @@ class Posterior:
         self._V = np.empty((self._cap, m))
         self._pool_mu = np.full(m, self.mean)
         self._pool_vsq = np.zeros(m)
+        self._alpha = None  # cached (K + s2 I)^-1 (y - m), cleared by every update
         self.n = 0
 
     # ------------------------------------------------------------------ state
@@ -105,6 +106,7 @@ class Posterior:
     def add(self, x, y: float) -> None:
         """Condition on one more observation ``y`` at ``x`` (shape (d,))."""
         x = np.asarray(x, dtype=float).reshape(-1)
+        self._alpha = None
         self._grow(1)
         n = self.n
         k = self.kernel(self._X[:n], x[None, :])[:, 0]
@@ -141,6 +143,7 @@ class Posterior:
     def _refactor(self, *, escalate: bool) -> None:
         """Factor from scratch, raising the jitter tenfold until the Cholesky succeeds."""
         n = self.n
+        self._alpha = None
         K = self.kernel(self._X[:n])
         if escalate:
             self.jitter = max(10.0 * self.jitter, 1e-8)
@@ -174,7 +177,9 @@ class Posterior:
 
     def alpha(self) -> np.ndarray:
         """``(K + s2 I)^-1 (y - m)``, shape (n,)."""
-        return solve_triangular(self.L, self._z[: self.n], lower=True, trans="T", check_finite=False)
+        if self._alpha is None:
+            self._alpha = solve_triangular(self.L, self._z[: self.n], lower=True, trans="T", check_finite=False)
+        return self._alpha
 
     def moments(self, Xq, *, grad: bool = False):
         """Posterior mean and sd at arbitrary inputs.

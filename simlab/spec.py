@@ -28,6 +28,12 @@ WORLD_METHODS = ("features", "grid")
 # Columns of traces.parquet that an input name must not shadow.
 RESERVED = ("policy", "replicate", "trial", "y", "f", "regret", "regret_seen", "initial",
             "history", "round", "rec_trial", "lost")
+_SECTION_KEYS = {
+    "study": ("name", "goal", "replicates", "seed"),
+    "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function"),
+    "campaign": ("initial", "design", "budgets", "pool"),
+    "target": ("regret",),
+}
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
 
 
@@ -85,7 +91,7 @@ class WorldSpec:
     noise: float
     method: str = "features"     # features | grid
     features: int = 1024         # spectral frequencies per feature draw (2x as many basis functions)
-    grid: int = 0                # grid points per input for method = "grid" (0: default for the dimension)
+    grid: int = 40               # grid points per input for method = "grid"
 
 
 @dataclass(frozen=True)
@@ -177,7 +183,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     r.keys(data, "", ("study", "space", "world", "belief", "campaign", "target", "policy"))
 
     st = r.table(data, "study", required=False)
-    r.keys(st, "study", ("name", "goal", "replicates", "seed"))
+    r.keys(st, "study", _SECTION_KEYS["study"])
     name = r.string(st, "study.name", default=default_name)
     if not _NAME.match(name):
         r.fail("study.name", f"must be a folder-safe name (letters, digits, _ . -); got {name!r}")
@@ -200,14 +206,14 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         world_prior = None
     else:
         space = _read_space(r, data, fn=None)
-        r.keys(wt, "world", ("kernel", "lengthscale", "amplitude", "mean", "noise",
-                             "method", "features", "grid", "function"))
+        r.keys(wt, "world", _SECTION_KEYS["world"])
         world_prior = _read_prior(r, wt, "world", space, base=None)
         method = r.choice(wt, "world.method", WORLD_METHODS, default="features")
         if method == "grid" and space.dim > 2:
             r.fail("world.method", f"\"grid\" draws are exact but only for 1 or 2 inputs; this space has {space.dim}; use \"features\"")
         features = r.integer(wt, "world.features", low=16, high=65536, default=1024)
-        grid = r.integer(wt, "world.grid", low=8, high=4096 if space.dim == 1 else 64, default=0)
+        grid = r.integer(wt, "world.grid", low=8, high=4096 if space.dim == 1 else 64,
+                         default=256 if space.dim == 1 else 40)
         world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise,
                           method=method, features=features, grid=grid)
 
@@ -216,7 +222,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     belief = _read_prior(r, bt, "belief", space, base=world_prior, noise_default=world.noise)
 
     ct = r.table(data, "campaign")
-    r.keys(ct, "campaign", ("initial", "design", "budgets", "pool"))
+    r.keys(ct, "campaign", _SECTION_KEYS["campaign"])
     initial = r.integer(ct, "campaign.initial", low=1, high=100_000, default=2 * space.dim)
     design = r.choice(ct, "campaign.design", DESIGNS, default="sobol")
     budgets = r.int_list(ct, "campaign.budgets", low=1, high=100_000)
@@ -229,7 +235,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     campaign = CampaignSpec(initial=initial, design=design, budgets=tuple(sorted(budgets)), pool=pool)
 
     tt = r.table(data, "target")
-    r.keys(tt, "target", ("regret",))
+    r.keys(tt, "target", _SECTION_KEYS["target"])
     target = r.number(tt, "target.regret", low=0.0)
 
     policies = _read_policies(r, data)
@@ -355,7 +361,11 @@ class _Reader:
                 where = f"{section}.{key}" if section else key
                 close = difflib.get_close_matches(key, allowed, n=1)
                 msg = "unknown key"
-                msg += f"; did you mean \"{close[0]}\"?" if close else f"; allowed: {', '.join(allowed)}"
+                home = [sec for sec, keys in _SECTION_KEYS.items() if key in keys and sec != section]
+                if home and not close:
+                    msg += f"; it belongs in [{home[0]}] (is that section header missing?)"
+                else:
+                    msg += f"; did you mean \"{close[0]}\"?" if close else f"; allowed: {', '.join(allowed)}"
                 if hint:
                     msg += f" ({hint})"
                 self.fail(where if section else f"[{key}]", msg)

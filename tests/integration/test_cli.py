@@ -1,0 +1,95 @@
+"""The command line as a user meets it: exit codes, one-line errors, nothing written on bad input."""
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+ROOT = Path(__file__).resolve().parents[2]
+SMALL = """
+[study]
+name = "cli-small"
+replicates = 2
+seed = 1
+[space]
+dose = [0.0, 1.0]
+[world]
+lengthscale = 0.2
+amplitude = 1.0
+noise = 0.05
+[campaign]
+initial = 2
+budgets = [4, 6]
+pool = 128
+[target]
+regret = 0.1
+[[policy]]
+rule = "ei"
+[[policy]]
+rule = "random"
+"""
+
+
+def simlab(*args, cwd):
+    return subprocess.run([sys.executable, "-m", "simlab", *map(str, args)], cwd=cwd,
+                          capture_output=True, text=True, timeout=300)
+
+
+@pytest.mark.parametrize("command", [[], ["run"], ["check"], ["report"]])
+def test_help_has_examples(tmp_path, command):
+    out = simlab(*command, "--help", cwd=tmp_path)
+    assert out.returncode == 0
+    assert "example" in out.stdout or command == []
+
+
+@pytest.mark.parametrize("text,field", [
+    (SMALL.replace("noise = 0.05", "noise = -0.05"), "world.noise"),
+    (SMALL.replace("dose = [0.0, 1.0]", "dose = [1.0, 0.0]"), "space.dose"),
+    (SMALL.replace("[space]\ndose = [0.0, 1.0]", "[space]"), "space"),
+    (SMALL.replace('rule = "random"', 'rule = "randm"'), 'did you mean "random"'),
+    ("[study\n", "not valid TOML"),
+])
+def test_bad_study_one_line_exit_2_nothing_written(tmp_path, text, field):
+    (tmp_path / "s.toml").write_text(text)
+    before = sorted(p.name for p in tmp_path.iterdir())
+    for cmd in ("run", "check"):
+        out = simlab(cmd, "s.toml", cwd=tmp_path)
+        assert out.returncode == 2, out.stderr
+        lines = out.stderr.strip().splitlines()
+        assert len(lines) == 1 and "Traceback" not in out.stderr, out.stderr
+        assert "s.toml" in lines[0] and field in lines[0], lines[0]
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+
+
+@pytest.mark.parametrize("args", [["--jobs", "0"], ["--replicates", "-3"], ["--replicates", "x"]])
+def test_bad_options_exit_2(tmp_path, args):
+    (tmp_path / "s.toml").write_text(SMALL)
+    out = simlab("run", "s.toml", *args, cwd=tmp_path)
+    assert out.returncode == 2 and len(out.stderr.strip().splitlines()) == 1
+    assert not (tmp_path / "results").exists()
+
+
+def test_missing_file_and_missing_results(tmp_path):
+    out = simlab("run", "nope.toml", cwd=tmp_path)
+    assert out.returncode == 2 and "nope.toml: no such file" in out.stderr
+    out = simlab("report", tmp_path, cwd=tmp_path)
+    assert out.returncode == 2 and "not a finished results folder" in out.stderr
+
+
+def test_run_check_report(tmp_path):
+    (tmp_path / "s.toml").write_text(SMALL)
+    out = simlab("check", "s.toml", cwd=tmp_path)
+    assert out.returncode == 0 and "# work: 2 replicates x 2 policies" in out.stdout
+    assert not (tmp_path / "results").exists()
+    out = simlab("run", "s.toml", "--quiet", cwd=tmp_path)
+    assert out.returncode == 0, out.stderr
+    folder = tmp_path / "results" / "cli-small"
+    traces = pd.read_parquet(folder / "traces.parquet")
+    assert len(traces) == 2 * 2 * 6
+    # the printed table's EI row at budget 6 shows the median of the stored regrets
+    med = traces[(traces.policy == "ei") & (traces.trial == 6)]["regret"].median()
+    assert any(line.startswith("ei") and f"{med:.3g}" in line for line in out.stdout.splitlines())
+    again = simlab("report", folder, cwd=tmp_path)
+    assert again.returncode == 0 and f"{med:.3g}" in again.stdout
