@@ -136,16 +136,12 @@ def _check(args) -> int:
     print(f"\n# work: {study.replicates} replicates x {len(study.policies)} policies = {campaigns} campaigns "
           f"of {c.horizon} trials ({campaigns * c.horizon:,} trials; {c.initial} initial per campaign)")
     if not args.no_timing:
-        from .runner import replay_replicate
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            t0 = time.perf_counter()
-            replay_replicate(study, 0)
-            per = time.perf_counter() - t0
+        from .runner import time_replicate
+        per = time_replicate(study, replicates=3)
         workers = args.jobs if args.jobs > 0 else (__import__("os").cpu_count() or 1)
         total = per * study.replicates / workers
-        print(f"# timing: one replicate took {per:.2f} s here; the study needs about {_duration(total)} "
-              f"with --jobs {workers} (first replicate timed, so treat this as a rough guide)")
+        print(f"# timing: {per:.2f} s per replicate here (median of the first 3); the study needs "
+              f"about {_duration(total)} with --jobs {workers}")
     return 0
 
 

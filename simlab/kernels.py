@@ -66,8 +66,10 @@ class Kernel:
     def __call__(self, A, B=None) -> np.ndarray:
         """Covariance matrix of shape (n, m) between rows of A (n, d) and B (m, d)."""
         B = A if B is None else B
-        if A.shape[0] * B.shape[0] <= 4096:
-            r = np.sqrt((self._diff(A, B) ** 2).sum(-1))
+        if min(A.shape[0], B.shape[0]) <= 8:
+            # few rows (a new trial against the pool): exact differences are cheap
+            diff = self._diff(A, B)
+            r = np.sqrt(np.einsum("nmd,nmd->nm", diff, diff))
         else:
             r = self._dist(A, B)
         return self.variance * self._rho(r)
@@ -148,7 +150,8 @@ class Matern32(_Matern):
     name, nu = "matern32", 1.5
 
     def _rho(self, r):
-        return (1.0 + _S3 * r) * np.exp(-_S3 * r)
+        s = _S3 * r
+        return (1.0 + s) * np.exp(-s)
 
     def _drho_over_r(self, r):
         return -3.0 * np.exp(-_S3 * r)
@@ -160,7 +163,8 @@ class Matern52(_Matern):
     name, nu = "matern52", 2.5
 
     def _rho(self, r):
-        return (1.0 + _S5 * r + (5.0 / 3.0) * r * r) * np.exp(-_S5 * r)
+        s = _S5 * r
+        return (1.0 + s + s * s / 3.0) * np.exp(-s)
 
     def _drho_over_r(self, r):
         return -(5.0 / 3.0) * (1.0 + _S5 * r) * np.exp(-_S5 * r)

@@ -90,7 +90,8 @@ class Acquisition(Policy):
     the score is a function of the posterior mean and sd alone.
     """
 
-    n_starts: ClassVar[int] = 4
+    n_starts: ClassVar[int] = 4       # pool points polished by L-BFGS-B (0: take the best pool point)
+    polish_iterations: ClassVar[int] = 30
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs
 
     def prepare(self, post: Posterior) -> None:
@@ -100,18 +101,22 @@ class Acquisition(Policy):
         """Score and its partial derivatives with respect to mu and sd, each (q,)."""
         raise NotImplementedError
 
+    def _value(self, mu, sd):
+        """Score alone (no derivatives); override where that is cheaper."""
+        return self._from_moments(mu, sd)[0]
+
     def _floor(self, post, sd):
         return np.maximum(sd, self.sd_floor * post.kernel.amplitude)
 
     def score_pool(self, post: Posterior) -> np.ndarray:
         mu, sd = post.pool_moments()
-        return self._from_moments(mu, self._floor(post, sd))[0]
+        return self._value(mu, self._floor(post, sd))
 
     def score(self, post: Posterior, U, *, grad: bool = False):
         """Score at inputs U (q, d); with ``grad`` also the gradient (q, d)."""
         if not grad:
             mu, sd = post.moments(U)
-            return self._from_moments(mu, self._floor(post, sd))[0]
+            return self._value(mu, self._floor(post, sd))
         mu, sd, dmu, dsd = post.moments(U, grad=True)
         floored = sd < self.sd_floor * post.kernel.amplitude
         a, da_dmu, da_dsd = self._from_moments(mu, self._floor(post, sd))
@@ -122,13 +127,15 @@ class Acquisition(Policy):
         self.prepare(post)
         pool = self.ctx.pool
         values = self.score_pool(post)
+        if self.n_starts == 0:
+            return pool[int(np.argmax(values))].copy()
         starts = pool[distinct_best(pool, -values, self.n_starts)]
 
         def neg(U):
             a, g = self.score(post, U, grad=True)
             return -a, -g
 
-        U, v = polish(neg, starts)
+        U, v = polish(neg, starts, maxiter=self.polish_iterations)
         return U[int(np.argmin(v))]
 
 
@@ -179,6 +186,9 @@ class ProbabilityOfImprovement(_Improvement):
 
     rule = "pi"
 
+    def _value(self, mu, sd):
+        return log_ndtr((self.best - self.margin - mu) / sd)
+
     def _from_moments(self, mu, sd):
         z = (self.best - self.margin - mu) / sd
         a = log_ndtr(z)
@@ -204,10 +214,14 @@ class ExpectedImprovement(_Improvement):
 
     rule = "ei"
 
+    def _value(self, mu, sd):
+        return np.log(sd) + log_h((self.best - self.margin - mu) / sd)
+
     def _from_moments(self, mu, sd):
         z = (self.best - self.margin - mu) / sd
-        a = np.log(sd) + log_h(z)
-        g = dlog_h(z)
+        lh = log_h(z)
+        a = np.log(sd) + lh
+        g = dlog_h(z, lh)
         return a, -g / sd, 1.0 / sd - g * z / sd
 
 
@@ -289,10 +303,13 @@ def log_h(z) -> np.ndarray:
     return out
 
 
-def dlog_h(z) -> np.ndarray:
-    """Derivative of :func:`log_h`: ``Phi(z) / h(z)``, evaluated as ``exp(log Phi - log h)``."""
+def dlog_h(z, lh=None) -> np.ndarray:
+    """Derivative of :func:`log_h`: ``Phi(z) / h(z)``, evaluated as ``exp(log Phi - log h)``.
+
+    ``lh`` may pass ``log_h(z)`` when the caller already has it.
+    """
     z = np.asarray(z, dtype=float)
-    return np.exp(log_ndtr(z) - log_h(z))
+    return np.exp(log_ndtr(z) - (log_h(z) if lh is None else lh))
 
 
 def _log1mexp(t):

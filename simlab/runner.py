@@ -18,7 +18,7 @@ from .spec import Prior, Study
 from .worlds import FeatureWorld, FunctionWorld, GridWorld, World
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy",
-           "replay_replicate", "replay", "TRACE_COLUMNS"]
+           "replay_replicate", "replay", "time_replicate", "TRACE_COLUMNS"]
 
 TRACE_COLUMNS = ("policy", "replicate", "trial", "initial", "y", "f", "regret", "regret_seen", "rec_trial")
 
@@ -136,6 +136,18 @@ def _replay_chunk(study: Study, replicates: list[int]) -> pd.DataFrame:
     out = pd.concat(frames, ignore_index=True)
     out.attrs["warnings"] = sorted({str(w.message) for w in caught})
     return out
+
+
+def time_replicate(study: Study, *, replicates: int = 2) -> float:
+    """Median seconds per replicate over the first few replicates, run as a worker would."""
+    import time
+
+    times = []
+    for r in range(min(replicates, study.replicates)):
+        t0 = time.perf_counter()
+        _replay_chunk(study, [r])
+        times.append(time.perf_counter() - t0)
+    return float(np.median(times))
 
 
 def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=None) -> pd.DataFrame:
