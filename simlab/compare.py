@@ -83,12 +83,17 @@ def _signed_rank_sum(d):
 
 
 def _wilcoxon_p(d):
-    """Two-sided Wilcoxon signed-rank p-value; 1 when every difference is zero."""
-    if np.all(d == 0):
-        # No replicate separates the two policies: no evidence of a difference. scipy
-        # would return p = 1 too, but with a division-by-zero warning.
+    """Two-sided Wilcoxon signed-rank p-value on the non-zero differences.
+
+    Zero differences (ties) are dropped first (Wilcoxon's original treatment), so scipy
+    uses the exact null distribution for up to 50 untied replicates without tied
+    magnitudes and the normal approximation otherwise. With every difference zero no
+    replicate separates the policies: p = 1 (scipy would warn and divide by zero).
+    """
+    nonzero = d[d != 0]
+    if nonzero.size == 0:
         return 1.0
-    return float(stats.wilcoxon(d, zero_method="wilcox", alternative="two-sided").pvalue)
+    return float(stats.wilcoxon(nonzero, alternative="two-sided").pvalue)
 
 
 def _mcnemar_exact_p(only_a, only_b):
@@ -142,10 +147,10 @@ def pairwise(traces, *, budget, target, confidence_level=0.95, n_resamples=_TABL
       sum to one. Its interval and the median difference's are percentile bootstrap
       intervals over replicates.
     - ``regret_p_value`` is the two-sided Wilcoxon signed-rank test
-      (scipy.stats.wilcoxon, zero differences dropped, i.e. conditional on the untied
-      replicates as McNemar's test conditions on discordant pairs); 1 when every
-      difference is zero. ``regret_favours`` names the policy the signed-rank sum
-      favours.
+      (scipy.stats.wilcoxon on the non-zero differences, i.e. conditional on the untied
+      replicates as McNemar's test conditions on discordant pairs; exact for up to 50
+      of them); 1 when every difference is zero. ``regret_favours`` names the policy
+      the signed-rank sum favours.
     - ``failure_p_value`` is McNemar's exact test: a two-sided binomial test with
       p = 1/2 on the discordant replicates (only a fails vs only b fails); 1 when there
       are none.
@@ -236,14 +241,16 @@ def _against_all(pairs, leader, others, favours_col, p_col):
 
 def _statistical_verdict(comparisons, alpha, test_name):
     """'clear' if the leader is favoured with adjusted p < alpha against everyone."""
-    weakest = max(comparisons, key=lambda o: (not comparisons[o][0], comparisons[o][1]))
-    favoured, p = comparisons[weakest]
+    label = f"Holm-adjusted {test_name} p"
     worst_p = max(p for _, p in comparisons.values())
-    if all(f and p < alpha for f, p in comparisons.values()):
-        return "clear", worst_p, f"better than every other policy (Holm-adjusted {test_name} p <= {worst_p:.3g})"
+    if all(favoured and p < alpha for favoured, p in comparisons.values()):
+        return "clear", worst_p, f"better than every other policy ({label} <= {worst_p:.3g})"
+    # Name the weakest comparison: one not favouring the leader first, then the largest p.
+    weakest = max(comparisons, key=lambda o: (not comparisons[o][0], comparisons[o][1]))
+    favoured, weakest_p = comparisons[weakest]
     if not favoured:
-        return "tie", worst_p, f"not better than {weakest} on paired replicates (Holm-adjusted {test_name} p = {p:.3g})"
-    return "tie", worst_p, f"not separated from {weakest} (Holm-adjusted {test_name} p = {p:.3g})"
+        return "tie", worst_p, f"not better than {weakest} on paired replicates ({label} = {weakest_p:.3g})"
+    return "tie", worst_p, f"not separated from {weakest} ({label} = {weakest_p:.3g})"
 
 
 def choice_table(
@@ -287,7 +294,9 @@ def choice_table(
         runner_up_value, runner_up_low, runner_up_high, lead, p_value, evidence``.
         ``lead`` is "clear", "tie" or, for the trials attitude, "not reached" when no
         policy reaches the success level within the simulated trials (``leader`` is
-        then None).
+        then None). In the trials row NaN means "beyond the simulated trials": in
+        ``*_value`` the policy never reaches the level, in ``*_high`` its conservative
+        budget does not; ``p_value`` is NaN there (the rule uses bands, not a test).
 
     Notes
     -----

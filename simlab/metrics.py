@@ -10,6 +10,7 @@ __all__ = [
     "budget_plan",
 ]
 
+import inspect
 import warnings
 from numbers import Integral
 
@@ -37,6 +38,10 @@ _BATCH_ELEMENTS = 2_000_000
 _SHARE_TOLERANCE = 1e-9
 
 _KM_METHODS = ("log-log", "linear")
+
+# scipy.stats.bootstrap took its generator as `random_state` before scipy 1.15 and as
+# `rng` since; the package supports scipy >= 1.12.
+_BOOTSTRAP_SEED_ARG = "rng" if "rng" in inspect.signature(stats.bootstrap).parameters else "random_state"
 _NOT_REACHED_PLAN = "not reached within the simulated budget"
 
 
@@ -189,6 +194,7 @@ def _bootstrap_interval(samples, statistic, *, confidence_level, n_resamples, rn
         nan = np.full(probe.shape, np.nan)
         return nan, nan.copy()
     options = dict(
+        {_BOOTSTRAP_SEED_ARG: rng},
         n_resamples=n_resamples,
         batch=max(1, _BATCH_ELEMENTS // (groups * n)),
         vectorized=True,
@@ -197,8 +203,9 @@ def _bootstrap_interval(samples, statistic, *, confidence_level, n_resamples, rn
     )
     if method == "BCa":
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # degenerate rows are repaired below
-            result = stats.bootstrap((samples,), statistic, method="BCa", rng=rng, **options)
+            # DegenerateDataWarning (a RuntimeWarning): such rows are repaired below.
+            warnings.simplefilter("ignore", RuntimeWarning)
+            result = stats.bootstrap((samples,), statistic, method="BCa", **options)
         low = np.asarray(result.confidence_interval.low, dtype=float)
         high = np.asarray(result.confidence_interval.high, dtype=float)
         broken = ~(np.isfinite(low) & np.isfinite(high))
@@ -209,7 +216,7 @@ def _bootstrap_interval(samples, statistic, *, confidence_level, n_resamples, rn
             )  # fmt: skip
             low[broken], high[broken] = fallback_low, fallback_high
         return low, high
-    result = stats.bootstrap((samples,), statistic, method="percentile", rng=rng, **options)
+    result = stats.bootstrap((samples,), statistic, method="percentile", **options)
     low = np.asarray(result.confidence_interval.low, dtype=float)
     high = np.asarray(result.confidence_interval.high, dtype=float)
     # Constant rows: every resample gives the same value; make that explicit.

@@ -1,0 +1,493 @@
+"""Tests of simlab.metrics against published values and naive recomputations."""
+
+import math
+import statistics
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from simlab import metrics
+
+Z95 = 1.959963984540054  # standard normal 97.5% quantile (common practice)
+
+
+# ---------------------------------------------------------------------------
+# helpers: building traces and naive (loop-based) recomputations
+# ---------------------------------------------------------------------------
+def _traces_from(regrets):
+    """Traces frame from {policy: [regret array of one campaign, trial 1..len]}."""
+    rows = []
+    for policy, campaigns in regrets.items():
+        for replicate, values in enumerate(campaigns):
+            for trial, value in enumerate(values, start=1):
+                rows.append((policy, replicate, trial, float(value)))
+    return pd.DataFrame(rows, columns=["policy", "replicate", "trial", "regret"])
+
+
+def _synthetic_traces(seed, *, replicates=37, trials=12, speeds=None, history=False):
+    """Paired synthetic campaigns: shared world difficulty, policy-specific speed.
+
+    Regret is not monotone in the trial (lognormal jitter), as a recommendation
+    can change for the worse.
+    """
+    speeds = speeds or {"fast": 0.45, "slow": 0.15, "never": 0.0}
+    rng = np.random.default_rng(seed)
+    difficulty = rng.lognormal(0.0, 0.5, size=replicates)
+    rows = []
+    first = 0 if history else 1
+    for policy, speed in speeds.items():
+        for r in range(replicates):
+            for t in range(first - (2 if history else 0), trials + 1):
+                if speed == 0.0:
+                    value = 2.0 + rng.uniform()  # never meets a target below 2
+                else:
+                    value = difficulty[r] * math.exp(-speed * max(t, 0)) * rng.lognormal(0.0, 0.3)
+                rows.append(
+                    {"policy": policy, "replicate": r, "trial": t, "regret": value,
+                     "history": t <= 0, "initial": t in (1, 2)}
+                )  # fmt: skip
+    return pd.DataFrame(rows)
+
+
+def _naive_first_reach(traces, target):
+    """First trial with regret <= target per campaign, by a plain loop over rows."""
+    found = {}
+    last = {}
+    for policy, replicate, trial, regret in traces[["policy", "replicate", "trial", "regret"]].itertuples(
+        index=False
+    ):
+        if trial < 0:
+            continue
+        key = (policy, replicate)
+        last[key] = max(last.get(key, trial), trial)
+        if regret <= target and (key not in found or trial < found[key]):
+            found[key] = trial
+    return {k: (found.get(k, last[k]), k in found) for k in last}
+
+
+def _naive_km(times_and_flags, trials, confidence_level=0.95):
+    """Kaplan-Meier share reached by each trial with a log-log Greenwood band, by loops.
+
+    Product-limit estimate (Kaplan & Meier 1958) with Greenwood's (1926) variance sum
+    and the log(-log S) transform (Kalbfleisch & Prentice 2002; formula from memory):
+    S^(exp(+-z * sqrt(sum d/(n(n-d))) / |log S|)). Censoring at t counts as at risk at t.
+    """
+    z = {0.95: Z95}[confidence_level]
+    survival, greenwood = 1.0, 0.0
+    out = []
+    for t in trials:
+        at_risk = sum(1 for time, _ in times_and_flags if time >= t)
+        events = sum(1 for time, hit in times_and_flags if hit and time == t)
+        if events:
+            survival *= 1.0 - events / at_risk
+            if at_risk > events:
+                greenwood += events / (at_risk * (at_risk - events))
+            else:
+                greenwood = math.inf
+        if 0.0 < survival < 1.0 and math.isfinite(greenwood):
+            width = z * math.sqrt(greenwood) / abs(math.log(survival))
+            s_low, s_high = survival ** math.exp(width), survival ** math.exp(-width)
+        else:
+            s_low = s_high = survival
+        out.append((t, 1.0 - survival, 1.0 - s_high, 1.0 - s_low))
+    return out
+
+
+def _naive_wilson(k, n, z=Z95):
+    """Wilson (1927) score interval, closed form, no continuity correction."""
+    p = k / n
+    centre = (p + z * z / (2 * n)) / (1 + z * z / n)
+    half = z / (1 + z * z / n) * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
+    return max(0.0, centre - half), min(1.0, centre + half)
+
+
+def _naive_cvar90(values):
+    """Rockafellar & Uryasev (2002) variational form: min over c of c + E[(x - c)+] / 0.1.
+
+    The objective is convex and piecewise linear with kinks at the data, so the
+    minimum is attained at a data point.
+    """
+    n = len(values)
+    return min(c + sum(max(x - c, 0.0) for x in values) / (0.1 * n) for c in values)
+
+
+def _first_at(pairs, level):
+    for t, share in pairs:
+        if share >= level - 1e-9:
+            return t
+    return None
+
+
+# ---------------------------------------------------------------------------
+# Kaplan-Meier: Freireich 6-MP arm, Kleinbaum & Klein p. 18
+# ---------------------------------------------------------------------------
+# Source: Freireich et al. (1963) 6-MP arm as tabulated in Kleinbaum & Klein, Survival
+# Analysis: A Self-Learning Text, p. 18 (values in REFERENCES.md); "+" = censored.
+FREIREICH = [(6, True), (6, True), (6, True), (6, False), (7, True), (9, False), (10, True),
+             (10, False), (11, False), (13, True), (16, True), (17, False), (19, False),
+             (20, False), (22, True), (23, True), (25, False), (32, False), (32, False),
+             (34, False), (35, False)]  # fmt: skip
+KLEINBAUM_S = {6: 0.8571, 7: 0.8067, 10: 0.7529, 13: 0.6902, 16: 0.6275, 22: 0.5378, 23: 0.4482}
+
+
+def _freireich_traces():
+    """One campaign per patient: regret 1 (above target) until the event week.
+
+    An event at week w is a campaign whose regret first drops to 0 at trial w (its last
+    trial); a censored week w is a campaign that ends at trial w without meeting the
+    target.
+    """
+    campaigns = []
+    for week, event in FREIREICH:
+        values = [1.0] * week
+        if event:
+            values[-1] = 0.0
+        campaigns.append(values)
+    return _traces_from({"6-MP": campaigns})
+
+
+def test_freireich_first_reach_reproduces_weeks():
+    reach = metrics.first_reach(_freireich_traces(), target=0.5)
+    assert list(reach["trials"]) == [w for w, _ in FREIREICH]
+    assert list(reach["reached"]) == [e for _, e in FREIREICH]
+
+
+def test_freireich_kaplan_meier_matches_kleinbaum_klein():
+    curve = metrics.reach_curves(_freireich_traces(), target=0.5).set_index("trial")
+    survival = 1.0 - curve["reached"]
+    for week, published in KLEINBAUM_S.items():
+        # Published to 4 decimals: half a unit in the last place is 5e-5.
+        assert survival[week] == pytest.approx(published, abs=5e-5), week
+    # Between events the curve is flat (step function): week 8 and 9 carry week 7's value.
+    assert survival[9] == pytest.approx(KLEINBAUM_S[7], abs=5e-5)
+    assert survival[35] == pytest.approx(KLEINBAUM_S[23], abs=5e-5)
+    # Negative control: ignoring censoring (treating censored weeks as never reaching,
+    # a plain share of 21) gives 9/21 reached by week 23, S = 0.5714, far from 0.4482.
+    naive_share = sum(1 for w, e in FREIREICH if e and w <= 23) / len(FREIREICH)
+    assert abs((1 - naive_share) - KLEINBAUM_S[23]) > 0.1
+
+
+def test_freireich_median_is_23_weeks():
+    # Source: Kleinbaum & Klein p. 18, median survival 23 weeks (REFERENCES.md).
+    summary = metrics.trials_to_target_summary(_freireich_traces(), target=0.5, levels=[0.5, 0.9])
+    median = summary[summary["level"] == 0.5].iloc[0]
+    assert median["trials"] == 23 and median["status"] == "reached"
+    # Only 55% ever reach in 35 weeks: the 90% level is not reached, and says so.
+    q90 = summary[summary["level"] == 0.9].iloc[0]
+    assert pd.isna(q90["trials"]) and not q90["reached"] and q90["status"] == "not reached"
+    assert q90["last_trial"] == 35
+
+
+def test_freireich_band_matches_greenwood_by_hand():
+    curve = metrics.reach_curves(_freireich_traces(), target=0.5).set_index("trial")
+    for t, share, low, high in _naive_km(FREIREICH, range(1, 36)):
+        assert curve.at[t, "reached"] == pytest.approx(share, abs=1e-12)
+        # float64 rounding only: formula and data are the same.
+        assert curve.at[t, "reached_low"] == pytest.approx(low, abs=1e-10), t
+        assert curve.at[t, "reached_high"] == pytest.approx(high, abs=1e-10), t
+
+
+# ---------------------------------------------------------------------------
+# Wilson interval: Newcombe (1998) Table I
+# ---------------------------------------------------------------------------
+# Source: Newcombe (1998), Two-sided confidence intervals for the single proportion,
+# Stat. Med. 17, Table I, method 3 (Wilson score, no continuity correction).
+NEWCOMBE = {(81, 263): (0.2553, 0.3662), (15, 148): (0.0624, 0.1605), (0, 20): (0.0, 0.1611)}
+
+
+def _failure_traces(cases):
+    """One policy per (failures, n): failures campaigns above target at budget 1."""
+    regrets = {}
+    for k, n in cases:
+        regrets[f"{k}/{n}"] = [[1.0] if i < k else [0.0] for i in range(n)]
+    return _traces_from(regrets)
+
+
+def test_failure_interval_matches_newcombe_table_i():
+    summary = metrics.budget_summary(_failure_traces(NEWCOMBE), budgets=[1], target=0.5).set_index("policy")
+    for (k, n), (low, high) in NEWCOMBE.items():
+        row = summary.loc[f"{k}/{n}"]
+        assert row["replicates"] == n and row["reached"] == n - k
+        assert row["failure_risk"] == pytest.approx(k / n)
+        # Published to 4 decimals: tolerance half a unit in the last place.
+        assert row["failure_low"] == pytest.approx(low, abs=5e-5)
+        assert row["failure_high"] == pytest.approx(high, abs=5e-5)
+    # Negative control: the Wald interval for 81/263 (0.2522-0.3638) misses Table I by
+    # more than the tolerance, so the check tells the two methods apart.
+    p = 81 / 263
+    wald_low = p - Z95 * math.sqrt(p * (1 - p) / 263)
+    assert abs(wald_low - 0.2553) > 5e-5
+
+
+# ---------------------------------------------------------------------------
+# budget summary and curves against naive recomputation
+# ---------------------------------------------------------------------------
+def test_budget_summary_matches_naive_recomputation():
+    traces = _synthetic_traces(3, replicates=37, history=True)
+    target = 0.4
+    summary = metrics.budget_summary(traces, budgets=[8, 3, 0], target=target, n_resamples=500, seed=1)
+    assert list(summary.columns[:3]) == ["policy", "budget", "replicates"]
+    assert list(summary["policy"]) == ["fast"] * 3 + ["slow"] * 3 + ["never"] * 3
+    assert list(summary["budget"]) == [0, 3, 8] * 3
+    by_key = {}
+    for policy, replicate, trial, regret in traces[["policy", "replicate", "trial", "regret"]].itertuples(
+        index=False
+    ):
+        by_key.setdefault((policy, trial), []).append(regret)
+    for row in summary.itertuples():
+        values = by_key[(row.policy, row.budget)]
+        assert row.replicates == len(values) == 37
+        assert row.regret_median == pytest.approx(statistics.median(values), rel=1e-12)
+        # statistics.quantiles 'inclusive' is the linear (type 7) rule numpy uses.
+        q1, _, q3 = statistics.quantiles(values, n=4, method="inclusive")
+        assert row.regret_q25 == pytest.approx(q1, rel=1e-12)
+        assert row.regret_q75 == pytest.approx(q3, rel=1e-12)
+        failures = sum(1 for v in values if v > target)
+        assert row.reached == len(values) - failures
+        assert row.failure_risk == pytest.approx(failures / len(values))
+        low, high = _naive_wilson(failures, len(values))
+        assert row.failure_low == pytest.approx(low, abs=1e-9)
+        assert row.failure_high == pytest.approx(high, abs=1e-9)
+        # 37 campaigns: 3.7 campaigns' worth of tail, the fractional case.
+        assert row.cvar90 == pytest.approx(_naive_cvar90(values), rel=1e-12)
+        assert row.median_low <= row.regret_median <= row.median_high
+        assert min(values) <= row.median_low and row.median_high <= max(values)
+        # resampled tail means never exceed the largest value (up to float64 rounding)
+        assert row.cvar90_low <= row.cvar90 <= row.cvar90_high <= max(values) * (1 + 1e-12)
+
+
+@pytest.mark.parametrize(
+    "values, expected",
+    [
+        # hand-worked from the definition (Acerbi & Tasche 2002): worst 10% of n
+        (list(range(1, 21)), (20 + 19) / 2),  # n = 20: the two worst
+        (list(range(1, 8)), 7.0),  # n = 7 < 10: the worst campaign
+        (list(range(1, 16)), (15 + 0.5 * 14) / 1.5),  # n = 15: 1.5 campaigns' worth
+    ],
+)
+def test_cvar90_definition_for_awkward_n(values, expected):
+    traces = _traces_from({"p": [[v] for v in values]})
+    row = metrics.budget_summary(traces, budgets=1, target=0.0, n_resamples=200).iloc[0]
+    assert row["cvar90"] == pytest.approx(expected, rel=1e-12)
+    assert row["cvar90"] == pytest.approx(_naive_cvar90(values), rel=1e-12)
+
+
+def test_regret_curves_match_naive_and_skip_history_rows():
+    traces = _synthetic_traces(5, replicates=21, trials=6, history=True)
+    curves = metrics.regret_curves(traces, n_resamples=200, seed=2)
+    assert list(curves.columns) == [
+        "policy", "trial", "replicates", "regret_median", "regret_q25", "regret_q75",
+        "median_low", "median_high",
+    ]  # fmt: skip
+    # trial 0 (after history alone) is kept; trials -2, -1 (history rows) are not.
+    assert sorted(curves["trial"].unique()) == list(range(0, 7))
+    for row in curves.itertuples():
+        values = [
+            r for p, t, r in traces[["policy", "trial", "regret"]].itertuples(index=False)
+            if p == row.policy and t == row.trial
+        ]  # fmt: skip
+        assert row.replicates == 21
+        assert row.regret_median == pytest.approx(statistics.median(values), rel=1e-12)
+        q1, _, q3 = statistics.quantiles(values, n=4, method="inclusive")
+        assert (row.regret_q25, row.regret_q75) == pytest.approx((q1, q3), rel=1e-12)
+        assert row.median_low <= row.regret_median <= row.median_high
+
+
+def test_bootstrap_is_reproducible_by_seed():
+    traces = _synthetic_traces(8, replicates=25, trials=3)
+    a = metrics.regret_curves(traces, n_resamples=300, seed=11)
+    b = metrics.regret_curves(traces, n_resamples=300, seed=11)
+    c = metrics.regret_curves(traces, n_resamples=300, seed=12)
+    pd.testing.assert_frame_equal(a, b)
+    assert not np.allclose(a["median_low"], c["median_low"])
+
+
+# ---------------------------------------------------------------------------
+# bootstrap coverage, with negative controls
+# ---------------------------------------------------------------------------
+def _coverage(low, high, truth):
+    return float(np.mean((np.asarray(low) <= truth) & (truth <= np.asarray(high))))
+
+
+def test_median_interval_coverage():
+    # 400 independent cells of 41 exponential(1) regrets; true median ln 2.
+    rng = np.random.default_rng(20240601)
+    cells, n = 400, 41
+    values = rng.exponential(size=(cells, n))
+    traces = pd.DataFrame(
+        {"policy": "p", "replicate": np.tile(np.arange(n), cells),
+         "trial": np.repeat(np.arange(1, cells + 1), n), "regret": values.ravel()}
+    )  # fmt: skip
+
+    def acceptable(coverage):
+        # Nominal 0.95; Monte Carlo sd over 400 cells is sqrt(0.95 * 0.05 / 400) = 0.011.
+        # Allow 4 sd below (percentile intervals for a median of 41 run a little short)
+        # and up to 0.99 above.
+        return 0.95 - 4 * 0.011 <= coverage <= 0.99
+
+    curves = metrics.regret_curves(traces, seed=1)
+    assert acceptable(_coverage(curves["median_low"], curves["median_high"], math.log(2)))
+    # Negative control: 50% intervals must fail the same check.
+    narrow = metrics.regret_curves(traces, seed=1, confidence_level=0.5)
+    assert not acceptable(_coverage(narrow["median_low"], narrow["median_high"], math.log(2)))
+
+
+def test_cvar_interval_coverage_sanity():
+    # 150 policies x 200 exponential(1) regrets. True CVaR-90 = ln 10 + 1 (memoryless
+    # tail: E[X | X > q] = q + 1, q = ln 10; common practice).
+    rng = np.random.default_rng(4242)
+    policies, n = 150, 200
+    values = rng.exponential(size=(policies, n))
+    traces = pd.DataFrame(
+        {"policy": np.repeat([f"p{i:03d}" for i in range(policies)], n),
+         "replicate": np.tile(np.arange(n), policies), "trial": 1, "regret": values.ravel()}
+    )  # fmt: skip
+    truth = math.log(10) + 1
+
+    def acceptable(coverage):
+        # Tail-mean intervals under-cover at n = 200 (about 0.91 in our own simulations);
+        # Monte Carlo sd over 150 policies is about 0.023, so 0.84 is 3 sd below 0.91.
+        return 0.84 <= coverage <= 0.99
+
+    summary = metrics.budget_summary(traces, budgets=[1], target=1.0, n_resamples=500, seed=3)
+    assert acceptable(_coverage(summary["cvar90_low"], summary["cvar90_high"], truth))
+    # The Wilson interval for failure risk P(X > 1) = exp(-1) is checked on the same data.
+    assert 0.95 - 4 * 0.018 <= _coverage(summary["failure_low"], summary["failure_high"], math.exp(-1))
+    # Negative controls: 50% intervals, and the wrong truth (mean of the worst 20%,
+    # ln 5 + 1), must fail the same check.
+    narrow = metrics.budget_summary(traces, budgets=[1], target=1.0, n_resamples=500, seed=3, confidence_level=0.5)
+    assert not acceptable(_coverage(narrow["cvar90_low"], narrow["cvar90_high"], truth))
+    assert not acceptable(_coverage(summary["cvar90_low"], summary["cvar90_high"], math.log(5) + 1))
+
+
+# ---------------------------------------------------------------------------
+# trials-to-target and budget plan against naive recomputation (with censoring)
+# ---------------------------------------------------------------------------
+def _censored_traces():
+    """fast/slow/never policies, plus campaigns of 'slow' stopped early (censored mid-way)."""
+    traces = _synthetic_traces(17, replicates=40, trials=15)
+    stopped = (traces["policy"] == "slow") & (traces["replicate"] % 4 == 0) & (traces["trial"] > 9)
+    return traces[~stopped].reset_index(drop=True)
+
+
+def test_first_reach_matches_naive():
+    traces = _censored_traces()
+    naive = _naive_first_reach(traces, 0.3)
+    reach = metrics.first_reach(traces, target=0.3)
+    assert list(reach.columns) == ["policy", "replicate", "trials", "reached"]
+    assert len(reach) == len(naive)
+    for row in reach.itertuples():
+        assert (row.trials, row.reached) == naive[(row.policy, row.replicate)]
+
+
+def test_reach_curves_and_summary_match_naive_km():
+    traces = _censored_traces()
+    target = 0.3
+    naive = _naive_first_reach(traces, target)
+    curves = metrics.reach_curves(traces, target=target)
+    summary = metrics.trials_to_target_summary(traces, target=target, levels=(0.5, 0.9))
+    for policy in ["fast", "slow", "never"]:
+        campaigns = [v for (p, _), v in naive.items() if p == policy]
+        expected = _naive_km(campaigns, range(1, 16))
+        got = curves[curves["policy"] == policy].set_index("trial")
+        assert list(got.index) == list(range(1, 16))
+        for t, share, low, high in expected:
+            assert got.at[t, "reached"] == pytest.approx(share, abs=1e-12)
+            assert got.at[t, "reached_low"] == pytest.approx(low, abs=1e-10)
+            assert got.at[t, "reached_high"] == pytest.approx(high, abs=1e-10)
+            assert got.at[t, "campaigns_reached"] == sum(1 for time, hit in campaigns if hit and time <= t)
+        for level in (0.5, 0.9):
+            row = summary[(summary["policy"] == policy) & (summary["level"] == level)].iloc[0]
+            trials = _first_at([(t, s) for t, s, _, _ in expected], level)
+            low = _first_at([(t, h) for t, _, _, h in expected], level)
+            high = _first_at([(t, lo) for t, _, lo, _ in expected], level)
+            for column, value in (("trials", trials), ("trials_low", low), ("trials_high", high)):
+                assert (pd.isna(row[column]) and value is None) or row[column] == value, (policy, level, column)
+            assert row["status"] == ("reached" if trials is not None else "not reached")
+    never = summary[summary["policy"] == "never"]
+    # A policy that never reaches the target gets "not reached", never a number.
+    assert never["trials"].isna().all() and (never["status"] == "not reached").all()
+    assert not never["reached"].any()
+    assert (curves.loc[curves["policy"] == "never", "reached"] == 0).all()
+
+
+def test_budget_plan_matches_naive_and_reports_not_reached():
+    traces = _censored_traces()
+    target, success = 0.3, 0.8
+    naive = _naive_first_reach(traces, target)
+    plan = metrics.budget_plan(traces, target=target, success=success).set_index("policy")
+    for policy in ["fast", "slow", "never"]:
+        campaigns = [v for (p, _), v in naive.items() if p == policy]
+        expected = _naive_km(campaigns, range(1, 16))
+        budget = _first_at([(t, s) for t, s, _, _ in expected], success)
+        conservative = _first_at([(t, lo) for t, _, lo, _ in expected], success)
+        optimistic = _first_at([(t, h) for t, _, _, h in expected], success)
+        row = plan.loc[policy]
+        for column, value in (("budget", budget), ("budget_conservative", conservative),
+                              ("budget_optimistic", optimistic)):  # fmt: skip
+            assert (pd.isna(row[column]) and value is None) or row[column] == value, (policy, column)
+    assert plan.loc["fast", "status"] == "reached"
+    assert pd.isna(plan.loc["never", "budget"])
+    assert plan.loc["never", "status"] == "not reached within the simulated budget"
+    assert plan.loc["never", "share"] == 0.0
+    # conservative >= estimate >= optimistic whenever they exist
+    fast = plan.loc["fast"]
+    assert fast["budget_optimistic"] <= fast["budget"] <= fast["budget_conservative"]
+
+
+def test_budget_plan_restricted_to_candidate_budgets():
+    traces = _censored_traces()
+    full = metrics.budget_plan(traces, target=0.3, success=0.8).set_index("policy")
+    plan = metrics.budget_plan(traces, target=0.3, success=0.8, budgets=[5, 10, 15]).set_index("policy")
+    b = full.loc["fast", "budget"]
+    assert plan.loc["fast", "budget"] == min(c for c in (5, 10, 15) if c >= b)
+    with pytest.raises(ValueError, match="outside the simulated trials"):
+        metrics.budget_plan(traces, target=0.3, budgets=[16])
+
+
+def test_trial_zero_counts_as_after_history():
+    traces = pd.DataFrame(
+        {"policy": "p", "replicate": [0, 0, 0, 1, 1, 1], "trial": [-1, 0, 1, -1, 0, 1],
+         "regret": [0.0, 0.1, 0.5, 0.0, 2.0, 0.1]}
+    )  # fmt: skip
+    reach = metrics.first_reach(traces, target=0.2)
+    # replicate 0 meets the target on its history alone (trial 0); trial -1 is ignored.
+    assert list(reach["trials"]) == [0, 1] and reach["reached"].all()
+    curve = metrics.reach_curves(traces, target=0.2)
+    assert list(curve["trial"]) == [0, 1] and list(curve["reached"]) == [0.5, 1.0]
+
+
+# ---------------------------------------------------------------------------
+# input validation
+# ---------------------------------------------------------------------------
+def test_bad_input_raises_value_error():
+    good = _synthetic_traces(1, replicates=5, trials=3)
+    with pytest.raises(ValueError, match="lacks required column"):
+        metrics.regret_curves(good.drop(columns="regret"))
+    with pytest.raises(ValueError, match=">= 0"):
+        metrics.first_reach(good.assign(regret=-good["regret"]), target=0.1)
+    with pytest.raises(ValueError, match="one row per"):
+        metrics.first_reach(pd.concat([good, good.iloc[:1]]), target=0.1)
+    with pytest.raises(ValueError, match="confidence_level"):
+        metrics.regret_curves(good, confidence_level=1.5)
+    with pytest.raises(ValueError, match="target"):
+        metrics.first_reach(good, target=-1.0)
+    with pytest.raises(ValueError, match="not available for every campaign"):
+        metrics.budget_summary(good, budgets=[4], target=0.1)
+    with pytest.raises(ValueError, match="method"):
+        metrics.reach_curves(good, target=0.1, method="plain")
+    with pytest.raises(ValueError, match="success"):
+        metrics.budget_plan(good, target=0.1, success=0.0)
+
+
+def test_constant_regret_gives_zero_width_intervals_without_warnings():
+    traces = _traces_from({"p": [[0.0, 0.0]] * 12, "q": [[1.0, 1.0]] * 12})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        summary = metrics.budget_summary(traces, budgets=[2], target=0.5, n_resamples=200)
+        curves = metrics.regret_curves(traces, n_resamples=200)
+    assert (summary["median_low"] == summary["regret_median"]).all()
+    assert (summary["cvar90_low"] == summary["cvar90"]).all() and (summary["cvar90_high"] == summary["cvar90"]).all()
+    assert (curves["median_high"] == curves["regret_median"]).all()
