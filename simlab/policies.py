@@ -297,7 +297,9 @@ def log_h(z) -> np.ndarray:
     out[hi] = np.log(np.exp(-0.5 * zh * zh) / np.sqrt(2 * np.pi) + zh * ndtr(zh))
     zm = z[mid]
     t = np.log(erfcx(-zm / np.sqrt(2.0)) * np.abs(zm)) + _C2
-    out[mid] = -0.5 * zm * zm - _C1 + _log1mexp(t)
+    # for z <= -1, t lies in (-0.43, 0), where log1mexp(t) = log(-expm1(t)) is the accurate
+    # branch (Maechler 2012, "Accurately computing log(1 - exp(-|a|))")
+    out[mid] = -0.5 * zm * zm - _C1 + np.log(-np.expm1(t))
     zl = z[lo]
     out[lo] = -0.5 * zl * zl - _C1 - 2.0 * np.log(np.abs(zl))
     return out
@@ -310,11 +312,6 @@ def dlog_h(z, lh=None) -> np.ndarray:
     """
     z = np.asarray(z, dtype=float)
     return np.exp(log_ndtr(z) - (log_h(z) if lh is None else lh))
-
-
-def _log1mexp(t):
-    """``log(1 - exp(t))`` for t < 0 (Maechler 2012, Accurately computing log(1 - exp(-|a|)))."""
-    return np.where(t > -np.log(2.0), np.log(-np.expm1(t)), np.log1p(-np.exp(t)))
 
 
 POLICIES: dict[str, type[Policy]] = {c.rule: c for c in (
