@@ -13,7 +13,7 @@ from .runner import replay
 from .spec import Study, load_study
 from .store import read_results, results_dir, write_results
 
-__all__ = ["StudyResult", "run_study", "load_results"]
+__all__ = ["StudyResult", "SweepResult", "run_study", "run_sweep_study", "load_results"]
 
 
 @dataclass
@@ -86,3 +86,52 @@ def load_results(path: str | os.PathLike) -> StudyResult:
     """Read a results folder written by :func:`run_study`."""
     study, traces = read_results(path)
     return StudyResult(study=study, traces=traces, path=Path(path))
+
+
+@dataclass
+class SweepResult:
+    """A finished misspecification sweep."""
+
+    study: Study
+    rows: pd.DataFrame       # regret per policy, replicate, budget and cell
+    summary: pd.DataFrame    # failure risk and median regret per policy, budget and cell
+    ranking: pd.DataFrame    # policies by worst failure risk over the grid at the largest budget
+    path: Path | None = None
+
+
+def run_sweep_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.PathLike | None = None,
+                    write: bool = True, progress: bool = False) -> SweepResult:
+    """Replay the study with the belief's lengthscales and amplitude scaled by the ``[sweep]``
+    factors, on the same worlds, and rank policies by their worst failure risk.
+
+    Writes ``sweep/sweep.csv`` (one row per policy, budget and cell) and
+    ``sweep/ranking.csv`` under the results folder.
+    """
+    from .store import atomic_write
+    from .sweep import run_sweep, safest_policy, summarize_sweep
+
+    if not isinstance(study, Study):
+        study = load_study(study)
+    cells = len(study.sweep.lengthscale) * len(study.sweep.amplitude)
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+        bar = tqdm(total=cells * study.sweep.replicates * len(study.policies), unit="campaign",
+                   desc=f"{study.name} sweep", smoothing=0.1)
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", RuntimeWarning)
+            rows = run_sweep(study, jobs=jobs, progress=bar.update if bar else None)
+    finally:
+        if bar is not None:
+            bar.close()
+    for message in sorted({str(w.message) for w in caught}):
+        warnings.warn(message, RuntimeWarning, stacklevel=2)
+    summary = summarize_sweep(rows, study)
+    ranking = safest_policy(summary, budget=study.campaign.horizon)
+    path = None
+    if write:
+        path = results_dir(study, out) / "sweep"
+        atomic_write(path / "sweep.csv", lambda p: summary.to_csv(p, index=False))
+        atomic_write(path / "ranking.csv", lambda p: ranking.to_csv(p, index=False))
+    return SweepResult(study=study, rows=rows, summary=summary, ranking=ranking, path=path)

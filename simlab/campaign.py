@@ -29,12 +29,12 @@ class Trace:
 
     Attributes
     ----------
-    U : ndarray of shape (B, d)
-        Evaluated inputs.
-    y, f : ndarray of shape (B,)
+    U : ndarray of shape (h + B, d)
+        Evaluated inputs: h past trials (if any), then B new ones.
+    y, f : ndarray of shape (h + B,)
         Observed and noise-free values.
-    rec : ndarray of shape (B,)
-        0-based trial index of the recommendation after each trial.
+    rec : ndarray of shape (h + B,)
+        0-based row index (into these arrays) of the recommendation after each row.
     """
 
     U: np.ndarray
@@ -45,11 +45,14 @@ class Trace:
 
 def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.ndarray,
                  sequence: np.ndarray, noise: np.ndarray, pool: np.ndarray,
-                 rng: np.random.Generator) -> Trace:
+                 rng: np.random.Generator, history: tuple[np.ndarray, np.ndarray] | None = None) -> Trace:
     """Replay one campaign.
 
     Parameters
     ----------
+    history : (ndarray of shape (h, d), ndarray of shape (h,)), optional
+        Trials already run (unit cube, internal orientation). They come first in the trace
+        and in the posterior; the budget counts new trials only.
     design : ndarray of shape (n0, d)
         Initial space-filling inputs (count toward the budget).
     sequence : ndarray of shape (B, d)
@@ -61,14 +64,18 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     rng : numpy.random.Generator
         The policy's own stream for this replicate.
     """
-    budget, d = len(noise), design.shape[1]
-    post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=budget)
+    budget, d = len(noise), sequence.shape[1]
+    H, yH = history if history is not None else (np.empty((0, d)), np.empty(0))
+    h = len(yH)
+    post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=h + budget)
     policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post))
-    U, y, f, rec = np.empty((budget, d)), np.empty(budget), np.empty(budget), np.empty(budget, dtype=int)
-    for t in range(budget):
-        u = design[t] if t < len(design) else policy.choose(post, t)   # choose
-        f[t] = world(u[None, :])[0]                                       # evaluate
-        y[t] = f[t] + noise[t]
-        post.add(u, y[t])                                                 # update
-        U[t], rec[t] = u, post.recommend()                                # record
+    n = h + budget
+    U, y, f, rec = np.empty((n, d)), np.empty(n), np.empty(n), np.empty(n, dtype=int)
+    for i in range(n):
+        t = i - h                                             # new-trial index; < 0 for past trials
+        u = H[i] if t < 0 else design[t] if t < len(design) else policy.choose(post, t)  # choose
+        f[i] = world(u[None, :])[0]                           # evaluate
+        y[i] = yH[i] if t < 0 else f[i] + noise[t]
+        post.add(u, y[i])                                     # update
+        U[i], rec[i] = u, post.recommend()                    # record
     return Trace(U=U, y=y, f=f, rec=rec)

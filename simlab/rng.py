@@ -17,6 +17,7 @@ PURPOSES = {
     "pool": 3,       # quasi-random candidate pool scored by acquisitions
     "policy": 4,     # a policy's own randomness (Thompson samples, random search)
     "optimum": 5,    # the search for the world's optimum
+    "hyper": 6,      # the replicate's own world hyperparameters when they are uncertain
 }
 
 

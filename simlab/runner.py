@@ -15,12 +15,13 @@ from .kernels import make_kernel
 from .policies import POLICIES, Policy
 from .rng import stream
 from .spec import Prior, Study
-from .worlds import FeatureWorld, FunctionWorld, GridWorld, World
+from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy",
-           "replay_replicate", "replay", "time_replicate", "TRACE_COLUMNS"]
+           "replay_replicate", "replay", "time_replicate", "history_arrays", "TRACE_COLUMNS"]
 
-TRACE_COLUMNS = ("policy", "replicate", "trial", "initial", "y", "f", "regret", "regret_seen", "rec_trial")
+TRACE_COLUMNS = ("policy", "replicate", "trial", "initial", "history", "y", "f", "regret", "regret_seen",
+                 "rec_trial")
 
 
 def _kernel(prior: Prior, study: Study):
@@ -39,11 +40,37 @@ def make_world(study: Study, replicate: int) -> World:
     if w.function is not None:
         return FunctionWorld(functions.FUNCTIONS[w.function])
     kernel = _kernel(w.prior, study)
+    if w.lengthscale_within != 1.0 or w.amplitude_within != 1.0:
+        kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
     rng = stream(study.seed, replicate, "world")
     mean = study.sign * w.prior.mean
     if w.method == "grid":
-        return GridWorld(kernel, mean, rng, w.grid)
-    return FeatureWorld(kernel, mean, rng, w.features)
+        world = GridWorld(kernel, mean, rng, w.grid)
+    else:
+        world = FeatureWorld(kernel, mean, rng, w.features)
+    if study.history is not None:
+        H, yH = history_arrays(study)
+        world = ConditionedWorld(world, kernel, H, yH, w.noise, rng)
+    return world
+
+
+def history_arrays(study: Study) -> tuple[np.ndarray, np.ndarray] | None:
+    """Past trials on the unit cube and in the internal orientation, or None."""
+    if study.history is None:
+        return None
+    return study.space.to_unit(np.array(study.history.X)), study.sign * np.array(study.history.y)
+
+
+def _uncertain(kernel, w, rng):
+    """The replicate's own lengthscales (each input independently) and amplitude.
+
+    ``within = f`` means log-normal around the stated value with 95 % of draws inside
+    ``[value / f, value * f]``: log sd = log(f) / 1.959964 (the normal 97.5 % quantile).
+    """
+    z = rng.standard_normal(kernel.dim + 1)
+    ls = kernel.lengthscale * np.exp(np.log(w.lengthscale_within) / 1.959964 * z[:-1])
+    amp = kernel.amplitude * np.exp(np.log(w.amplitude_within) / 1.959964 * z[-1])
+    return type(kernel)(ls, amp)
 
 
 def _sobol(d: int, n: int, rng) -> np.ndarray:
@@ -96,22 +123,26 @@ def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None) -> p
     """
     rep = rep or make_replicate(study, r)
     belief = make_belief(study)
+    history = history_arrays(study)
     traces: list[tuple[str, Trace]] = []
     for spec in study.policies:
         trace = run_campaign(make_policy(spec), belief, rep.world, design=rep.design,
                              sequence=rep.sequence, noise=rep.noise, pool=rep.pool,
-                             rng=stream(study.seed, r, "policy", spec.label))
+                             rng=stream(study.seed, r, "policy", spec.label), history=history)
         traces.append((spec.label, trace))
     fstar = min(rep.optimum[1], min(float(t.f.min()) for _, t in traces))
     frames = []
     B, n0 = study.campaign.horizon, study.campaign.initial
+    h = study.history.size if study.history is not None else 0
+    trial = np.arange(1 - h, B + 1, dtype=np.int32)   # past trials -h+1 .. 0, then 1 .. B
     for label, t in traces:
         X = study.space.from_unit(t.U)
         frame = {
             "policy": label,
-            "replicate": np.full(B, r, dtype=np.int32),
-            "trial": np.arange(1, B + 1, dtype=np.int32),
-            "initial": np.arange(B) < n0,
+            "replicate": np.full(h + B, r, dtype=np.int32),
+            "trial": trial,
+            "initial": (trial >= 1) & (trial <= n0),
+            "history": trial <= 0,
         }
         frame.update({name: X[:, j] for j, name in enumerate(study.space.names)})
         frame.update({
@@ -119,7 +150,7 @@ def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None) -> p
             "f": study.sign * t.f,
             "regret": t.f[t.rec] - fstar,
             "regret_seen": np.minimum.accumulate(t.f) - fstar,
-            "rec_trial": (t.rec + 1).astype(np.int32),
+            "rec_trial": trial[t.rec],
         })
         frames.append(pd.DataFrame(frame))
     return pd.concat(frames, ignore_index=True)

@@ -18,7 +18,7 @@ from .kernels import KERNELS
 from .policies import POLICIES
 
 __all__ = [
-    "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "Study",
+    "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec", "Study",
     "load_study", "parse_study", "dump_study",
 ]
 
@@ -30,9 +30,12 @@ RESERVED = ("policy", "replicate", "trial", "y", "f", "regret", "regret_seen", "
             "history", "round", "rec_trial", "lost")
 _SECTION_KEYS = {
     "study": ("name", "goal", "replicates", "seed"),
-    "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function"),
+    "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",
+              "lengthscale_within", "amplitude_within"),
     "campaign": ("initial", "design", "budgets", "pool"),
     "target": ("regret",),
+    "sweep": ("lengthscale", "amplitude", "replicates"),
+    "history": ("file", "response"),
 }
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
 
@@ -92,6 +95,31 @@ class WorldSpec:
     method: str = "features"     # features | grid
     features: int = 1024         # spectral frequencies per feature draw (2x as many basis functions)
     grid: int = 40               # grid points per input for method = "grid"
+    lengthscale_within: float = 1.0  # each replicate draws lengthscales log-normally: 95 % within this factor
+    amplitude_within: float = 1.0    # likewise for the amplitude (1.0: known exactly)
+
+
+@dataclass(frozen=True)
+class HistorySpec:
+    """Trials already run: campaigns start from them and worlds are conditioned on them."""
+
+    file: str = field(compare=False)      # path as resolved when the study was read
+    response: str                         # column holding the observed response
+    X: tuple[tuple[float, ...], ...]      # inputs in user units, one tuple per row
+    y: tuple[float, ...]                  # observed responses in the user's orientation
+
+    @property
+    def size(self) -> int:
+        return len(self.y)
+
+
+@dataclass(frozen=True)
+class SweepSpec:
+    """Belief misspecification grid: factors applied to the belief's lengthscales and amplitude."""
+
+    lengthscale: tuple[float, ...] = (0.25, 0.5, 1.0, 2.0, 4.0)
+    amplitude: tuple[float, ...] = (0.25, 0.5, 1.0, 2.0, 4.0)
+    replicates: int = 50
 
 
 @dataclass(frozen=True)
@@ -130,6 +158,8 @@ class Study:
     campaign: CampaignSpec
     target: float                # regret tolerance, objective units
     policies: tuple[PolicySpec, ...]
+    sweep: SweepSpec = SweepSpec()
+    history: HistorySpec | None = None
     source: str = field(default="<study>", compare=False)
 
     @property
@@ -174,13 +204,20 @@ def load_study(path: str | Path) -> Study:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise StudyError(name, "", f"is not valid TOML: {exc}") from None
-    return parse_study(data, source=name, default_name=path.stem)
+    return parse_study(data, source=name, default_name=path.stem, base_dir=path.parent)
 
 
-def parse_study(data: dict, *, source: str = "<study>", default_name: str = "study") -> Study:
-    """Validate an already-parsed TOML mapping; see :func:`load_study`."""
+def parse_study(data: dict, *, source: str = "<study>", default_name: str = "study",
+                base_dir: str | Path | None = None) -> Study:
+    """Validate an already-parsed TOML mapping; see :func:`load_study`.
+
+    ``base_dir`` is where relative file paths in the study (``[history] file``) are
+    resolved; :func:`load_study` passes the study file's folder.
+    """
+    base_dir = Path(base_dir) if base_dir is not None else None
     r = _Reader(source)
-    r.keys(data, "", ("study", "space", "world", "belief", "campaign", "target", "policy"))
+    r.keys(data, "", ("study", "space", "world", "belief", "campaign", "target", "policy", "sweep",
+                          "history"))
 
     st = r.table(data, "study", required=False)
     r.keys(st, "study", _SECTION_KEYS["study"])
@@ -214,16 +251,24 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         features = r.integer(wt, "world.features", low=16, high=65536, default=1024)
         grid = r.integer(wt, "world.grid", low=8, high=4096 if space.dim == 1 else 64,
                          default=256 if space.dim == 1 else 40)
+        within = {key: r.number(wt, f"world.{key}", low=1.0, high=100.0, default=1.0)
+                  for key in ("lengthscale_within", "amplitude_within")}
+        if method == "grid" and within["lengthscale_within"] != 1.0:
+            r.fail("world.lengthscale_within", "uncertain lengthscales need method = \"features\" "
+                   "(a grid draw factors one covariance matrix for all replicates)")
         world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise,
-                          method=method, features=features, grid=grid)
+                          method=method, features=features, grid=grid, **within)
 
     bt = r.table(data, "belief", required=False)
     r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise"))
     belief = _read_prior(r, bt, "belief", space, base=world_prior, noise_default=world.noise)
 
+    history = _read_history(r, data, space, base_dir)
+
     ct = r.table(data, "campaign")
     r.keys(ct, "campaign", _SECTION_KEYS["campaign"])
-    initial = r.integer(ct, "campaign.initial", low=1, high=100_000, default=2 * space.dim)
+    initial = r.integer(ct, "campaign.initial", low=0 if history else 1, high=100_000,
+                        default=0 if history else 2 * space.dim)
     design = r.choice(ct, "campaign.design", DESIGNS, default="sobol")
     budgets = r.int_list(ct, "campaign.budgets", low=1, high=100_000)
     if len(set(budgets)) != len(budgets):
@@ -239,8 +284,47 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     target = r.number(tt, "target.regret", low=0.0)
 
     policies = _read_policies(r, data)
+
+    sw = r.table(data, "sweep", required=False)
+    r.keys(sw, "sweep", _SECTION_KEYS["sweep"])
+    sweep = SweepSpec(
+        lengthscale=r.factor_list(sw, "sweep.lengthscale", SweepSpec.lengthscale),
+        amplitude=r.factor_list(sw, "sweep.amplitude", SweepSpec.amplitude),
+        replicates=r.integer(sw, "sweep.replicates", low=1, high=10_000_000, default=min(replicates, 50)),
+    )
     return Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
-                 belief=belief, campaign=campaign, target=target, policies=policies, source=source)
+                 belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
+                 history=history, source=source)
+
+
+def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None) -> HistorySpec | None:
+    if "history" not in data:
+        return None
+    ht = r.table(data, "history")
+    r.keys(ht, "history", _SECTION_KEYS["history"])
+    file = r.string(ht, "history.file")
+    response = r.string(ht, "history.response", default="y")
+    if response in space.names:
+        r.fail("history.response", f"\"{response}\" is also an input in [space]; name the response column")
+    path = Path(file)
+    if not path.is_absolute():
+        path = (base_dir or Path.cwd()) / path
+    from .data import DataError, read_table
+    try:
+        table = read_table(path, columns=[*space.names, response], role="history")
+    except DataError as exc:
+        raise StudyError(r.source, "history.file", str(exc)) from None
+    X = table[list(space.names)].to_numpy(dtype=float)
+    for j, name in enumerate(space.names):
+        lo, hi = space.low[j], space.high[j]
+        bad = np.flatnonzero((X[:, j] < lo) | (X[:, j] > hi))
+        if bad.size:
+            i = int(bad[0])
+            r.fail("history.file", f"{path}: row {i + 1}: {name} = {X[i, j]:g} lies outside [space] "
+                   f"[{lo:g}, {hi:g}]; widen the space or drop the row")
+    return HistorySpec(file=str(path.resolve()), response=response,
+                       X=tuple(tuple(float(v) for v in row) for row in X),
+                       y=tuple(float(v) for v in table[response].to_numpy(dtype=float)))
 
 
 def _read_space(r: "_Reader", data: dict, *, fn) -> Space:
@@ -429,6 +513,20 @@ class _Reader:
                 self.fail(field, f"every entry must be a whole number between {low} and {high}; got {item!r}")
         return tuple(v)
 
+    def factor_list(self, t: dict, field: str, default: tuple[float, ...]) -> tuple[float, ...]:
+        key = field.rsplit(".", 1)[-1]
+        if key not in t:
+            return default
+        v = t[key]
+        if not isinstance(v, list) or not v:
+            self.fail(field, f"must be a non-empty list of factors > 0, e.g. [0.5, 1.0, 2.0]; got {v!r}")
+        out = tuple(self.as_number(x, field) for x in v)
+        if min(out) <= 0:
+            self.fail(field, f"every factor must be > 0; got {min(out):g}")
+        if len(set(out)) != len(out):
+            self.fail(field, f"must not repeat a factor; got {list(out)}")
+        return tuple(sorted(out))
+
     def string(self, t: dict, field: str, *, default=...) -> str | None:
         key = field.rsplit(".", 1)[-1]
         if key not in t:
@@ -486,10 +584,11 @@ def _toml_key(k: str) -> str:
     return k if re.match(r"^[A-Za-z0-9_-]+$", k) else _toml_value(k)
 
 
-def dump_study(study: Study, *, header: dict[str, Any] | None = None) -> str:
+def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_file: str | None = None) -> str:
     """The resolved study as TOML text that :func:`load_study` reads back to an equal study.
 
-    Every default is written out, so the file records exactly what ran.
+    Every default is written out, so the file records exactly what ran. ``history_file``
+    replaces the history path (the results folder keeps its own copy of the history).
     """
     lines = []
     for k, v in (header or {}).items():
@@ -504,12 +603,19 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None) -> str:
         lines += [f"function = {_toml_value(w.function)}", f"noise = {w.noise!r}"]
     else:
         lines += _prior_lines(w.prior)
-        lines += [f"method = {_toml_value(w.method)}", f"features = {w.features}", f"grid = {w.grid}"]
+        lines += [f"method = {_toml_value(w.method)}", f"features = {w.features}", f"grid = {w.grid}",
+                  f"lengthscale_within = {w.lengthscale_within!r}", f"amplitude_within = {w.amplitude_within!r}"]
     lines += ["", "[belief]", *_prior_lines(study.belief), "", "[campaign]"]
     c = study.campaign
     lines += [f"initial = {c.initial}", f"design = {_toml_value(c.design)}",
               f"budgets = {_toml_value(list(c.budgets))}", f"pool = {c.pool}", "",
               "[target]", f"regret = {study.target!r}"]
+    if study.history is not None:
+        lines += ["", "[history]", f"file = {_toml_value(history_file or study.history.file)}",
+                  f"response = {_toml_value(study.history.response)}"]
+    sw = study.sweep
+    lines += ["", "[sweep]", f"lengthscale = {_toml_value(list(sw.lengthscale))}",
+              f"amplitude = {_toml_value(list(sw.amplitude))}", f"replicates = {sw.replicates}"]
     for p in study.policies:
         lines += ["", "[[policy]]", f"rule = {_toml_value(p.rule)}", f"label = {_toml_value(p.label)}"]
         lines += [f"{k} = {_toml_value(v)}" for k, v in p.settings]

@@ -10,10 +10,11 @@ import pandas as pd
 
 from .spec import Study, StudyError, dump_study, load_study
 
-__all__ = ["TRACES", "STUDY", "results_dir", "write_results", "read_results", "atomic_write"]
+__all__ = ["TRACES", "STUDY", "HISTORY", "results_dir", "write_results", "read_results", "atomic_write"]
 
 TRACES = "traces.parquet"
 STUDY = "study.toml"
+HISTORY = "history.csv"
 
 
 def results_dir(study: Study, out: str | os.PathLike | None = None) -> Path:
@@ -37,8 +38,14 @@ def atomic_write(path: Path, write) -> None:
 
 def write_results(path: Path, study: Study, traces: pd.DataFrame, *, version: str) -> None:
     """Write ``traces.parquet`` and the resolved ``study.toml`` into ``path``."""
+    history_file = None
+    if study.history is not None:
+        # Keep a copy beside the traces so the folder stays readable if the original moves.
+        data = Path(study.history.file).read_bytes()
+        atomic_write(path / HISTORY, lambda p: p.write_bytes(data))
+        history_file = HISTORY
     text = dump_study(study, header={"simlab version": version, "root seed": study.seed,
-                                     "source": study.source})
+                                     "source": study.source}, history_file=history_file)
     atomic_write(path / STUDY, lambda p: p.write_text(text, encoding="utf-8"))
     plain = traces.copy()
     plain.attrs = {}
