@@ -1,0 +1,22 @@
+"""Acquisition policies: one small class per rule, and the registry the study file names.
+
+To add a rule, write its class in a module of this package and list it in ``POLICIES``.
+"""
+
+from __future__ import annotations
+
+from .base import Acquisition, Context, Option, Policy
+from .classic import (ConfidenceBound, ExpectedImprovement, PosteriorMean, ProbabilityOfImprovement,
+                      RandomSearch, SobolSearch, ThompsonSampling)
+from .logei import dlog_h, log_h
+
+__all__ = [
+    "Option", "Context", "Policy", "Acquisition", "RandomSearch", "SobolSearch", "PosteriorMean",
+    "ConfidenceBound", "ProbabilityOfImprovement", "ExpectedImprovement", "ThompsonSampling",
+    "POLICIES", "log_h", "dlog_h",
+]
+
+POLICIES: dict[str, type[Policy]] = {c.rule: c for c in (
+    RandomSearch, SobolSearch, PosteriorMean, ConfidenceBound,
+    ProbabilityOfImprovement, ExpectedImprovement, ThompsonSampling,
+)}

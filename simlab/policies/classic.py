@@ -1,0 +1,162 @@
+"""The classic rules: random and space-filling search, posterior mean, confidence bound, PI, EI, Thompson."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.special import log_ndtr
+
+from ..worlds import FeatureSample
+from .base import Acquisition, Option, Policy
+from .logei import dlog_h, log_h
+
+__all__ = ["RandomSearch", "SobolSearch", "PosteriorMean", "ConfidenceBound", "ProbabilityOfImprovement",
+           "ExpectedImprovement", "ThompsonSampling"]
+
+
+class RandomSearch(Policy):
+    """Uniformly random inputs: the baseline every adaptive rule must beat."""
+
+    rule = "random"
+
+    def choose(self, post, t):
+        return self.ctx.rng.random(self.ctx.pool.shape[1])
+
+
+class SobolSearch(Policy):
+    """Non-adaptive space filling: continues the replicate's scrambled Sobol' sequence."""
+
+    rule = "sobol"
+
+    def choose(self, post, t):
+        return self.ctx.sequence[t]
+
+
+class PosteriorMean(Acquisition):
+    """Pure exploitation: the input with the lowest posterior mean."""
+
+    rule = "mean"
+
+    def _from_moments(self, mu, sd):
+        return -mu, -np.ones_like(mu), np.zeros_like(sd)
+
+
+class ConfidenceBound(Acquisition):
+    """Optimistic confidence bound ``mu - width * sd`` (minimisation form; the upper bound
+    of the user's objective when the study maximises).
+
+    References
+    ----------
+    Srinivas, Krause, Kakade & Seeger (2010), Gaussian Process Optimization in the Bandit
+    Setting, ICML (with a fixed width instead of their schedule).
+    """
+
+    rule = "lcb"
+    options = {"width": Option(2.0, float, 0.0, 100.0, "multiple of the posterior sd")}
+
+    def _from_moments(self, mu, sd):
+        return -(mu - self.width * sd), -np.ones_like(mu), np.full_like(sd, self.width)
+
+
+class _Improvement(Acquisition):
+    """Shared incumbent: the lowest posterior mean over the evaluated inputs (the
+    recommendation), which unlike the lowest observation is not biased down by noise."""
+
+    options = {"margin": Option(0.0, float, 0.0, None, "improvement margin xi, objective units")}
+
+    def prepare(self, post):
+        self.best = float(np.min(post.mean_at_data()))
+
+
+class ProbabilityOfImprovement(_Improvement):
+    """Probability of improvement ``Phi((f_best - xi - mu) / sd)``, scored as its logarithm.
+
+    References
+    ----------
+    Kushner (1964), A new method of locating the maximum point of an arbitrary multipeak
+    curve in the presence of noise, J. Basic Engineering 86.
+    """
+
+    rule = "pi"
+
+    def _value(self, mu, sd):
+        return log_ndtr((self.best - self.margin - mu) / sd)
+
+    def _from_moments(self, mu, sd):
+        z = (self.best - self.margin - mu) / sd
+        a = log_ndtr(z)
+        dz = np.exp(-0.5 * z * z - 0.5 * np.log(2 * np.pi) - a)  # phi(z) / Phi(z)
+        return a, -dz / sd, -dz * z / sd
+
+
+class ExpectedImprovement(_Improvement):
+    """Expected improvement ``sd h(z)``, ``h(z) = phi(z) + z Phi(z)``, scored as its logarithm.
+
+    Notes
+    -----
+    ``log EI = log sd + log h(z)`` is computed without underflow for any z (see
+    :func:`log_h`), so the rule still ranks candidates far from the incumbent, where plain
+    EI is exactly zero in floating point.
+
+    References
+    ----------
+    Mockus, Tiesis & Zilinskas (1978); Jones, Schonlau & Welch (1998), J. Global Optim. 13;
+    Ament et al. (2023), Unexpected Improvements to Expected Improvement for Bayesian
+    Optimization, NeurIPS (the log-space evaluation).
+    """
+
+    rule = "ei"
+
+    def _value(self, mu, sd):
+        return np.log(sd) + log_h((self.best - self.margin - mu) / sd)
+
+    def _from_moments(self, mu, sd):
+        z = (self.best - self.margin - mu) / sd
+        lh = log_h(z)
+        a = np.log(sd) + lh
+        g = dlog_h(z, lh)
+        return a, -g / sd, 1.0 / sd - g * z / sd
+
+
+class ThompsonSampling(Acquisition):
+    """Minimise one posterior function sample, drawn pathwise (no joint draw over the pool).
+
+    Notes
+    -----
+    ``g(.) = f(.) + K(., X) (K + s2 I)^-1 (y - f(X) - eps)`` with ``f`` a random-feature prior
+    draw and ``eps ~ N(0, s2)`` (Matheron's rule). The features over the pool are computed
+    once per campaign; each trial draws new weights, and the correction over the pool reuses
+    the posterior's cached cross term, so a sample costs O(m F + n m).
+
+    References
+    ----------
+    Thompson (1933), Biometrika 25; Wilson et al. (2020), Efficiently Sampling Functions from
+    Gaussian Process Posteriors, ICML.
+    """
+
+    rule = "thompson"
+    options = {"features": Option(512, int, 16, 8192, "spectral frequencies per sample")}
+
+    def start(self, ctx):
+        super().start(ctx)
+        post = ctx.posterior
+        self.sample = FeatureSample(post.kernel, post.mean, ctx.rng, self.features)
+        self._pool_basis = self.sample.basis(ctx.pool)
+
+    def prepare(self, post):
+        rng = self.ctx.rng
+        self.sample.redraw(rng)
+        eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
+        r = post.y - self.sample(post.X) - eps
+        self.beta = post.solve(r)
+        self._pool_values = self.sample.mean + self._pool_basis @ self.sample.w + post.pool_cross(r)
+
+    def score_pool(self, post):
+        return -self._pool_values
+
+    def score(self, post, U, *, grad=False):
+        U = np.atleast_2d(U)
+        g = self.sample(U) + post.kernel(U, post.X) @ self.beta
+        if not grad:
+            return -g
+        dg = self.sample.grad(U) + np.einsum("qnd,n->qd", post.kernel.grad(U, post.X), self.beta)
+        return -g, -dg
