@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 
@@ -34,7 +35,9 @@ class Trace:
     y, f : ndarray of shape (h + B,)
         Observed and noise-free values.
     rec : ndarray of shape (h + B,)
-        0-based row index (into these arrays) of the recommendation after each row.
+        0-based row index (into these arrays) of the recommendation after each row: the
+        observed input with the lowest posterior mean (the row itself while nothing has
+        been observed yet). ``y`` is NaN for lost trials.
     """
 
     U: np.ndarray
@@ -44,38 +47,66 @@ class Trace:
 
 
 def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.ndarray,
-                 sequence: np.ndarray, noise: np.ndarray, pool: np.ndarray,
-                 rng: np.random.Generator, history: tuple[np.ndarray, np.ndarray] | None = None) -> Trace:
+                 sequence: np.ndarray, observe: Callable[[float, int], float], budget: int,
+                 pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
+                 history: tuple[np.ndarray, np.ndarray] | None = None) -> Trace:
     """Replay one campaign.
 
     Parameters
     ----------
-    history : (ndarray of shape (h, d), ndarray of shape (h,)), optional
-        Trials already run (unit cube, internal orientation). They come first in the trace
-        and in the posterior; the budget counts new trials only.
     design : ndarray of shape (n0, d)
         Initial space-filling inputs (count toward the budget).
     sequence : ndarray of shape (B, d)
         The replicate's Sobol' sequence (for the non-adaptive `sobol` policy).
-    noise : ndarray of shape (B,)
-        Observation noise added at each trial, shared by every policy on this replicate.
+    observe : callable
+        ``observe(f, t)``: the observation of true value f at new trial t (shared noise
+        draws for every policy on this replicate); NaN when the trial is lost.
+    budget : int
+        New trials in this campaign.
     pool : ndarray of shape (m, d)
         Candidate inputs the acquisition is scored on before polishing.
     rng : numpy.random.Generator
         The policy's own stream for this replicate.
+    batch : int
+        Trials per round: all trials of a round are chosen before any result is back.
+    history : (ndarray of shape (h, d), ndarray of shape (h,)), optional
+        Trials already run (unit cube, internal orientation). They come first in the trace
+        and in the posterior; the budget counts new trials only.
     """
-    budget, d = len(noise), sequence.shape[1]
+    d = sequence.shape[1]
     H, yH = history if history is not None else (np.empty((0, d)), np.empty(0))
-    h = len(yH)
-    post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=h + budget)
+    h, n = len(yH), len(yH) + budget
+    post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=n + batch)
     policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post))
-    n = h + budget
     U, y, f, rec = np.empty((n, d)), np.empty(n), np.empty(n), np.empty(n, dtype=int)
-    for i in range(n):
-        t = i - h                                             # new-trial index; < 0 for past trials
-        u = H[i] if t < 0 else design[t] if t < len(design) else policy.choose(post, t)  # choose
-        f[i] = world(u[None, :])[0]                           # evaluate
-        y[i] = yH[i] if t < 0 else f[i] + noise[t]
-        post.add(u, y[i])                                     # update
-        U[i], rec[i] = u, post.recommend()                    # record
+    seen: list[int] = []                                   # trace rows the posterior has observed
+    for i in range(h):                                     # past trials, already observed
+        U[i], y[i], f[i] = H[i], yH[i], world(H[i : i + 1])[0]
+        post.add(H[i], yH[i])
+        seen.append(i)
+        rec[i] = seen[post.recommend()]
+    for start in range(0, budget, batch):                  # one round of up to `batch` trials
+        ts = range(start, min(start + batch, budget))
+        chosen = _fill_round(policy, post, ts, design)      # choose
+        for t, u in zip(ts, chosen):
+            i = h + t
+            U[i], f[i] = u, world(u[None, :])[0]           # evaluate
+            y[i] = observe(f[i], t)
+            if np.isfinite(y[i]):                          # update (a lost trial teaches nothing)
+                post.add(u, y[i])
+                seen.append(i)
+            rec[i] = seen[post.recommend()] if seen else i  # record
     return Trace(U=U, y=y, f=f, rec=rec)
+
+
+def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray) -> list[np.ndarray]:
+    """Choose every trial of a round before any of its results is back."""
+    chosen = []
+    with post.fantasies():
+        for k, t in enumerate(ts):
+            u = design[t] if t < len(design) else policy.choose(post, t)
+            chosen.append(np.asarray(u, dtype=float))
+            if k + 1 < len(ts):
+                policy.hold(post, u)                       # pending: believer, liar, penalizer...
+    policy.release()
+    return chosen

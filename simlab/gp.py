@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import warnings
+from contextlib import contextmanager
 
 import numpy as np
 from scipy.linalg import cho_solve, solve_triangular
@@ -140,6 +141,25 @@ class Posterior:
         self.n += len(y)
         self._refactor(escalate=False)
 
+    @contextmanager
+    def fantasies(self):
+        """Observations added inside this block are forgotten when it ends.
+
+        Appending rows leaves the first n rows of the factor untouched, so forgetting
+        them only restores n and the running pool sums. If an addition had to raise the
+        jitter, the factor is rebuilt once with the raised jitter instead.
+        """
+        n, jitter = self.n, self.jitter
+        mu, vsq = self._pool_mu.copy(), self._pool_vsq.copy()
+        try:
+            yield self
+        finally:
+            self.n, self._alpha = n, None
+            if self.jitter != jitter:
+                self._refactor(escalate=False)
+            else:
+                self._pool_mu, self._pool_vsq = mu, vsq
+
     def _refactor(self, *, escalate: bool) -> None:
         """Factor from scratch, raising the jitter tenfold until the Cholesky succeeds."""
         n = self.n
@@ -177,6 +197,8 @@ class Posterior:
 
     def alpha(self) -> np.ndarray:
         """``(K + s2 I)^-1 (y - m)``, shape (n,)."""
+        if self.n == 0:
+            return np.zeros(0)
         if self._alpha is None:
             self._alpha = solve_triangular(self.L, self._z[: self.n], lower=True, trans="T", check_finite=False)
         return self._alpha
@@ -219,6 +241,8 @@ class Posterior:
     def mean_at_data(self) -> np.ndarray:
         """Posterior mean at the evaluated inputs: ``m + L z - s2 alpha`` (no new solves of K)."""
         n = self.n
+        if n == 0:
+            return np.zeros(0)
         return self.mean + self.L @ self._z[:n] - self.s2 * self.alpha()
 
     def recommend(self) -> int:
@@ -227,10 +251,14 @@ class Posterior:
 
     def solve(self, r) -> np.ndarray:
         """``(K + s2 I)^-1 r`` for a vector r of shape (n,)."""
+        if self.n == 0:
+            return np.zeros(0)
         return cho_solve((self.L, True), r, check_finite=False)
 
     def pool_cross(self, r) -> np.ndarray:
         """``K(pool, X) (K + s2 I)^-1 r`` over the pool in O(n m) using the cached cross term."""
+        if self.n == 0:
+            return np.zeros(self.pool.shape[0])
         w = solve_triangular(self.L, r, lower=True, check_finite=False)
         return self._V[: self.n].T @ w
 

@@ -15,13 +15,14 @@ from .kernels import make_kernel
 from .policies import POLICIES, Policy
 from .rng import stream
 from .spec import Prior, Study
+from .noise import Observer
 from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
 
-__all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy",
+__all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
            "replay_replicate", "replay", "time_replicate", "history_arrays", "TRACE_COLUMNS"]
 
-TRACE_COLUMNS = ("policy", "replicate", "trial", "initial", "history", "y", "f", "regret", "regret_seen",
-                 "rec_trial")
+TRACE_COLUMNS = ("policy", "replicate", "trial", "round", "initial", "history", "y", "f", "lost", "regret",
+                 "regret_seen", "rec_trial", "horizon")
 
 
 def _kernel(prior: Prior, study: Study):
@@ -88,8 +89,17 @@ class Replicate:
     optimum: tuple[np.ndarray, float]
     design: np.ndarray      # (n0, d)
     sequence: np.ndarray    # (B, d)
-    noise: np.ndarray       # (B,)
+    shocks: np.ndarray      # (B,) unit-variance noise draws, one per trial
+    lost: np.ndarray        # (B,) bool: the trial is lost
     pool: np.ndarray        # (m, d)
+
+
+def make_observer(study: Study) -> Observer:
+    """The study's observation model (noise shape, growth, lost trials)."""
+    w = study.world
+    ref = w.prior if w.prior is not None else study.belief
+    return Observer(sd=w.noise, kind=w.noise_kind, df=w.noise_df, growth=w.noise_growth,
+                    center=ref.mean, scale=ref.amplitude, lost=w.lost, sign=study.sign)
 
 
 def make_replicate(study: Study, r: int) -> Replicate:
@@ -105,10 +115,10 @@ def make_replicate(study: Study, r: int) -> Replicate:
         design = qmc.LatinHypercube(d, seed=rng).random(c.initial)
     else:
         design = rng.random((c.initial, d))
-    noise = study.world.noise * stream(study.seed, r, "noise").standard_normal(B)
+    shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
     pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
     return Replicate(index=r, world=world, optimum=optimum, design=design, sequence=sequence,
-                     noise=noise, pool=pool)
+                     shocks=shocks, lost=lost, pool=pool)
 
 
 def make_policy(spec) -> Policy:
@@ -120,40 +130,74 @@ def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None) -> p
 
     Regret is measured against the better of the world's optimum and every input any
     policy evaluated on this replicate, so it is never negative and stays paired.
+
+    A horizon-aware policy (one whose early choices depend on the budget) is replayed
+    once per budget; its rows for trials in (previous budget, budget] come from the
+    campaign planned for that budget, so every budget's row is that budget's own campaign.
+    The ``horizon`` column says which campaign a row belongs to.
     """
     rep = rep or make_replicate(study, r)
-    belief = make_belief(study)
-    history = history_arrays(study)
-    traces: list[tuple[str, Trace]] = []
+    belief, observer, history = make_belief(study), make_observer(study), history_arrays(study)
+    c = study.campaign
+
+    def observe(f, t):
+        return observer(f, rep.shocks[t], rep.lost[t])
+
+    runs: list[tuple[str, list[tuple[int, Trace]]]] = []
     for spec in study.policies:
-        trace = run_campaign(make_policy(spec), belief, rep.world, design=rep.design,
-                             sequence=rep.sequence, noise=rep.noise, pool=rep.pool,
-                             rng=stream(study.seed, r, "policy", spec.label), history=history)
-        traces.append((spec.label, trace))
-    fstar = min(rep.optimum[1], min(float(t.f.min()) for _, t in traces))
-    frames = []
-    B, n0 = study.campaign.horizon, study.campaign.initial
+        horizons = c.budgets if make_policy(spec).horizon_aware else (c.horizon,)
+        per = [(b, run_campaign(make_policy(spec), belief, rep.world, design=rep.design,
+                                sequence=rep.sequence, observe=observe, budget=b, pool=rep.pool,
+                                rng=stream(study.seed, r, "policy", spec.label), batch=c.batch,
+                                history=history))
+               for b in horizons]
+        runs.append((spec.label, per))
+    fstar = min(rep.optimum[1], min(float(t.f.min()) for _, per in runs for _, t in per))
+
     h = study.history.size if study.history is not None else 0
-    trial = np.arange(1 - h, B + 1, dtype=np.int32)   # past trials -h+1 .. 0, then 1 .. B
-    for label, t in traces:
-        X = study.space.from_unit(t.U)
+    trial = np.arange(1 - h, c.horizon + 1, dtype=np.int32)   # past trials -h+1 .. 0, then 1 .. B
+    frames = []
+    for label, per in runs:
+        cols = _compose([(b, _columns(t, trial[: h + b], fstar)) for b, t in per], trial)
+        X = study.space.from_unit(cols.pop("U"))
         frame = {
             "policy": label,
-            "replicate": np.full(h + B, r, dtype=np.int32),
+            "replicate": np.full(len(trial), r, dtype=np.int32),
             "trial": trial,
-            "initial": (trial >= 1) & (trial <= n0),
+            "round": np.where(trial >= 1, (trial - 1) // c.batch + 1, 0).astype(np.int32),
+            "initial": (trial >= 1) & (trial <= c.initial),
             "history": trial <= 0,
         }
         frame.update({name: X[:, j] for j, name in enumerate(study.space.names)})
-        frame.update({
-            "y": study.sign * t.y,
-            "f": study.sign * t.f,
-            "regret": t.f[t.rec] - fstar,
-            "regret_seen": np.minimum.accumulate(t.f) - fstar,
-            "rec_trial": trial[t.rec],
-        })
+        frame.update({"y": study.sign * cols["y"], "f": study.sign * cols["f"],
+                      "lost": ~np.isfinite(cols["y"]), "regret": cols["regret"],
+                      "regret_seen": cols["regret_seen"], "rec_trial": cols["rec_trial"],
+                      "horizon": cols["horizon"]})
         frames.append(pd.DataFrame(frame))
     return pd.concat(frames, ignore_index=True)
+
+
+def _columns(t: Trace, trial: np.ndarray, fstar: float) -> dict[str, np.ndarray]:
+    """Per-row values of one campaign: regret of the recommendation and of the best seen input."""
+    seen = np.where(np.isfinite(t.y), t.f, np.inf)        # lost trials were never seen
+    best = np.minimum.accumulate(seen)
+    best = np.where(np.isfinite(best), best, t.f[t.rec])  # nothing seen yet: the current input
+    return {"U": t.U, "y": t.y, "f": t.f, "regret": t.f[t.rec] - fstar, "regret_seen": best - fstar,
+            "rec_trial": trial[t.rec]}
+
+
+def _compose(parts: list[tuple[int, dict]], trial: np.ndarray) -> dict[str, np.ndarray]:
+    """Rows of the campaign planned for the smallest budget >= each row's trial."""
+    out = {k: np.empty((len(trial),) + v.shape[1:], dtype=v.dtype) for k, v in parts[-1][1].items()}
+    out["horizon"] = np.empty(len(trial), dtype=np.int32)
+    lo = trial[0] - 1                                    # the first campaign also holds the past trials
+    for b, cols in parts:
+        rows = np.flatnonzero((trial > lo) & (trial <= b))
+        for k, v in cols.items():
+            out[k][rows] = v[rows]
+        out["horizon"][rows] = b
+        lo = b
+    return out
 
 
 def _replay_chunk(study: Study, replicates: list[int]) -> pd.DataFrame:

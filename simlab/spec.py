@@ -31,8 +31,8 @@ RESERVED = ("policy", "replicate", "trial", "y", "f", "regret", "regret_seen", "
 _SECTION_KEYS = {
     "study": ("name", "goal", "replicates", "seed"),
     "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",
-              "lengthscale_within", "amplitude_within"),
-    "campaign": ("initial", "design", "budgets", "pool"),
+              "lengthscale_within", "amplitude_within", "noise_kind", "noise_df", "noise_growth", "lost"),
+    "campaign": ("initial", "design", "budgets", "pool", "batch"),
     "target": ("regret",),
     "sweep": ("lengthscale", "amplitude", "replicates"),
     "history": ("file", "response"),
@@ -97,6 +97,10 @@ class WorldSpec:
     grid: int = 40               # grid points per input for method = "grid"
     lengthscale_within: float = 1.0  # each replicate draws lengthscales log-normally: 95 % within this factor
     amplitude_within: float = 1.0    # likewise for the amplitude (1.0: known exactly)
+    noise_kind: str = "gaussian"     # gaussian | student
+    noise_df: float = 5.0            # degrees of freedom for student noise (> 2)
+    noise_growth: float = 0.0        # sd = noise * exp(growth * (f - mean) / amplitude)
+    lost: float = 0.0                # probability that a trial is lost
 
 
 @dataclass(frozen=True)
@@ -128,6 +132,7 @@ class CampaignSpec:
     design: str
     budgets: tuple[int, ...]
     pool: int = 2048
+    batch: int = 1               # trials per round, chosen before any result of the round is back
 
     @property
     def horizon(self) -> int:
@@ -233,13 +238,13 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     if function is not None:
         function = r.choice(wt, "world.function", tuple(functions.FUNCTIONS), default=None)
         fn = functions.FUNCTIONS[function]
-        r.keys(wt, "world", ("function", "noise"),
-               hint="a published function takes only `noise`; drop the prior keys")
+        r.keys(wt, "world", ("function", "noise", *_NOISE_KEYS),
+               hint="a published function takes only noise settings; drop the prior keys")
         if goal != "minimize":
             r.fail("study.goal", f"published test functions are minimised; use goal = \"minimize\" with function = \"{function}\"")
         space = _read_space(r, data, fn=fn)
         noise = r.number(wt, "world.noise", low=0.0, default=0.0)
-        world = WorldSpec(prior=None, function=function, noise=noise)
+        world = WorldSpec(prior=None, function=function, noise=noise, **_read_noise(r, wt))
         world_prior = None
     else:
         space = _read_space(r, data, fn=None)
@@ -257,7 +262,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
             r.fail("world.lengthscale_within", "uncertain lengthscales need method = \"features\" "
                    "(a grid draw factors one covariance matrix for all replicates)")
         world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise,
-                          method=method, features=features, grid=grid, **within)
+                          method=method, features=features, grid=grid, **within, **_read_noise(r, wt))
 
     bt = r.table(data, "belief", required=False)
     r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise"))
@@ -277,7 +282,9 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         r.fail("campaign.budgets", f"every budget must be at least campaign.initial = {initial} "
                f"(the initial design counts toward the budget); got {min(budgets)}")
     pool = r.integer(ct, "campaign.pool", low=16, high=1_000_000, default=2048)
-    campaign = CampaignSpec(initial=initial, design=design, budgets=tuple(sorted(budgets)), pool=pool)
+    batch = r.integer(ct, "campaign.batch", low=1, high=10_000, default=1)
+    campaign = CampaignSpec(initial=initial, design=design, budgets=tuple(sorted(budgets)), pool=pool,
+                            batch=batch)
 
     tt = r.table(data, "target")
     r.keys(tt, "target", _SECTION_KEYS["target"])
@@ -295,6 +302,19 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     return Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                  belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
                  history=history, source=source)
+
+
+_NOISE_KEYS = ("noise_kind", "noise_df", "noise_growth", "lost")
+
+
+def _read_noise(r: "_Reader", wt: dict) -> dict:
+    kind = r.choice(wt, "world.noise_kind", ("gaussian", "student"), default="gaussian")
+    df = r.number(wt, "world.noise_df", low=2.0, low_open=True, high=1e6, default=5.0)
+    if "noise_df" in wt and kind != "student":
+        r.fail("world.noise_df", "only applies with noise_kind = \"student\"")
+    growth = r.number(wt, "world.noise_growth", low=-10.0, high=10.0, default=0.0)
+    lost = r.number(wt, "world.lost", low=0.0, high=0.95, default=0.0)
+    return {"noise_kind": kind, "noise_df": df, "noise_growth": growth, "lost": lost}
 
 
 def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None) -> HistorySpec | None:
@@ -424,6 +444,8 @@ def _read_policies(r: "_Reader", data: dict) -> tuple[PolicySpec, ...]:
                 settings.append((key, opt.default))
             elif opt.kind is int:
                 settings.append((key, r.integer(t, fld, low=opt.low, high=opt.high)))
+            elif opt.kind is str:
+                settings.append((key, r.choice(t, fld, opt.choices)))
             else:
                 settings.append((key, r.number(t, fld, low=opt.low, high=opt.high)))
         out.append(PolicySpec(rule=rule, label=label, settings=tuple(settings)))
@@ -601,14 +623,16 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
     w = study.world
     if w.function is not None:
         lines += [f"function = {_toml_value(w.function)}", f"noise = {w.noise!r}"]
+        lines += _noise_lines(w)
     else:
         lines += _prior_lines(w.prior)
         lines += [f"method = {_toml_value(w.method)}", f"features = {w.features}", f"grid = {w.grid}",
                   f"lengthscale_within = {w.lengthscale_within!r}", f"amplitude_within = {w.amplitude_within!r}"]
+        lines += _noise_lines(w)
     lines += ["", "[belief]", *_prior_lines(study.belief), "", "[campaign]"]
     c = study.campaign
     lines += [f"initial = {c.initial}", f"design = {_toml_value(c.design)}",
-              f"budgets = {_toml_value(list(c.budgets))}", f"pool = {c.pool}", "",
+              f"budgets = {_toml_value(list(c.budgets))}", f"pool = {c.pool}", f"batch = {c.batch}", "",
               "[target]", f"regret = {study.target!r}"]
     if study.history is not None:
         lines += ["", "[history]", f"file = {_toml_value(history_file or study.history.file)}",
@@ -620,6 +644,13 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
         lines += ["", "[[policy]]", f"rule = {_toml_value(p.rule)}", f"label = {_toml_value(p.label)}"]
         lines += [f"{k} = {_toml_value(v)}" for k, v in p.settings]
     return "\n".join(lines) + "\n"
+
+
+def _noise_lines(w: WorldSpec) -> list[str]:
+    out = [f"noise_kind = {_toml_value(w.noise_kind)}"]
+    if w.noise_kind == "student":
+        out.append(f"noise_df = {w.noise_df!r}")
+    return out + [f"noise_growth = {w.noise_growth!r}", f"lost = {w.lost!r}"]
 
 
 def _prior_lines(p: Prior) -> list[str]:

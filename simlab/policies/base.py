@@ -7,6 +7,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 
+from scipy.special import log_ndtr
+
 from ..gp import Posterior
 from ..optimize import distinct_best, polish
 
@@ -22,6 +24,7 @@ class Option:
     low: float | None = None
     high: float | None = None
     help: str = ""
+    choices: tuple[str, ...] = ()   # for kind=str: the allowed words
 
 
 @dataclass
@@ -36,10 +39,22 @@ class Context:
 
 
 class Policy:
-    """Chooses the next trial. Subclasses set ``rule`` and implement :meth:`choose`."""
+    """Chooses the next trial. Subclasses set ``rule`` and implement :meth:`choose`.
+
+    ``options`` declared on a class are merged with those of its bases, so a rule lists
+    only its own settings.
+    """
 
     rule: ClassVar[str] = ""
     options: ClassVar[dict[str, Option]] = {}
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        merged: dict[str, Option] = {}
+        for base in reversed(cls.__mro__[1:]):
+            merged.update(base.__dict__.get("options", {}))
+        merged.update(cls.__dict__.get("options", {}))
+        cls.options = merged
 
     def __init__(self, label: str | None = None, **settings):
         self.label = label or self.rule
@@ -58,17 +73,63 @@ class Policy:
         """The next input (d,) on the unit cube; t is the 0-based trial index."""
         raise NotImplementedError
 
+    @property
+    def horizon_aware(self) -> bool:
+        """True when early choices depend on the budget (the runner then runs one campaign per budget)."""
+        return False
+
+    def hold(self, post: Posterior, u) -> None:
+        """Account for a trial chosen in this round whose result is not back yet.
+
+        Non-adaptive rules ignore pending trials. Any change to ``post`` is undone by the
+        campaign at the end of the round (inside ``post.fantasies()``).
+        """
+
+    def release(self) -> None:
+        """The round's results are in: forget pending trials."""
+
 
 class Acquisition(Policy):
     """A rule that scores inputs: scored over the pool, the best few polished by L-BFGS-B.
 
     Subclasses implement :meth:`score` (larger is better), or :meth:`_from_moments` when
     the score is a function of the posterior mean and sd alone.
+
+    Settings every acquisition has:
+
+    - ``fill``: how a round of several trials (``[campaign] batch``) is filled before any
+      result is back. ``believer``: pretend each pending trial returned the posterior mean
+      (kriging believer); ``liar``: pretend it returned a constant ``lie`` (constant liar),
+      both Ginsbourger, Le Riche & Carraro (2010), Kriging is well-suited to parallelize
+      optimization; ``penalize``: keep the posterior and multiply the acquisition by
+      local penalizers around pending trials, Gonzalez, Dai, Hennig & Lawrence (2016),
+      Batch Bayesian optimization via local penalization, AISTATS; ``samples``: nothing
+      to hold, because every choice is a fresh posterior sample (Thompson-type rules).
+    - ``lie``: the constant for ``liar``: ``min``, ``mean`` or ``max`` of the observations
+      so far (internal, minimising orientation: ``min`` is the optimistic lie).
+    - ``exploit_last``: the final k trials of the campaign go to the lowest posterior mean
+      (a switch to pure exploitation); k > 0 makes the policy horizon-aware.
     """
 
+    options = {
+        "fill": Option("believer", str, help="how a round of several trials is filled",
+                       choices=("believer", "liar", "penalize", "samples")),
+        "lie": Option("min", str, help="constant for fill = \"liar\"", choices=("min", "mean", "max")),
+        "exploit_last": Option(0, int, 0, 100_000, "final trials spent on the lowest posterior mean"),
+    }
     n_starts: ClassVar[int] = 4       # pool points polished by L-BFGS-B (0: take the best pool point)
     polish_iterations: ClassVar[int] = 30
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs
+    log_score: ClassVar[bool] = False  # the score is the log of a positive quantity (log EI, log PI)
+
+    def __init__(self, label: str | None = None, **settings):
+        super().__init__(label, **settings)
+        self._pending: list[tuple[np.ndarray, float, float]] = []   # (x_j, mu_j, sd_j) for penalize
+        self._held = 0                                               # trials held this round
+
+    @property
+    def horizon_aware(self) -> bool:
+        return self.exploit_last > 0
 
     def prepare(self, post: Posterior) -> None:
         """Per-trial state (incumbent, function sample) computed before scoring."""
@@ -99,17 +160,100 @@ class Acquisition(Policy):
         da_dsd = np.where(floored, 0.0, da_dsd)
         return a, da_dmu[:, None] * dmu + da_dsd[:, None] * dsd
 
+    # ------------------------------------------------------------------ choosing
     def choose(self, post, t):
+        if t >= self.ctx.horizon - self.exploit_last:
+            return _lowest_mean(post, self.ctx.pool, self.n_starts, self.polish_iterations)
         self.prepare(post)
         pool = self.ctx.pool
-        values = self.score_pool(post)
+        values = self._penalized(post, pool, self.score_pool(post))
         if self.n_starts == 0:
             return pool[int(np.argmax(values))].copy()
         starts = pool[distinct_best(pool, -values, self.n_starts)]
 
         def neg(U):
-            a, g = self.score(post, U, grad=True)
+            a, g = self._penalized(post, U, *self.score(post, U, grad=True))
             return -a, -g
 
         U, v = polish(neg, starts, maxiter=self.polish_iterations)
         return U[int(np.argmin(v))]
+
+    # ------------------------------------------------------------------ rounds of trials
+    def hold(self, post, u):
+        first = self._held == 0
+        self._held += 1
+        if self.fill == "believer":
+            post.add(u, float(post.moments(np.atleast_2d(u))[0][0]))
+        elif self.fill == "liar":
+            if first:  # the lie comes from real observations, fixed for the round
+                y = post.y
+                self._lie = float({"min": np.min, "mean": np.mean, "max": np.max}[self.lie](y)) if len(y) else post.mean
+            post.add(u, self._lie)
+        elif self.fill == "penalize":
+            if first:
+                self._penalty_state(post)
+            mu, sd = post.moments(np.atleast_2d(u))
+            self._pending.append((np.asarray(u, dtype=float), float(mu[0]), float(self._floor(post, sd)[0])))
+
+    def release(self):
+        self._pending, self._held = [], 0
+
+    def _penalty_state(self, post):
+        """Lipschitz constant and minimum estimate for local penalization (Gonzalez et al. 2016).
+
+        L is the largest norm of the posterior-mean gradient over the pool (unit-cube
+        units); M is the lowest posterior mean over the pool and the evaluated inputs.
+        """
+        pool = self.ctx.pool
+        mu, _, dmu, _ = post.moments(pool, grad=True)
+        self._lipschitz = max(float(np.sqrt((dmu**2).sum(1)).max()), 1e-7 * post.kernel.amplitude)
+        low = [mu.min()] + ([post.mean_at_data().min()] if post.n else [])
+        self._minimum = float(min(low))
+
+    def _penalized(self, post, U, values, grads=None):
+        """Add log local penalizers of the pending trials to the (log-transformed) score.
+
+        Notes
+        -----
+        For minimisation the penalizer of pending x_j is
+        ``phi_j(x) = Phi((L ||x - x_j|| - mu_j + M) / sd_j)``: the probability that x lies
+        outside the ball around x_j that cannot hold the minimum (Gonzalez et al. 2016,
+        eq. 4, in minimisation form). Scores that are not already logarithms are first
+        mapped through ``log(softplus(a))`` as in that paper.
+        """
+        if not self._pending:
+            return values if grads is None else (values, grads)
+        U = np.atleast_2d(U)
+        if self.log_score:
+            total, g = values.copy(), None if grads is None else grads.copy()
+        else:
+            sp = np.logaddexp(0.0, values)                      # softplus
+            total = np.log(sp)
+            if grads is not None:
+                g = (1.0 / (1.0 + np.exp(-values)) / sp)[:, None] * grads
+        for xj, mu_j, sd_j in self._pending:
+            diff = U - xj
+            dist = np.sqrt((diff**2).sum(1))
+            z = (self._lipschitz * dist - mu_j + self._minimum) / sd_j
+            total = total + log_ndtr(z)
+            if grads is not None:
+                ratio = np.exp(-0.5 * z * z - 0.5 * np.log(2 * np.pi) - log_ndtr(z))   # phi / Phi
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    unit = np.where(dist[:, None] > 0, diff / dist[:, None], 0.0)
+                g = g + (ratio * self._lipschitz / sd_j)[:, None] * unit
+        return total if grads is None else (total, g)
+
+
+def _lowest_mean(post: Posterior, pool, n_starts: int, iterations: int) -> np.ndarray:
+    """The input with the lowest posterior mean: pool search, then L-BFGS-B polish."""
+    mu, _ = post.pool_moments()
+    if n_starts == 0:
+        return pool[int(np.argmin(mu))].copy()
+    starts = pool[distinct_best(pool, mu, n_starts)]
+
+    def fg(U):
+        m, _, dm, _ = post.moments(U, grad=True)
+        return m, dm
+
+    U, v = polish(fg, starts, maxiter=iterations)
+    return U[int(np.argmin(v))]

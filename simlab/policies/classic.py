@@ -64,7 +64,8 @@ class _Improvement(Acquisition):
     options = {"margin": Option(0.0, float, 0.0, None, "improvement margin xi, objective units")}
 
     def prepare(self, post):
-        self.best = float(np.min(post.mean_at_data()))
+        # before any observation, improvement is measured from the prior mean
+        self.best = float(np.min(post.mean_at_data())) if post.n else post.mean
 
 
 class ProbabilityOfImprovement(_Improvement):
@@ -77,6 +78,7 @@ class ProbabilityOfImprovement(_Improvement):
     """
 
     rule = "pi"
+    log_score = True
 
     def _value(self, mu, sd):
         return log_ndtr((self.best - self.margin - mu) / sd)
@@ -105,6 +107,7 @@ class ExpectedImprovement(_Improvement):
     """
 
     rule = "ei"
+    log_score = True
 
     def _value(self, mu, sd):
         return np.log(sd) + log_h((self.best - self.margin - mu) / sd)
@@ -134,7 +137,11 @@ class ThompsonSampling(Acquisition):
     """
 
     rule = "thompson"
-    options = {"features": Option(512, int, 16, 8192, "spectral frequencies per sample")}
+    options = {
+        "features": Option(512, int, 16, 8192, "spectral frequencies per sample"),
+        "fill": Option("samples", str, help="how a round of several trials is filled",
+                       choices=("samples", "believer", "liar", "penalize")),
+    }
 
     def start(self, ctx):
         super().start(ctx)

@@ -51,7 +51,7 @@ def test_base_study_resolves_defaults(tmp_path):
     assert s.space.names == ("barrel_temp", "screw_speed")
     assert s.belief == s.world.prior  # every [belief] key left out copies [world]
     assert s.campaign.design == "sobol" and s.campaign.pool == 2048
-    assert s.labels == ("ei", "lcb") and s.policies[1].options == {"width": 1.5}
+    assert s.labels == ("ei", "lcb") and s.policies[1].options["width"] == 1.5
     assert s.sign == -1.0
 
 
