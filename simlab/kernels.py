@@ -57,9 +57,15 @@ class Kernel:
     def _dist(self, A, B):
         A = np.asarray(A, dtype=float) / self.lengthscale
         B = np.asarray(B, dtype=float) / self.lengthscale
-        # |a|^2 + |b|^2 - 2ab is fast but loses digits near r = 0, where the Matérn
-        # kernels are steepest; clip and use the exact form for tiny distances.
-        sq = (A * A).sum(1)[:, None] + (B * B).sum(1)[None, :] - 2.0 * A @ B.T
+        a2, b2 = (A * A).sum(1)[:, None], (B * B).sum(1)[None, :]
+        # |a|^2 + |b|^2 - 2ab is fast but cancels near r = 0, where rounding of ~1e-16 in the
+        # square becomes r ~ 1e-8 (a visible dent in the Matern-1/2 diagonal). Entries that
+        # small are recomputed from the exact differences.
+        sq = a2 + b2 - 2.0 * A @ B.T
+        near = np.nonzero(sq < 1e-6 * (a2 + b2 + 1.0))
+        if near[0].size:
+            diff = A[near[0]] - B[near[1]]
+            sq[near] = (diff * diff).sum(1)
         np.maximum(sq, 0.0, out=sq)
         return np.sqrt(sq)
 

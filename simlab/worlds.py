@@ -38,14 +38,21 @@ class World:
 
 
 def find_minimum(f, fg, dim: int, rng, *, n_search: int | None = None, n_polish: int = 8,
-                 extra=None) -> tuple[np.ndarray, float]:
-    """Global minimum of a smooth function on [0, 1]^dim.
+                 extra=None, zoom: int = 6, zoom_points: int = 64) -> tuple[np.ndarray, float]:
+    """Global minimum of a function on [0, 1]^dim.
 
     ``f(U)`` gives values and ``fg(U)`` values and gradients for U of shape (n, dim).
-    A scrambled Sobol' set of ``n_search`` points (default 2^(10 + dim), capped at 2^14),
-    plus any ``extra`` points, is evaluated; the ``n_polish`` best distinct points are
-    polished with L-BFGS-B. Regret is measured against the better of this and every input a
-    campaign evaluated, so a missed optimum can only make regret a little too large.
+
+    1. A scrambled Sobol' set of ``n_search`` points (default 2^(10 + dim), capped at 2^14),
+       plus any ``extra`` points, is evaluated.
+    2. Around each of the ``2 * n_polish`` best distinct points, ``zoom`` rounds of
+       ``zoom_points`` uniform points in a box that halves every round (starting at twice
+       the Sobol' spacing) move the start to the best point found: a derivative-free local
+       search, needed for rough worlds (Matern 1/2) where gradients say little.
+    3. The ``n_polish`` best are polished with L-BFGS-B.
+
+    Regret is measured against the better of this and every input a campaign evaluated, so
+    a missed optimum can only make regret a little too large.
     """
     if n_search is None:
         n_search = 2 ** min(10 + dim, 14)
@@ -53,8 +60,20 @@ def find_minimum(f, fg, dim: int, rng, *, n_search: int | None = None, n_polish:
     if extra is not None:
         U = np.vstack([U, extra])
     v = f(U)
-    idx = distinct_best(U, v, n_polish)
-    Up, vp = polish(fg, U[idx], maxiter=200)
+    idx = distinct_best(U, v, 2 * n_polish)
+    starts, best_v = U[idx].copy(), v[idx].copy()
+    half = 2.0 * len(U) ** (-1.0 / dim)
+    for _ in range(zoom):
+        cand = starts[:, None, :] + half * (2.0 * rng.random((len(starts), zoom_points, dim)) - 1.0)
+        cand = np.clip(cand, 0.0, 1.0)
+        vc = f(cand.reshape(-1, dim)).reshape(len(starts), zoom_points)
+        j = np.argmin(vc, axis=1)
+        better = vc[np.arange(len(starts)), j] < best_v
+        starts[better] = cand[better, j[better]]
+        best_v[better] = vc[better, j[better]]
+        half /= 2.0
+    keep = np.argsort(best_v)[:n_polish]
+    Up, vp = polish(fg, starts[keep], maxiter=200)
     best = int(np.argmin(vp))
     return Up[best], float(vp[best])
 
