@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from types import SimpleNamespace
 from typing import Callable
 
 import numpy as np
@@ -17,11 +18,16 @@ __all__ = ["Belief", "Trace", "run_campaign"]
 
 @dataclass(frozen=True)
 class Belief:
-    """The campaign's model, on the unit cube and in the internal (minimising) orientation."""
+    """The campaign's model, on the unit cube and in the internal (minimising) orientation.
+
+    ``refit_every = k > 0`` refits the hyperparameters by maximum likelihood after every k
+    new trials (at the end of the round that completes them), as a real team would.
+    """
 
     kernel: Kernel
     mean: float
     noise: float
+    refit_every: int = 0
 
 
 @dataclass
@@ -49,7 +55,8 @@ class Trace:
 def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.ndarray,
                  sequence: np.ndarray, observe: Callable[[float, int], float], budget: int,
                  pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
-                 history: tuple[np.ndarray, np.ndarray] | None = None) -> Trace:
+                 history: tuple[np.ndarray, np.ndarray] | None = None,
+                 refit_rng: np.random.Generator | None = None) -> Trace:
     """Replay one campaign.
 
     Parameters
@@ -72,6 +79,8 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     history : (ndarray of shape (h, d), ndarray of shape (h,)), optional
         Trials already run (unit cube, internal orientation). They come first in the trace
         and in the posterior; the budget counts new trials only.
+    refit_rng : numpy.random.Generator, optional
+        Stream for the random restarts of belief refits (``belief.refit_every > 0``).
     """
     d = sequence.shape[1]
     H, yH = history if history is not None else (np.empty((0, d)), np.empty(0))
@@ -96,7 +105,30 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                 post.add(u, y[i])
                 seen.append(i)
             rec[i] = seen[post.recommend()] if seen else i  # record
+        k = belief.refit_every
+        if k and (ts.stop // k > ts.start // k):           # a multiple of k trials is complete
+            _refit(post, refit_rng)
     return Trace(U=U, y=y, f=f, rec=rec)
+
+
+def _refit(post: Posterior, rng: np.random.Generator) -> None:
+    """Maximum-likelihood refit of the belief on the data observed so far, warm-started.
+
+    Two starts: the current hyperparameters and one random point. With too little data
+    (fewer than d + 2 observations) or a constant response the belief is left as it is.
+    """
+    from .fit import fit_hyperparameters
+
+    kernel = post.kernel
+    if post.n < kernel.dim + 2 or np.ptp(post.y) == 0:
+        return
+    current = SimpleNamespace(lengthscale=kernel.lengthscale, amplitude=kernel.amplitude,
+                              noise=max(post.noise, 1e-12))
+    try:
+        fit = fit_hyperparameters(kernel.name, post.X, post.y, restarts=2, rng=rng, start=current)
+    except (ValueError, np.linalg.LinAlgError):
+        return
+    post.refit(type(kernel)(fit.lengthscale, fit.amplitude), fit.mean, fit.noise)
 
 
 def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray) -> list[np.ndarray]:

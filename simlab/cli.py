@@ -27,6 +27,14 @@ examples:
 The grid comes from the study's [sweep] table (lengthscale = [...], amplitude = [...],
 replicates = N); without one, factors 1/4, 1/2, 1, 2, 4 on both and up to 50 replicates.
 """
+_EPILOG_CALIBRATE = """\
+examples:
+  simlab calibrate configs/fermentation-runs.csv --response titre --goal maximize > prior.toml
+  simlab calibrate runs.csv --response yield --inputs temp,pressure --kernel auto
+
+Standard output is TOML ([space] and [world] tables) to paste into a study; the fit
+table and warnings go to standard error.
+"""
 _EPILOG_REPORT = """\
 examples:
   simlab report results/pilot-extruder
@@ -97,12 +105,33 @@ def build_parser() -> argparse.ArgumentParser:
     sweep.add_argument("--replicates", type=_positive_int, metavar="N", help="override [sweep] replicates")
     sweep.add_argument("--quiet", action="store_true", help="no progress bar")
 
+    cal = sub.add_parser("calibrate", help="fit a world prior to past runs (prints TOML)",
+                         description="Fit Gaussian-process hyperparameters (lengthscale per input, amplitude, "
+                         "constant mean, noise) to a CSV of past runs by maximum marginal likelihood, and "
+                         "print [space] and [world] tables for a study.",
+                         epilog=_EPILOG_CALIBRATE, formatter_class=argparse.RawDescriptionHelpFormatter)
+    cal.add_argument("data", metavar="DATA.csv")
+    cal.add_argument("--response", required=True, metavar="COLUMN", help="column holding the measured response")
+    cal.add_argument("--inputs", metavar="A,B,...", help="input columns (default: every other numeric column)")
+    cal.add_argument("--kernel", default="matern52", choices=[*_kernel_names(), "auto"],
+                     help="kernel family, or auto to compare all by leave-one-out (default matern52)")
+    cal.add_argument("--goal", default="minimize", choices=["minimize", "maximize"],
+                     help="whether the response is minimised or maximised (default minimize)")
+    cal.add_argument("--restarts", type=_positive_int, default=8, metavar="N",
+                     help="optimiser starts per kernel (default 8)")
+    cal.add_argument("--seed", type=int, default=0, help="seed for the optimiser's starting points")
+
     report = sub.add_parser("report", help="summarise a results folder again from its stored traces",
                             description="Read traces.parquet and study.toml from a results folder and print "
                             "the summary table, without replaying any campaign.",
                             epilog=_EPILOG_REPORT, formatter_class=argparse.RawDescriptionHelpFormatter)
     report.add_argument("folder", metavar="DIR")
     return p
+
+
+def _kernel_names():
+    from .kernels import KERNELS
+    return list(KERNELS)
 
 
 def _version() -> str:
@@ -114,7 +143,8 @@ def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     from .spec import StudyError
     try:
-        return {"run": _run, "check": _check, "report": _report, "sweep": _sweep}[args.command](args)
+        return {"run": _run, "check": _check, "report": _report, "sweep": _sweep,
+                "calibrate": _calibrate}[args.command](args)
     except StudyError as exc:
         print(f"simlab: error: {exc}", file=sys.stderr)
         return 2
@@ -201,6 +231,21 @@ def _sweep(args) -> int:
                "not a clear lead: its worst-cell interval overlaps the runner-up's; more replicates would tell")
     print(f"\nsafest across the grid: {first['policy']} ({verdict})")
     print(f"{time.perf_counter() - t0:.1f} s; results in {result.path}")
+    return 0
+
+
+def _calibrate(args) -> int:
+    from .calibrate import calibrate
+    from .data import DataError
+    inputs = [s.strip() for s in args.inputs.split(",")] if args.inputs else None
+    try:
+        cal = calibrate(args.data, response=args.response, inputs=inputs, kernel=args.kernel,
+                        goal=args.goal, restarts=args.restarts, seed=args.seed)
+    except DataError as exc:
+        print(f"simlab: error: {exc}", file=sys.stderr)
+        return 2
+    sys.stdout.write(cal.toml())
+    sys.stderr.write(cal.diagnostics())
     return 0
 
 

@@ -64,6 +64,7 @@ class Posterior:
         self._pool_mu = np.full(m, self.mean)
         self._pool_vsq = np.zeros(m)
         self._alpha = None  # cached (K + s2 I)^-1 (y - m), cleared by every update
+        self.version = 0    # bumped by refit(): policies caching kernel-derived state compare it
         self.n = 0
 
     # ------------------------------------------------------------------ state
@@ -140,6 +141,16 @@ class Posterior:
         self._y[self.n : self.n + len(y)] = y
         self.n += len(y)
         self._refactor(escalate=False)
+
+    def refit(self, kernel: Kernel, mean: float, noise: float) -> None:
+        """Replace the hyperparameters and refactor the data held so far (O(n^3 + n^2 m))."""
+        self.kernel, self.mean, self.noise, self.jitter = kernel, float(mean), float(noise), 0.0
+        self.version += 1
+        if self.n:
+            self._refactor(escalate=False)
+        else:
+            self._pool_mu = np.full(self.pool.shape[0], self.mean)
+            self._pool_vsq = np.zeros(self.pool.shape[0])
 
     @contextmanager
     def fantasies(self):

@@ -18,6 +18,7 @@ PURPOSES = {
     "policy": 4,     # a policy's own randomness (Thompson samples, random search)
     "optimum": 5,    # the search for the world's optimum
     "hyper": 6,      # the replicate's own world hyperparameters when they are uncertain
+    "refit": 7,      # starting points of a campaign's belief refits (per policy)
 }
 
 

@@ -32,7 +32,8 @@ def _kernel(prior: Prior, study: Study):
 
 def make_belief(study: Study) -> Belief:
     b = study.belief
-    return Belief(kernel=_kernel(b, study), mean=study.sign * b.mean, noise=b.noise)
+    return Belief(kernel=_kernel(b, study), mean=study.sign * b.mean, noise=b.noise,
+                  refit_every=study.refit_every)
 
 
 def make_world(study: Study, replicate: int) -> World:
@@ -149,7 +150,7 @@ def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None) -> p
         per = [(b, run_campaign(make_policy(spec), belief, rep.world, design=rep.design,
                                 sequence=rep.sequence, observe=observe, budget=b, pool=rep.pool,
                                 rng=stream(study.seed, r, "policy", spec.label), batch=c.batch,
-                                history=history))
+                                history=history, refit_rng=stream(study.seed, r, "refit", spec.label)))
                for b in horizons]
         runs.append((spec.label, per))
     fstar = min(rep.optimum[1], min(float(t.f.min()) for _, per in runs for _, t in per))

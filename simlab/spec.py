@@ -165,6 +165,7 @@ class Study:
     policies: tuple[PolicySpec, ...]
     sweep: SweepSpec = SweepSpec()
     history: HistorySpec | None = None
+    refit_every: int = 0         # [belief] refit_every: refit the belief by maximum likelihood every k trials
     source: str = field(default="<study>", compare=False)
 
     @property
@@ -265,7 +266,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
                           method=method, features=features, grid=grid, **within, **_read_noise(r, wt))
 
     bt = r.table(data, "belief", required=False)
-    r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise"))
+    r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise", "refit_every"))
+    refit_every = r.integer(bt, "belief.refit_every", low=0, high=100_000, default=0)
     belief = _read_prior(r, bt, "belief", space, base=world_prior, noise_default=world.noise)
 
     history = _read_history(r, data, space, base_dir)
@@ -301,7 +303,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     )
     return Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                  belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
-                 history=history, source=source)
+                 history=history, refit_every=refit_every, source=source)
 
 
 _NOISE_KEYS = ("noise_kind", "noise_df", "noise_growth", "lost")
@@ -340,8 +342,8 @@ def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None)
         bad = np.flatnonzero((X[:, j] < lo) | (X[:, j] > hi))
         if bad.size:
             i = int(bad[0])
-            r.fail("history.file", f"{path}: row {i + 1}: {name} = {X[i, j]:g} lies outside [space] "
-                   f"[{lo:g}, {hi:g}]; widen the space or drop the row")
+            r.fail("history.file", f"{path}: column \"{name}\", row {table.index[i]} (the header is row 1): "
+                   f"{X[i, j]:g} lies outside [space] [{lo:g}, {hi:g}]; widen the space or drop the row")
     return HistorySpec(file=str(path.resolve()), response=response,
                        X=tuple(tuple(float(v) for v in row) for row in X),
                        y=tuple(float(v) for v in table[response].to_numpy(dtype=float)))
@@ -629,7 +631,7 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
         lines += [f"method = {_toml_value(w.method)}", f"features = {w.features}", f"grid = {w.grid}",
                   f"lengthscale_within = {w.lengthscale_within!r}", f"amplitude_within = {w.amplitude_within!r}"]
         lines += _noise_lines(w)
-    lines += ["", "[belief]", *_prior_lines(study.belief), "", "[campaign]"]
+    lines += ["", "[belief]", *_prior_lines(study.belief), f"refit_every = {study.refit_every}", "", "[campaign]"]
     c = study.campaign
     lines += [f"initial = {c.initial}", f"design = {_toml_value(c.design)}",
               f"budgets = {_toml_value(list(c.budgets))}", f"pool = {c.pool}", f"batch = {c.batch}", "",

@@ -145,12 +145,17 @@ class ThompsonSampling(Acquisition):
 
     def start(self, ctx):
         super().start(ctx)
-        post = ctx.posterior
-        self.sample = FeatureSample(post.kernel, post.mean, ctx.rng, self.features)
-        self._pool_basis = self.sample.basis(ctx.pool)
+        self._features(ctx.posterior)
+
+    def _features(self, post):
+        self.sample = FeatureSample(post.kernel, post.mean, self.ctx.rng, self.features)
+        self._pool_basis = self.sample.basis(self.ctx.pool)
+        self._version = post.version
 
     def prepare(self, post):
         rng = self.ctx.rng
+        if post.version != self._version:   # the belief was refitted: new kernel, new features
+            self._features(post)
         self.sample.redraw(rng)
         eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
         r = post.y - self.sample(post.X) - eps
