@@ -1,0 +1,294 @@
+"""The decision files and report.html of a tiny study: numbers equal their CSV cells, self-contained, renders."""
+
+import base64
+import re
+import shutil
+import subprocess
+from decimal import Decimal
+from html.parser import HTMLParser
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import simlab
+from simlab.report import report_steps, write_outputs
+from simlab.runner import replay
+from simlab.spec import parse_study
+
+TRICKY = 'EI <fast> & "bold" $x$'   # a label that must be escaped in HTML and drawn literally
+TARGET = 0.05
+
+
+def _study(policies=None):
+    return parse_study({
+        "study": {"name": "tiny-report", "replicates": 8, "seed": 3},
+        "space": {"feed_rate": [0.5, 2.5]},
+        "world": {"kernel": "matern52", "lengthscale": 0.5, "amplitude": 1.0, "mean": 4.0, "noise": 0.05},
+        "campaign": {"initial": 3, "budgets": [5, 8], "pool": 128},
+        "target": {"regret": TARGET},
+        "policy": policies or [{"rule": "ei", "label": TRICKY}, {"rule": "lcb", "label": "UCB"},
+                               {"rule": "random", "label": "Random"}],
+    }, source="test")
+
+
+@pytest.fixture(scope="module")
+def written(tmp_path_factory):
+    study = _study()
+    traces = replay(study)
+    folder = tmp_path_factory.mktemp("results")
+    steps = []
+    files = write_outputs(folder, study, traces, progress=steps.append)
+    return study, traces, files, steps
+
+
+@pytest.fixture(scope="module")
+def page(written):
+    return written[2].report.read_text(encoding="utf-8")
+
+
+class _Spans(HTMLParser):
+    """Collects tagged spans (data-src) with their text, and every img/link/script tag."""
+
+    def __init__(self):
+        super().__init__()
+        self.spans, self.tags, self._open = [], [], []
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        self.tags.append((tag, attrs))
+        if tag == "span":
+            self._open.append([attrs, ""] if "data-src" in attrs else None)
+
+    def handle_endtag(self, tag):
+        if tag == "span" and self._open:
+            item = self._open.pop()
+            if item is not None:
+                self.spans.append((item[0], item[1]))
+
+    def handle_data(self, data):
+        for item in self._open:
+            if item is not None:
+                item[1] += data
+
+
+def _parse(text):
+    parser = _Spans()
+    parser.feed(text)
+    return parser
+
+
+_NUMBER = re.compile(r"^[\u2212-]?\d+(\.\d+)?(e[+\-]\d+)?$")
+
+
+def _printed(text, unit):
+    """The printed number and half a unit of its last printed digit (its rounding error)."""
+    plain = text.replace("\u2212", "-")
+    step = Decimal(10) ** Decimal(plain).as_tuple().exponent
+    value, half = float(plain), float(step) / 2
+    if unit == "%":
+        value, half = value / 100, half / 100
+    return value, half
+
+
+# ---------------------------------------------------------------------------
+# files
+# ---------------------------------------------------------------------------
+def test_files_and_their_contract_columns(written):
+    _, _, files, steps = written
+    for path in files.paths():
+        assert path.is_file() and path.stat().st_size > 0, path
+    assert {p.name for p in files.figures} == {f"{stem}.{ext}" for ext in ("png", "svg") for stem in
+                                               ("regret", "failure_risk", "trials_to_target", "final_regret",
+                                                "win_rates", "snapshot")}
+    summary = pd.read_csv(files.summary)
+    assert {"policy", "budget", "replicates", "regret_median", "regret_q25", "regret_q75", "failure_risk",
+            "failure_low", "failure_high", "cvar90"} <= set(summary.columns)
+    assert sorted(summary["budget"].unique()) == [5, 8]
+    assert {"policy", "trial", "reached", "reached_low", "reached_high"} <= set(pd.read_csv(files.trials_to_target))
+    assert pd.read_csv(files.pairwise)["budget"].eq(8).all()  # the largest budget
+    # Nothing half-written is left behind, and every step reported progress.
+    leftovers = [p for p in files.folder.rglob("*") if p.name.endswith(".tmp")]
+    assert leftovers == []
+    assert sum(steps) == report_steps()
+
+
+def test_failure_risk_in_summary_matches_a_naive_count(written):
+    """summary.csv against a plain count from the traces (share with regret above the target)."""
+    _, traces, files, _ = written
+    summary = pd.read_csv(files.summary)
+    for row in summary.itertuples():
+        at = traces[(traces["policy"].astype(str) == row.policy) & (traces["trial"] == row.budget)]
+        assert row.failure_risk == pytest.approx(float(np.mean(at["regret"].to_numpy() > TARGET)), abs=1e-15)
+
+
+def test_a_policy_that_never_reaches_is_not_given_a_number(written, page):
+    """Random never gets 90 % of campaigns to the target here: NA in the plan, words in the report."""
+    files = written[2]
+    plan = pd.read_csv(files.budget_plan)
+    random_row = plan.index[plan["policy"] == "Random"][0]
+    assert pd.isna(plan.at[random_row, "budget"])
+    assert plan["budget"].notna().any()
+    cells = [(a, t) for a, t in _parse(page).spans
+             if a["data-src"] == "budget_plan.csv" and a["data-row"] == str(random_row) and a["data-col"] == "budget"]
+    assert [t for _, t in cells] == ["not reached"]
+
+
+# ---------------------------------------------------------------------------
+# every number in the report is its CSV cell, rounded as printed
+# ---------------------------------------------------------------------------
+def test_every_tagged_number_equals_its_csv_cell(written, page):
+    files = written[2]
+    tables = {}
+    checked, seen = 0, set()
+    for attrs, text in _parse(page).spans:
+        name, row, column = attrs["data-src"], int(attrs["data-row"]), attrs["data-col"]
+        if name not in tables:
+            tables[name] = pd.read_csv(files.folder / name, keep_default_na=True)
+        cell = tables[name].at[row, column]
+        seen.add((name, row, column))
+        text = text.strip()
+        if "t" in attrs.get("class", "").split():
+            # text cells: labels, status and evidence, verbatim
+            assert text == ("" if pd.isna(cell) else str(cell)), (name, row, column)
+        elif _NUMBER.match(text):
+            value, half = _printed(text, attrs.get("data-unit"))
+            assert not pd.isna(cell), (name, row, column, text)
+            # half a unit of the last printed digit, plus float64 slack
+            assert abs(float(cell) - value) <= half * (1 + 1e-9) + 1e-12, (name, row, column, text, cell)
+            checked += 1
+        else:
+            # not a number: the CSV cell must be missing, and the words must say why
+            assert pd.isna(cell), (name, row, column, text)
+            assert text in ("not reached", "—") or text.startswith((">", "more than")), text
+    assert checked > 100
+    # Coverage: the headline cells of every row of these files are in the report.
+    for name, columns in {"summary.csv": ("regret_median", "failure_risk", "failure_low", "failure_high",
+                                          "cvar90"),
+                          "choice.csv": ("leader", "leader_value", "runner_up_value", "lead", "evidence"),
+                          "budget_plan.csv": ("policy", "budget", "share", "status"),
+                          "pairwise.csv": ("win_rate", "regret_p_holm", "failure_p_holm")}.items():
+        frame = pd.read_csv(files.folder / name)
+        for row in range(len(frame)):
+            for column in columns:
+                if name == "choice.csv" and column == "lead":
+                    continue  # shown as "Clear lead" / "Tie"
+                assert (name, row, column) in seen, (name, row, column)
+
+
+def test_choice_sentences_say_clear_or_tie(written, page):
+    files = written[2]
+    choice = pd.read_csv(files.choice)
+    for lead in choice["lead"]:
+        assert {"clear": "Clear lead:", "tie": "Tie:"}.get(lead, "") in page
+    assert "misses the target in" in page
+
+
+# ---------------------------------------------------------------------------
+# a self-contained document
+# ---------------------------------------------------------------------------
+def test_report_is_self_contained_and_escaped(page):
+    parsed = _parse(page)
+    assert "http" not in page.lower()          # no links, no external references at all
+    assert "@import" not in page and "url(" not in page and "@font-face" not in page
+    tags = [t for t, _ in parsed.tags]
+    assert "script" not in tags and "link" not in tags and "iframe" not in tags
+    images = [a for t, a in parsed.tags if t == "img"]
+    assert len(images) == 6
+    for attrs in images:
+        assert attrs["src"].startswith("data:image/png;base64,")
+        assert base64.b64decode(attrs["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
+        assert attrs.get("alt")
+    # User strings are escaped: the label's markup never reaches the page as markup.
+    assert "<fast>" not in page and "&lt;fast&gt;" in page
+    assert all(t != "fast>" for t in tags)
+    # Print rules
+    assert "@media print" in page and "page-break-inside: avoid" in page
+
+
+def test_report_states_question_assumptions_and_cautions(written, page):
+    study = written[0]
+    text = re.sub(r"<[^>]+>", " ", page)
+    text = re.sub(r"\s+", " ", text)
+    for section in ("question", "assumptions", "results", "choice", "budget-plan", "limits", "cautions"):
+        assert f'id="{section}"' in page
+    assert "feed_rate" in text and "0.5 to 2.5" in text.replace("from 0.5 to 2.5", "0.5 to 2.5")
+    assert f"root seed {study.seed}" in text and f"simlab {simlab.__version__}" in text
+    assert "Matérn 5/2" in text and "8 worlds" in text
+    for phrase in ("The prior may be wrong", "Gaussian", "Safety constraints", "local codes and regulations",
+                   "ethics review", "licensed professional practice"):
+        assert phrase in text, phrase
+
+
+def test_rebuilding_gives_the_same_files(written, tmp_path):
+    study, traces, files, _ = written
+    again = write_outputs(tmp_path, study, traces)
+    for name in ("summary.csv", "trials_to_target.csv", "budget_plan.csv", "pairwise.csv", "choice.csv",
+                 "report.html"):
+        assert (tmp_path / name).read_bytes() == (files.folder / name).read_bytes(), name
+    assert again.report == tmp_path / "report.html"
+
+
+def test_a_single_policy_gets_a_report_without_comparisons(tmp_path):
+    study = _study(policies=[{"rule": "ei"}])
+    files = write_outputs(tmp_path, study, replay(study), figures=False)
+    assert files.pairwise is None and files.choice is None and files.figures == ()
+    page = files.report.read_text(encoding="utf-8")
+    assert "nothing to choose between" in page and "<img" not in page
+
+
+# ---------------------------------------------------------------------------
+# renders in a real browser
+# ---------------------------------------------------------------------------
+_CHECK = """<script>
+window.addEventListener("load", function () {
+  var imgs = document.images, broken = 0;
+  for (var i = 0; i < imgs.length; i++) {
+    if (!imgs[i].complete || imgs[i].naturalWidth === 0) { broken++; }
+  }
+  var out = document.createElement("pre");
+  out.id = "image-check";
+  out.textContent = "images=" + imgs.length + " broken=" + broken;
+  document.body.appendChild(out);
+});
+</script>"""
+
+
+def _chromium():
+    for name in ("chromium", "chromium-browser", "google-chrome", "google-chrome-stable"):
+        path = shutil.which(name)
+        if path:
+            return path
+    return None
+
+
+def _headless(binary, profile, *args, url):
+    command = [binary, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+               "--disable-background-networking", "--disable-component-update", "--disable-sync",
+               "--disable-dev-shm-usage", f"--user-data-dir={profile}", *args, url]
+    return subprocess.run(command, capture_output=True, text=True, timeout=120, check=False)
+
+
+@pytest.mark.skipif(_chromium() is None, reason="no chromium binary on this machine")
+def test_report_renders_in_headless_chromium_with_no_broken_image(written, page, tmp_path):
+    binary = _chromium()
+    # A copy with a checking script appended; the report itself carries no script.
+    probe = tmp_path / "probe.html"
+    probe.write_text(page.replace("</body>", _CHECK + "</body>"), encoding="utf-8")
+    out = _headless(binary, tmp_path / "profile-a", "--virtual-time-budget=10000", "--dump-dom",
+                    url=probe.as_uri())
+    found = re.search(r"images=(\d+) broken=(\d+)", out.stdout)
+    assert found, out.stderr[-2000:]
+    assert found.groups() == ("6", "0")
+    # The report itself: a screenshot with ink on it, and a multi-page PDF print.
+    shot, pdf = tmp_path / "report.png", tmp_path / "report.pdf"
+    _headless(binary, tmp_path / "profile-b", f"--screenshot={shot}", "--window-size=1200,3000",
+              url=written[2].report.as_uri())
+    from PIL import Image
+
+    pixels = np.asarray(Image.open(shot).convert("L"))
+    assert pixels.shape == (3000, 1200) and (pixels < 128).mean() > 0.005
+    _headless(binary, tmp_path / "profile-c", f"--print-to-pdf={pdf}", "--no-pdf-header-footer",
+              url=written[2].report.as_uri())
+    data = pdf.read_bytes()
+    assert data[:5] == b"%PDF-" and len(re.findall(rb"/Type\s*/Page[^s]", data)) >= 3
