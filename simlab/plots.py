@@ -670,9 +670,10 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
 
     Notes
     -----
+    The belief is the study's stated one (``simlab.runner.make_belief``), not refitted.
     The next inputs come from each policy started afresh on its keyed stream and given
-    this belief; after the initial design (and with one trial per round) they are the
-    choices the campaigns made. Acquisitions scored in log space (PI, EI) are
+    this belief; after the initial design (with one trial per round and no refit at that
+    point) they are the choices the campaigns made. Acquisitions scored in log space (PI, EI) are
     exponentiated before scaling. Rules that do not score inputs (random, sobol) have no
     curve. Posterior samples are drawn pathwise from random Fourier features (Wilson et
     al. 2020, Efficiently Sampling Functions from Gaussian Process Posteriors, ICML) with

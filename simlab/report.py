@@ -446,13 +446,16 @@ def _world_section(study):
 
 def _assumptions(study, version):
     w = study.world
+    refit = getattr(study, "refit_every", 0)
     if w.prior is not None and study.belief == w.prior:
-        belief = ("<p>The campaigns' model (belief) is <b>the same prior</b>: every policy knows exactly how "
-                  "the worlds were made. That is the favourable case; a belief that is wrong about "
+        belief = ("<p>The campaigns' model (belief) starts as <b>the same prior</b>: every policy knows exactly "
+                  "how the worlds were made. That is the favourable case; a belief that is wrong about "
                   "smoothness, amplitude or noise is not tested here.</p>")
     else:
-        belief = ("<p>The campaigns' model (belief), fixed for the whole campaign (no refitting):</p>"
+        belief = ("<p>The campaigns' model (belief) starts from:</p>"
                   f"<table class='kv'>{_prior_rows(study.belief, study)}</table>")
+    belief += (f"<p>Its hyperparameters are refitted by maximum likelihood every {refit} trials.</p>" if refit
+               else "<p>Its hyperparameters stay fixed for the whole campaign (no refitting).</p>")
     space = "".join(f"<tr><td>{_e(n)}</td><td class='n'>{_num(lo)}</td><td class='n'>{_num(hi)}</td></tr>"
                     for n, lo, hi in zip(study.space.names, study.space.low, study.space.high))
     policies = "".join(
@@ -632,7 +635,9 @@ def _results(study, summary, reach, pairs, images, success):
         "hidden true world (dashed), each policy's acquisition scaled to 0–1, the next input each policy "
         "would choose, and where posterior function samples put the best input. "
         + ("With more than one input this is a slice through the current recommendation along the first "
-           "input; trials elsewhere are drawn at their coordinate on it." if study.space.dim > 1 else "")))
+           "input; trials elsewhere are drawn at their coordinate on it. " if study.space.dim > 1 else "")
+        + ("The model shown is the study's stated belief, before any refit." if getattr(study, "refit_every", 0)
+           else "")))
     parts.append("</section>")
     return "".join(parts)
 
@@ -750,8 +755,8 @@ def _plan_section(study, plan, success):
 def _limits(study):
     belief_note = ""
     if study.world.prior is not None and study.belief == study.world.prior:
-        belief_note = ("<li><b>The model is exactly right here.</b> The campaigns' model equals the prior the "
-                       "worlds came from; a real campaign's model is always somewhat wrong, so real regret "
+        belief_note = ("<li><b>The model starts exactly right here.</b> The campaigns' model starts as the prior "
+                       "the worlds came from; a real campaign's model is always somewhat wrong, so real regret "
                        "is usually worse. Run the study again with a different <code>[belief]</code> to see "
                        "how much.</li>")
     return (
@@ -761,15 +766,17 @@ def _limits(study):
         "differently, the ranking of policies and the budgets can change.</li>"
         + belief_note
         + _noise_limit(study.world)
-        +
-        "<li><b>Safety constraints are not modelled.</b> Every input in the box is assumed safe to run; "
+        + "<li><b>Safety constraints are not modelled.</b> Every input in the box is assumed safe to run; "
         "limits on temperature, pressure, dose or any other hazard are not part of the simulation, and "
         + ("trials fail only at random, never because of the setting chosen."
            if getattr(study.world, "lost", 0.0) else "every trial is assumed to return a measurement.")
         + "</li>"
-        "<li><b>The model is not refitted.</b> Its hyperparameters stay fixed during a campaign; a real "
-        "campaign that re-estimates them may behave differently, especially early.</li>"
-        "<li><b>Intervals are Monte Carlo uncertainty only.</b> They shrink with more replicates; they say "
+        + ("<li><b>Refits follow one recipe.</b> The model is refitted by maximum likelihood on a fixed "
+           "schedule; a team that refits differently, or by judgement, may see different campaigns.</li>"
+           if getattr(study, "refit_every", 0) else
+           "<li><b>The model is not refitted.</b> Its hyperparameters stay fixed during a campaign; a real "
+           "campaign that re-estimates them may behave differently, especially early.</li>")
+        + "<li><b>Intervals are Monte Carlo uncertainty only.</b> They shrink with more replicates; they say "
         "nothing about whether the assumptions hold.</li>"
         "</ul></section>"
     )

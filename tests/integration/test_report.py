@@ -229,6 +229,27 @@ def test_rebuilding_gives_the_same_files(written, tmp_path):
     assert again.report == tmp_path / "report.html"
 
 
+def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
+    study = parse_study({
+        "study": {"name": "rough-line", "replicates": 4, "seed": 9},
+        "space": {"feed_rate": [0.5, 2.5]},
+        "world": {"kernel": "matern32", "lengthscale": 0.5, "amplitude": 1.0, "noise": 0.1,
+                  "noise_kind": "student", "noise_df": 4.0, "lost": 0.3},
+        "belief": {"refit_every": 3},
+        "campaign": {"initial": 2, "budgets": [6], "pool": 64, "batch": 2},
+        "target": {"regret": 0.1},
+        "policy": [{"rule": "ei"}, {"rule": "random"}],
+    }, source="test")
+    traces = replay(study)
+    assert traces["lost"].any()  # the snapshot and tables must cope with trials that returned nothing
+    files = write_outputs(tmp_path, study, traces)
+    text = re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", files.report.read_text(encoding="utf-8")))
+    for phrase in ("Student-t noise (4 degrees of freedom", "lost (budget spent, nothing observed) with "
+                   "probability 0.3", "trials per round 2", "refitted by maximum likelihood every 3 trials",
+                   "trials fail only at random"):
+        assert phrase in text, phrase
+
+
 def test_a_single_policy_gets_a_report_without_comparisons(tmp_path):
     study = _study(policies=[{"rule": "ei"}])
     files = write_outputs(tmp_path, study, replay(study), figures=False)
