@@ -244,8 +244,8 @@ def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
     assert traces["lost"].any()  # the snapshot and tables must cope with trials that returned nothing
     files = write_outputs(tmp_path, study, traces)
     text = re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", files.report.read_text(encoding="utf-8")))
-    for phrase in ("Student-t noise (4 degrees of freedom", "lost (budget spent, nothing observed) with "
-                   "probability 0.3", "trials per round 2", "refitted by maximum likelihood every 3 trials",
+    for phrase in ("Student-t noise (4 degrees of freedom", "lost (budget spent, nothing observed) with probability 0.3",
+                   "trials per round 2", "refitted by maximum likelihood every 3 trials",
                    "trials fail only at random"):
         assert phrase in text, phrase
 
