@@ -29,17 +29,12 @@ class StudyResult:
         budget = budget or self.study.campaign.horizon
         return self.traces[self.traces["trial"] == budget]
 
-    def table(self) -> pd.DataFrame:
-        """Median regret with quartiles and the share within the target, per policy and budget."""
-        rows = []
-        for b in self.study.campaign.budgets:
-            at = self.traces[self.traces["trial"] == b]
-            for label, g in at.groupby("policy", observed=True, sort=False):
-                q = g["regret"].quantile([0.25, 0.5, 0.75]).to_numpy()
-                rows.append({"policy": label, "budget": b, "replicates": len(g),
-                             "regret_median": q[1], "regret_q25": q[0], "regret_q75": q[2],
-                             "within_target": float((g["regret"] <= self.study.target).mean())})
-        return pd.DataFrame(rows)
+    def summary(self, *, seed: int = 0) -> pd.DataFrame:
+        """One row per policy and budget: median regret (bootstrap interval), quartiles,
+        failure risk (Wilson interval) and CVaR-90; see :func:`simlab.metrics.budget_summary`."""
+        from .metrics import budget_summary
+        return budget_summary(self.traces, budgets=list(self.study.campaign.budgets),
+                              target=self.study.target, seed=seed)
 
 
 def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.PathLike | None = None,
@@ -131,7 +126,11 @@ def run_sweep_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str
     ranking = safest_policy(summary, budget=study.campaign.horizon)
     path = None
     if write:
+        from .plots import policy_colors, save_figure, sweep_figure
+
         path = results_dir(study, out) / "sweep"
         atomic_write(path / "sweep.csv", lambda p: summary.to_csv(p, index=False))
         atomic_write(path / "ranking.csv", lambda p: ranking.to_csv(p, index=False))
+        save_figure(sweep_figure(summary, budget=study.campaign.horizon, colors=policy_colors(study.labels)),
+                    path, "heatmap")
     return SweepResult(study=study, rows=rows, summary=summary, ranking=ranking, path=path)

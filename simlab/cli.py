@@ -35,6 +35,11 @@ examples:
 Standard output is TOML ([space] and [world] tables) to paste into a study; the fit
 table and warnings go to standard error.
 """
+_EPILOG_PLAN = """\
+examples:
+  simlab plan configs/demo.toml --success 0.9
+  simlab plan configs/demo.toml --success 0.8 --jobs 2
+"""
 _EPILOG_REPORT = """\
 examples:
   simlab report results/pilot-extruder
@@ -53,6 +58,16 @@ def _positive_int(text: str) -> int:
         raise argparse.ArgumentTypeError(f"must be a whole number; got {text!r}") from None
     if value < 1:
         raise argparse.ArgumentTypeError(f"must be >= 1; got {value}")
+    return value
+
+
+def _share(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number between 0 and 1; got {text!r}") from None
+    if not 0.0 < value < 1.0:
+        raise argparse.ArgumentTypeError(f"must be between 0 and 1 (exclusive); got {value:g}")
     return value
 
 
@@ -84,6 +99,10 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
     run.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
+    run.add_argument("--no-report", action="store_true",
+                     help="write traces only (rebuild the report later with `simlab report DIR`)")
+    run.add_argument("--success", type=_share, default=0.9, metavar="P",
+                     help="chance of meeting the target used by the budget plan and choice table (default 0.9)")
 
     check = sub.add_parser("check", help="validate a study and estimate its cost",
                            description="Validate the study file, print it with every default filled in, "
@@ -126,6 +145,21 @@ def build_parser() -> argparse.ArgumentParser:
                             "the summary table, without replaying any campaign.",
                             epilog=_EPILOG_REPORT, formatter_class=argparse.RawDescriptionHelpFormatter)
     report.add_argument("folder", metavar="DIR")
+    report.add_argument("--success", type=_share, default=0.9, metavar="P",
+                        help="chance of meeting the target for the budget plan and choice table (default 0.9)")
+    report.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    plan = sub.add_parser("plan", help="smallest budget that meets the target with the requested chance",
+                          description="Print, for each policy, the smallest budget at which the share of simulated "
+                          "campaigns meeting the target reaches --success, with its 95 %% range. Uses the stored "
+                          "results of the study if they exist, otherwise runs it first.",
+                          epilog=_EPILOG_PLAN, formatter_class=argparse.RawDescriptionHelpFormatter)
+    plan.add_argument("study", metavar="STUDY.toml")
+    plan.add_argument("--success", type=_share, default=0.9, metavar="P", help="requested chance (default 0.9)")
+    plan.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="worker processes if the study must run")
+    plan.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
+    plan.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
+    plan.add_argument("--quiet", action="store_true", help="no progress bar")
     return p
 
 
@@ -144,7 +178,7 @@ def main(argv=None) -> int:
     from .spec import StudyError
     try:
         return {"run": _run, "check": _check, "report": _report, "sweep": _sweep,
-                "calibrate": _calibrate}[args.command](args)
+                "calibrate": _calibrate, "plan": _plan}[args.command](args)
     except StudyError as exc:
         print(f"simlab: error: {exc}", file=sys.stderr)
         return 2
@@ -170,10 +204,31 @@ def _run(args) -> int:
         result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
     for msg in sorted({str(w.message) for w in caught}):
         print(f"simlab: warning: {msg}", file=sys.stderr)
-    print(_format_table(result))
+    summary = _write_report(result, success=args.success, quiet=args.quiet) if not args.no_report else None
+    print(_format_table(result.study, summary if summary is not None else result.summary()))
     print(f"\n{study.replicates} replicates x {len(study.policies)} policies in "
           f"{time.perf_counter() - t0:.1f} s; results in {result.path}")
+    if summary is not None:
+        print(f"report: {result.path / 'report.html'}")
     return 0
+
+
+def _write_report(result, *, success: float, quiet: bool):
+    """Write the decision files, figures and report.html; return the summary table."""
+    import pandas as pd
+
+    from .report import report_steps, write_outputs
+    bar = None
+    if not quiet:
+        from tqdm.auto import tqdm
+        bar = tqdm(total=report_steps(), unit="step", desc="report", leave=False)
+    try:
+        files = write_outputs(result.path, result.study, result.traces, success=success,
+                              progress=bar.update if bar else None)
+    finally:
+        if bar is not None:
+            bar.close()
+    return pd.read_csv(files.summary)
 
 
 def _check(args) -> int:
@@ -226,6 +281,15 @@ def _sweep(args) -> int:
         cell = f"({row.worst_lengthscale_factor:g}, {row.worst_amplitude_factor:g})"
         print(f"{row.rank:>4}  {str(row.policy)[:20]:<20} {row.worst_failure_risk:>18.0%}  {cell:<32} "
               f"{row.mean_failure_risk:>6.0%}")
+    folder = result.path.parent if result.path is not None else None
+    if folder is not None and (folder / "traces.parquet").is_file():
+        from .api import load_results
+        stored = load_results(folder)
+        if stored.study == dataclasses.replace(study, sweep=stored.study.sweep):
+            _write_report(stored, success=0.9, quiet=args.quiet)
+            print(f"report with a robustness section: {folder / 'report.html'}")
+    else:
+        print(f"(run `simlab run {args.study}` too: its report will include this sweep)")
     first = result.ranking.iloc[0]
     verdict = ("a clear lead" if first["lead"] == "clear" else
                "not a clear lead: its worst-cell interval overlaps the runner-up's; more replicates would tell")
@@ -252,17 +316,65 @@ def _calibrate(args) -> int:
 def _report(args) -> int:
     from .api import load_results
     result = load_results(args.folder)
-    print(_format_table(result))
+    summary = _write_report(result, success=args.success, quiet=args.quiet)
+    print(_format_table(result.study, summary))
+    print(f"\nreport: {result.path / 'report.html'} (rebuilt from stored traces; no campaign replayed)")
     return 0
 
 
-def _format_table(result) -> str:
-    t = result.table()
-    target = result.study.target
-    lines = [f"simple regret of the recommendation (objective units; target: regret <= {target:g})", ""]
-    header = f"{'policy':<20} {'budget':>6}  {'median regret [q25, q75]':<32} {'within target':>13}"
+def _plan(args) -> int:
+    from .api import load_results, run_study
+    from .metrics import budget_plan
+    from .store import STUDY, TRACES, results_dir
+    study = _load(args)
+    folder = results_dir(study, args.out)
+    result = None
+    if (folder / TRACES).is_file() and (folder / STUDY).is_file():
+        stored = load_results(folder)
+        if stored.study == study:
+            result = stored
+            print(f"using stored results in {folder}", file=sys.stderr)
+    if result is None:
+        print(f"no results for this study in {folder}: running it first", file=sys.stderr)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", RuntimeWarning)
+            result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
+        for msg in sorted({str(w.message) for w in caught}):
+            print(f"simlab: warning: {msg}", file=sys.stderr)
+    plan = budget_plan(result.traces, target=study.target, success=args.success)
+    print(f"smallest budget at which the chance of meeting the target (regret <= {study.target:g}) "
+          f"reaches {args.success:.0%}\n")
+    header = f"{'policy':<20} {'budget':>7}  {'range (optimistic to conservative)':<36} {'chance at that budget':>22}"
+    print(header)
+    print("-" * len(header))
+    for row in plan.itertuples():
+        if row.status == "reached":
+            conservative = _int(row.budget_conservative, above=row.last_trial)
+            span = f"{_int(row.budget_optimistic, above=row.last_trial)} to {conservative}"
+            chance = f"{row.share:.0%} [{row.share_low:.0%}-{row.share_high:.0%}]"
+            print(f"{str(row.policy)[:20]:<20} {_int(row.budget, above=row.last_trial):>7}  {span:<36} {chance:>22}")
+        else:
+            print(f"{str(row.policy)[:20]:<20} {'-':>7}  not reached within {row.last_trial} trials "
+                  f"(chance {row.share:.0%} [{row.share_low:.0%}-{row.share_high:.0%}] at {row.last_trial})")
+    print("\n'conservative' is where the lower edge of the 95 % Kaplan-Meier band reaches the level: "
+          "the budget to defend in a proposal.")
+    return 0
+
+
+def _int(value, *, above: int) -> str:
+    """A budget, or "> last simulated trial" where the curve never gets there."""
+    import pandas as pd
+    return f">{above}" if pd.isna(value) else f"{int(value)}"
+
+
+def _format_table(study, summary) -> str:
+    """Median regret with quartiles, and the share within the target with its Wilson interval."""
+    lines = [f"simple regret of the recommendation (objective units; target: regret <= {study.target:g})", ""]
+    header = (f"{'policy':<20} {'budget':>6}  {'median regret [q25, q75]':<30} "
+              f"{'within target [95% interval]':>28}")
     lines += [header, "-" * len(header)]
-    for row in t.itertuples():
+    for row in summary.itertuples():
         band = f"{row.regret_median:.3g} [{row.regret_q25:.3g}, {row.regret_q75:.3g}]"
-        lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<32} {row.within_target:>12.0%}")
+        within = f"{1 - row.failure_risk:.0%} [{1 - row.failure_high:.0%}-{1 - row.failure_low:.0%}]"
+        lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<30} {within:>28}")
     return "\n".join(lines)

@@ -7,6 +7,7 @@ __all__ = ["ReportFiles", "write_outputs", "report_steps"]
 import base64
 import html
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -14,7 +15,6 @@ import numpy as np
 import pandas as pd
 
 from . import compare, metrics
-from .plots import _shareable
 from .store import atomic_write
 
 SUMMARY = "summary.csv"
@@ -24,10 +24,12 @@ PAIRWISE = "pairwise.csv"
 CHOICE = "choice.csv"
 BUDGET_PLAN = "budget_plan.csv"
 REPORT = "report.html"
+SWEEP_SUMMARY = "sweep/sweep.csv"
+SWEEP_RANKING = "sweep/ranking.csv"
 FIGURES = "figures"
 
 # Figure stems in report order.
-_FIGURE_STEMS = ("regret", "failure_risk", "trials_to_target", "final_regret", "win_rates", "snapshot")
+_FIGURE_STEMS = ("regret", "failure_risk", "trials_to_target", "final_regret", "win_rates", "snapshot", "sweep")
 
 _KERNEL_NAMES = {
     "sqexp": "squared exponential",
@@ -122,7 +124,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
 
     def _write_csv(frame, name):
         path = folder / name
-        atomic_write(path, _shareable(lambda p: frame.to_csv(p, index=False)))
+        atomic_write(path, lambda p: frame.to_csv(p, index=False))
         return path
 
     tables = {}
@@ -149,6 +151,11 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     else:
         step(2)  # nothing to compare with a single policy
 
+    if (folder / SWEEP_RANKING).is_file() and (folder / SWEEP_SUMMARY).is_file():
+        # a misspecification sweep of this study was run (simlab sweep): report it too
+        tables[SWEEP_RANKING] = pd.read_csv(folder / SWEEP_RANKING)
+        tables[SWEEP_SUMMARY] = pd.read_csv(folder / SWEEP_SUMMARY)
+
     images, figure_paths = {}, []
     if figures:
         from .plots import save_figure
@@ -162,7 +169,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
 
     text = _render(study, tables, images, success=success)
     report = folder / REPORT
-    atomic_write(report, _shareable(lambda p: p.write_text(text, encoding="utf-8")))
+    atomic_write(report, lambda p: p.write_text(text, encoding="utf-8"))
     step(1)
     return ReportFiles(
         folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
@@ -179,6 +186,7 @@ def _levels(success):
 def _figures(study, traces, tables, *, success, seed):
     """Yield (stem, figure or None where it does not apply) for every stem, in report order."""
     from . import plots
+    from .snapshot import snapshot_figure
 
     colors = plots.policy_colors(study.labels)
     horizon = study.campaign.horizon
@@ -192,7 +200,9 @@ def _figures(study, traces, tables, *, success, seed):
     yield "win_rates", plots.win_rate_figure(tables[PAIRWISE], colors=colors) if PAIRWISE in tables else None
     # The snapshot shows the next trial after the initial design; there is none when the
     # initial design uses the whole budget.
-    yield "snapshot", plots.snapshot_figure(study, traces, colors=colors) if study.campaign.initial < horizon else None
+    yield "snapshot", snapshot_figure(study, traces, colors=colors) if study.campaign.initial < horizon else None
+    yield "sweep", (plots.sweep_figure(tables[SWEEP_SUMMARY], budget=horizon, colors=colors)
+                    if SWEEP_SUMMARY in tables else None)
 
 
 # ---------------------------------------------------------------------------
@@ -344,6 +354,7 @@ def _render(study, tables, images, *, success):
     reach = _Cells(TRIALS_TO_TARGET_SUMMARY, tables[TRIALS_TO_TARGET_SUMMARY])
     pairs = _Cells(PAIRWISE, tables[PAIRWISE]) if PAIRWISE in tables else None
     choice = _Cells(CHOICE, tables[CHOICE]) if CHOICE in tables else None
+    sweep = _Cells(SWEEP_RANKING, tables[SWEEP_RANKING]) if SWEEP_RANKING in tables else None
     title = f"Choosing a policy and a trial budget: {study.name}"
     parts = [
         "<!DOCTYPE html>",
@@ -359,14 +370,58 @@ def _render(study, tables, images, *, success):
         _results(study, summary, reach, pairs, images, success),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
+        _sweep_section(study, sweep, images) if sweep is not None else "",
         _limits(study),
         _cautions(),
-        _files_section(pairs is not None, bool(images)),
+        _files_section(pairs is not None, bool(images), sweep is not None),
         (f"<footer>Written by simlab {_e(__version__)} from the stored traces of study "
          f"“{_e(study.name)}”. Rebuilding it from the same traces and seed gives the same numbers.</footer>"),
         "</body></html>",
     ]
-    return "\n".join(parts) + "\n"
+    return _number_sections("\n".join(p for p in parts if p) + "\n")
+
+
+def _number_sections(text):
+    """Number the <h2> headings 1, 2, ... in order (optional sections shift the rest)."""
+    counter = iter(range(1, 100))
+    return re.sub(r"<h2>\d+\. ", lambda m: f"<h2>{next(counter)}. ", text)
+
+
+def _sweep_section(study, ranking, images):
+    """Robustness to a wrong prior: the misspecification sweep, if one was run."""
+    frame = ranking.frame
+    first = 0
+    lead = str(frame.at[first, "lead"])
+    verdict = ("its lead over the next policy is statistically clear" if lead == "clear" else
+               "its lead is not statistically clear (the worst-cell intervals overlap), so treat the "
+               "top policies as a tie and consider more replicates")
+    rows = "".join(
+        f"<tr><td>{ranking.text(i, 'rank')}</td><td>{ranking.text(i, 'policy')}</td>"
+        f"<td class='num'>{ranking.pct(i, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high')}</td>"
+        f"<td class='num'>×{ranking.span(i, 'worst_lengthscale_factor', 'sig')}, "
+        f"×{ranking.span(i, 'worst_amplitude_factor', 'sig')}</td>"
+        f"<td class='num'>{ranking.span(i, 'mean_failure_risk', 'pct')} %</td>"
+        f"<td class='num'>{ranking.span(i, 'correct_belief_failure_risk', 'pct')} %</td></tr>"
+        for i in range(len(frame)))
+    sw = study.sweep
+    factors = lambda v: ", ".join(f"×{x:g}" for x in v)
+    return (
+        '<section id="sweep"><h2>0. Robustness to a wrong prior</h2>'
+        f"<p>The study was replayed with the belief's lengthscales scaled by {_e(factors(sw.lengthscale))} and its "
+        f"amplitude by {_e(factors(sw.amplitude))}, on the same {sw.replicates} worlds in every cell, to see which "
+        "policy still meets the target when the team's prior is wrong.</p>"
+        f"<p><strong>Safest across the grid: {ranking.text(first, 'policy')}</strong> — the lowest worst-cell "
+        f"failure risk ({ranking.pct(first, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high')}) "
+        f"after {study.campaign.horizon} trials; {_e(verdict)}.</p>"
+        "<table><thead><tr><th>rank</th><th>policy</th><th>worst failure risk<br><small>[95 % Wilson]</small></th>"
+        "<th>worst cell<br><small>(lengthscale, amplitude)</small></th><th>mean over the grid</th>"
+        "<th>with the study's own belief</th></tr></thead>"
+        f"<tbody>{rows}</tbody></table>"
+        + (_figure(images, "sweep", "Failure risk over the misspecification grid",
+                   "Failure risk after the largest budget in each cell of the grid, one panel per policy.")
+           if "sweep" in images else "")
+        + "</section>"
+    )
 
 
 def _question(study, success):
@@ -804,7 +859,7 @@ def _cautions():
     )
 
 
-def _files_section(has_pairs, has_figures):
+def _files_section(has_pairs, has_figures, has_sweep=False):
     files = [
         (SUMMARY, "regret, failure risk and CVaR-90 per policy and budget"),
         (TRIALS_TO_TARGET, "Kaplan–Meier share that met the target by each trial, with its band"),
@@ -814,6 +869,9 @@ def _files_section(has_pairs, has_figures):
     if has_pairs:
         files += [(PAIRWISE, "paired comparison of every two policies at the largest budget"),
                   (CHOICE, "the leading policy under each attitude to risk")]
+    if has_sweep:
+        files += [(SWEEP_SUMMARY, "failure risk and median regret per policy, budget and cell of the sweep"),
+                  (SWEEP_RANKING, "policies ranked by their worst failure risk over the sweep")]
     if has_figures:
         files.append((f"{FIGURES}/", "every figure as PNG and SVG"))
     items = "".join(f"<li><code>{_e(name)}</code>: {_e(what)}</li>" for name, what in files)

@@ -30,10 +30,19 @@ def atomic_write(path: Path, write) -> None:
     os.close(fd)
     try:
         write(Path(tmp))
+        # mkstemp makes owner-only files; give the result the permissions a plain open()
+        # would (0666 less the umask), so results can be shared like any other file.
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_results(path: Path, study: Study, traces: pd.DataFrame, *, version: str) -> None:

@@ -137,14 +137,14 @@ def test_a_policy_that_never_reaches_is_not_given_a_number(written, page):
 # ---------------------------------------------------------------------------
 # every number in the report is its CSV cell, rounded as printed
 # ---------------------------------------------------------------------------
-def test_every_tagged_number_equals_its_csv_cell(written, page):
-    files = written[2]
+def _check_tagged_numbers(folder, page):
+    """Every tagged number equals its CSV cell at the printed precision; returns how many were checked."""
     tables = {}
     checked, seen = 0, set()
     for attrs, text in _parse(page).spans:
         name, row, column = attrs["data-src"], int(attrs["data-row"]), attrs["data-col"]
         if name not in tables:
-            tables[name] = pd.read_csv(files.folder / name, keep_default_na=True)
+            tables[name] = pd.read_csv(folder / name, keep_default_na=True)
         cell = tables[name].at[row, column]
         seen.add((name, row, column))
         text = text.strip()
@@ -161,6 +161,12 @@ def test_every_tagged_number_equals_its_csv_cell(written, page):
             # not a number: the CSV cell must be missing, and the words must say why
             assert pd.isna(cell), (name, row, column, text)
             assert text in ("not reached", "—") or text.startswith((">", "more than")), text
+    return checked, seen
+
+
+def test_every_tagged_number_equals_its_csv_cell(written, page):
+    files = written[2]
+    checked, seen = _check_tagged_numbers(files.folder, page)
     assert checked > 100
     # Coverage: the headline cells of every row of these files are in the report.
     for name, columns in {"summary.csv": ("regret_median", "failure_risk", "failure_low", "failure_high",
@@ -313,3 +319,24 @@ def test_report_renders_in_headless_chromium_with_no_broken_image(written, page,
               url=written[2].report.as_uri())
     data = pdf.read_bytes()
     assert data[:5] == b"%PDF-" and len(re.findall(rb"/Type\s*/Page[^s]", data)) >= 3
+
+
+def test_sweep_section_numbers_equal_the_sweep_files(tmp_path):
+    """With a misspecification sweep in the folder, the report names the safest policy and
+    every number of its section equals sweep/ranking.csv (the same check as above)."""
+    import dataclasses
+
+    from simlab.api import run_sweep_study
+    from simlab.spec import SweepSpec
+
+    study = dataclasses.replace(_study(), sweep=SweepSpec(lengthscale=(0.5, 2.0), amplitude=(1.0,), replicates=4))
+    traces = replay(study)
+    run_sweep_study(study, out=tmp_path)
+    files = write_outputs(tmp_path, study, traces, figures=False)
+    page = files.report.read_text(encoding="utf-8")
+    assert "Robustness to a wrong prior" in page
+    ranking = pd.read_csv(tmp_path / "sweep" / "ranking.csv")
+    import html
+    assert "Safest across the grid: " in page and html.escape(str(ranking["policy"].iloc[0])) in page
+    checked, seen = _check_tagged_numbers(tmp_path, page)
+    assert {("sweep/ranking.csv", r, "worst_failure_risk") for r in range(len(ranking))} <= seen

@@ -9,6 +9,7 @@ from scipy.stats import norm
 from simlab import compare, metrics, plots
 from simlab.gp import Posterior
 from simlab.runner import make_belief, make_world, replay
+from simlab.snapshot import snapshot_figure
 from simlab.spec import parse_study
 
 LABELS = ("EI", "Thompson", "Random")
@@ -56,7 +57,7 @@ def figures(run, colors):
                                            budget=horizon, colors=colors),
         "win": plots.win_rate_figure(compare.pairwise(traces, budget=horizon, target=study.target,
                                                       n_resamples=200), colors=colors),
-        "snapshot": plots.snapshot_figure(study, traces, samples=300, colors=colors),
+        "snapshot": snapshot_figure(study, traces, samples=300, colors=colors),
     }
 
 
@@ -238,7 +239,7 @@ def test_snapshot_after_a_policys_own_trials(run):
     rows = traces[(traces["policy"] == "EI") & (traces["replicate"] == 1)].sort_values("trial")
     # Without traces the replicate is replayed; the trials shown are the campaign's own.
     for given in (traces, None):
-        fig = plots.snapshot_figure(study, given, replicate=1, policy="EI", trial=t, samples=50)
+        fig = snapshot_figure(study, given, replicate=1, policy="EI", trial=t, samples=50)
         trials = _line(fig.axes[0], "trials")
         np.testing.assert_allclose(trials.get_xdata(), rows["feed_rate"].to_numpy()[:t], rtol=0, atol=1e-12)
         np.testing.assert_allclose(trials.get_ydata(), rows["y"].to_numpy()[:t], rtol=0, atol=1e-12)
@@ -250,7 +251,7 @@ def test_snapshot_after_a_policys_own_trials(run):
 def test_snapshot_slices_a_two_input_study():
     study = _study(space={"feed_rate": [0.5, 2.5], "temp": [28.0, 37.0]},
                    world={"lengthscale": [0.5, 2.0]}, campaign={"initial": 4, "budgets": [6]})
-    fig = plots.snapshot_figure(study, along="temp", samples=40, points=64)  # replays replicate 0
+    fig = snapshot_figure(study, along="temp", samples=40, points=64)  # replays replicate 0
     assert fig.axes[-1].get_xlabel() == "temp"
     assert "slice through the current recommendation (feed_rate = " in fig.axes[0].get_title(loc="left")
     x = _line(fig.axes[0], "posterior-mean").get_xdata()
@@ -266,7 +267,7 @@ def test_snapshot_slices_a_two_input_study():
 ])
 def test_snapshot_rejects_bad_arguments(run, kwargs, match):
     with pytest.raises(ValueError, match=match):
-        plots.snapshot_figure(run[0], run[1], **kwargs)
+        snapshot_figure(run[0], run[1], **kwargs)
 
 
 # ---------------------------------------------------------------------------
