@@ -11,7 +11,7 @@ import pandas as pd
 
 from .runner import replay
 from .spec import Study, load_study
-from .store import read_results, results_dir, write_results
+from .store import read_results, results_dir
 
 __all__ = ["StudyResult", "SweepResult", "run_study", "run_sweep_study", "load_results"]
 
@@ -23,6 +23,7 @@ class StudyResult:
     study: Study
     traces: pd.DataFrame
     path: Path | None = None
+    up_to_date: bool = False     # the folder already held this finished run; nothing was replayed
 
     def final(self, budget: int | None = None) -> pd.DataFrame:
         """Rows at one budget (default the largest): one per policy and replicate."""
@@ -38,7 +39,8 @@ class StudyResult:
 
 
 def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.PathLike | None = None,
-              write: bool = True, progress: bool = False) -> StudyResult:
+              write: bool = True, progress: bool = False, resume: bool = False, fresh: bool = False,
+              cluster: str | None = None) -> StudyResult:
     """Replay every policy on every replicate and (by default) write the results folder.
 
     Parameters
@@ -50,31 +52,90 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
     out : path, optional
         Results folder; default ``results/<study name>``.
     write : bool
-        Write ``traces.parquet`` and ``study.toml``.
+        Write the folder: chunks of replicates land in ``.partial/`` as they finish
+        (atomically), then are joined into ``traces.parquet``; ``study.toml`` and
+        ``manifest.json`` record what ran.
     progress : bool
-        Show a progress bar (tqdm) on standard error.
+        Show a progress bar (tqdm) on standard error: campaigns done, rate, time left.
+    resume : bool
+        Continue an unfinished run of the same study in ``out``.
+    fresh : bool
+        Discard whatever ``out`` holds and start over.
+    cluster : str, optional
+        ``tcp://host:port`` of a dask.distributed scheduler to run the chunks on.
+
+    Returns
+    -------
+    StudyResult
+        ``up_to_date`` is True when ``out`` already held the finished run of this study
+        (nothing was replayed).
+
+    Raises
+    ------
+    simlab.store.FolderBusy
+        When ``out`` holds an unfinished run (and neither ``resume`` nor ``fresh``), a
+        different study, or another run is writing to it.
     """
+    from .runner import chunk_plan, replay_chunks
+    from .store import RunFolder
+
     if not isinstance(study, Study):
         study = load_study(study)
     from . import __version__
 
-    bar = None
-    if progress:
-        from tqdm.auto import tqdm
-        bar = tqdm(total=study.replicates * len(study.policies), unit="campaign", desc=study.name,
-                   smoothing=0.1)
-    try:
-        traces = replay(study, jobs=jobs, progress=bar.update if bar else None)
-    finally:
-        if bar is not None:
-            bar.close()
-    for message in traces.attrs.get("warnings", ()):
-        warnings.warn(message, RuntimeWarning, stacklevel=2)
-    path = None
-    if write:
-        path = results_dir(study, out)
-        write_results(path, study, traces, version=__version__)
+    if not write:
+        with _progress_bar(study, progress) as bar:
+            traces = replay(study, jobs=jobs, progress=bar, cluster=cluster)
+        _rewarn(traces.attrs.get("warnings", ()))
+        return StudyResult(study=study, traces=traces, path=None)
+
+    path = results_dir(study, out)
+    plan = chunk_plan(study)
+    messages: set[str] = set()
+    with RunFolder(path, study, __version__, chunks=len(plan)) as folder:
+        done = folder.prepare(resume=resume, fresh=fresh)
+        if done is None:
+            _, traces = read_results(path)
+            return StudyResult(study=study, traces=traces, path=path, up_to_date=True)
+        if not done:
+            folder.start()
+        with _progress_bar(study, progress, initial=sum(len(plan[i]) for i in done)) as bar:
+            for i, frame in replay_chunks(study, jobs=jobs, skip=done, cluster=cluster):
+                folder.write_chunk(i, frame)
+                messages.update(frame.attrs.get("warnings", ()))
+                if bar is not None:
+                    bar(len(plan[i]) * len(study.policies))
+        folder.finish()
+    _rewarn(sorted(messages))
+    _, traces = read_results(path)
     return StudyResult(study=study, traces=traces, path=path)
+
+
+def _rewarn(messages) -> None:
+    for message in messages:
+        warnings.warn(message, RuntimeWarning, stacklevel=3)
+
+
+class _progress_bar:
+    """tqdm over campaigns (or nothing): yields the bar's update function or None."""
+
+    def __init__(self, study: Study, show: bool, initial: int = 0):
+        self.study, self.show, self.initial = study, show, initial
+
+    def __enter__(self):
+        if not self.show:
+            self.bar = None
+            return None
+        from tqdm.auto import tqdm
+        per = len(self.study.policies)
+        self.bar = tqdm(total=self.study.replicates * per, initial=self.initial * per, unit="campaign",
+                        desc=self.study.name, smoothing=0.1)
+        return self.bar.update
+
+    def __exit__(self, *exc):
+        if self.bar is not None:
+            self.bar.close()
+        return False
 
 
 def load_results(path: str | os.PathLike) -> StudyResult:

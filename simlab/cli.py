@@ -99,6 +99,10 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
     run.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
+    run.add_argument("--resume", action="store_true", help="continue an unfinished run of this study in the folder")
+    run.add_argument("--fresh", action="store_true", help="discard what the results folder holds and start over")
+    run.add_argument("--cluster", metavar="tcp://HOST:PORT",
+                     help="run on a dask.distributed scheduler (pip install 'simlab[cluster]')")
     run.add_argument("--no-report", action="store_true",
                      help="write traces only (rebuild the report later with `simlab report DIR`)")
     run.add_argument("--success", type=_share, default=0.9, metavar="P",
@@ -201,14 +205,19 @@ def _run(args) -> int:
     t0 = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", RuntimeWarning)
-        result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
+        result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet, resume=args.resume,
+                           fresh=args.fresh, cluster=args.cluster)
     for msg in sorted({str(w.message) for w in caught}):
         print(f"simlab: warning: {msg}", file=sys.stderr)
-    summary = _write_report(result, success=args.success, quiet=args.quiet) if not args.no_report else None
+    if result.up_to_date:
+        print(f"{result.path} is up to date: it holds the finished run of this study (--fresh to run it again)",
+              file=sys.stderr)
+    want_report = not args.no_report and not (result.up_to_date and (result.path / "report.html").is_file())
+    summary = _write_report(result, success=args.success, quiet=args.quiet) if want_report else None
     print(_format_table(result.study, summary if summary is not None else result.summary()))
     print(f"\n{study.replicates} replicates x {len(study.policies)} policies in "
           f"{time.perf_counter() - t0:.1f} s; results in {result.path}")
-    if summary is not None:
+    if (result.path / "report.html").is_file() and not args.no_report:
         print(f"report: {result.path / 'report.html'}")
     return 0
 

@@ -19,7 +19,7 @@ from .noise import Observer
 from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
-           "replay_replicate", "replay", "time_replicate", "history_arrays", "TRACE_COLUMNS"]
+           "replay_replicate", "replay", "replay_chunks", "chunk_plan", "time_replicate", "history_arrays", "TRACE_COLUMNS"]
 
 TRACE_COLUMNS = ("policy", "replicate", "trial", "round", "initial", "history", "y", "f", "lost", "regret",
                  "regret_seen", "rec_trial", "horizon")
@@ -226,35 +226,69 @@ def time_replicate(study: Study, *, replicates: int = 2) -> float:
     return float(np.median(times))
 
 
-def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=None) -> pd.DataFrame:
-    """Replay the whole study and return its traces frame (ordered by replicate, policy, trial).
+def chunk_plan(study: Study, chunk: int | None = None) -> list[list[int]]:
+    """Replicates per task. The plan depends on the study alone (never on the number of
+    workers), so a resumed run cuts the work exactly as the interrupted one did."""
+    R = study.replicates
+    size = chunk or max(1, min(25, -(-R // 64)))
+    return [list(range(s, min(s + size, R))) for s in range(0, R, size)]
+
+
+def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip=frozenset(),
+                  cluster: str | None = None):
+    """Yield ``(chunk index, traces frame)`` as chunks finish (in any order).
 
     Parameters
     ----------
     jobs : int
         Worker processes (joblib); -1 for all cores. Results do not depend on it.
     chunk : int, optional
-        Replicates per task; default splits the work into about 8 tasks per worker.
-    progress : callable, optional
-        Called with the number of campaigns finished after each task.
+        Replicates per chunk (default from :func:`chunk_plan`).
+    skip : set of int
+        Chunk indices already done (a resumed run).
+    cluster : str, optional
+        Address of a dask.distributed scheduler (``tcp://host:port``); the chunks then run
+        on its workers through joblib's dask backend.
     """
-    from joblib import Parallel, delayed
+    from joblib import Parallel, delayed, parallel_config
 
-    R = study.replicates
-    n_workers = jobs if jobs > 0 else max(1, (__import__("os").cpu_count() or 1))
-    chunk = chunk or max(1, min(25, R // (8 * n_workers) or 1))
-    tasks = [list(range(s, min(s + chunk, R))) for s in range(0, R, chunk)]
-    frames, messages = [], set()
-    if jobs == 1:
-        results = (_replay_chunk(study, t) for t in tasks)
-    else:
-        results = Parallel(n_jobs=jobs, return_as="generator")(delayed(_replay_chunk)(study, t) for t in tasks)
-    for t, frame in zip(tasks, results):
-        frames.append(frame)
+    tasks = [(i, reps) for i, reps in enumerate(chunk_plan(study, chunk)) if i not in skip]
+    if cluster is None and jobs == 1:
+        for i, reps in tasks:
+            yield i, _replay_chunk(study, reps)
+        return
+    calls = (delayed(_indexed)(study, i, reps) for i, reps in tasks)
+    if cluster is None:
+        yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
+        return
+    try:
+        from dask.distributed import Client
+    except ImportError:  # pragma: no cover - depends on the installation
+        raise ImportError("--cluster needs dask and distributed: pip install 'simlab[cluster]'") from None
+    with Client(cluster) as client, parallel_config(backend="dask", wait_for_workers_timeout=60):
+        n = max(1, sum(client.nthreads().values()))
+        yield from Parallel(n_jobs=n, return_as="generator_unordered")(calls)
+
+
+def _indexed(study: Study, i: int, reps: list[int]):
+    return i, _replay_chunk(study, reps)
+
+
+def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=None,
+           cluster: str | None = None) -> pd.DataFrame:
+    """Replay the whole study and return its traces frame (ordered by replicate, policy, trial).
+
+    ``progress`` is called with the number of campaigns finished after each chunk; other
+    parameters as in :func:`replay_chunks`. Warnings raised in workers are collected in
+    ``traces.attrs["warnings"]``.
+    """
+    frames, messages = {}, set()
+    for i, frame in replay_chunks(study, jobs=jobs, chunk=chunk, cluster=cluster):
+        frames[i] = frame
         messages.update(frame.attrs.get("warnings", ()))
         if progress is not None:
-            progress(len(t) * len(study.policies))
-    traces = pd.concat(frames, ignore_index=True)
+            progress(frame["replicate"].nunique() * len(study.policies))
+    traces = pd.concat([frames[i] for i in sorted(frames)], ignore_index=True)
     traces["policy"] = pd.Categorical(traces["policy"], categories=list(study.labels))
     traces.attrs = {"warnings": sorted(messages)}
     return traces
