@@ -1,0 +1,152 @@
+"""How simlab's cost scales: per-trial cost against campaign length, workers, and memory.
+
+Run by hand (not part of the test suite):
+
+    python benchmarks/bench_scaling.py              # all three
+    python benchmarks/bench_scaling.py --only trials
+    python benchmarks/bench_scaling.py --only workers
+    python benchmarks/bench_scaling.py --only memory
+
+trials   per-trial cost of one EI campaign (2-D, pool 2048) at 25, 50, 100 and 200 trials,
+         medians of 3 campaigns each, and the exponent of a power-law fit of cost per trial
+         against trials (0 = constant per trial, i.e. linear total; 2 = cubic total).
+workers  configs/demo.toml with 40 replicates at --jobs 1 and --jobs 2, side by side, twice
+         each in alternation; prints the median speed-up.
+memory   a 10,000-replicate study (1-D, short campaigns) run in a child process with traces
+         streamed to disk in chunks; prints the child's peak resident memory.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def bench_trials() -> None:
+    from scipy.stats import qmc
+    from threadpoolctl import threadpool_limits
+
+    from simlab.campaign import Belief, run_campaign
+    from simlab.kernels import Matern52
+    from simlab.policies import ExpectedImprovement
+    from simlab.worlds import FeatureWorld
+
+    kernel = Matern52([0.2, 0.2], 1.0)
+    belief = Belief(kernel, 0.0, 0.1)
+    sizes, costs = (25, 50, 100, 200), []
+    with threadpool_limits(1):
+        for n in sizes:
+            times = []
+            for rep in range(3):
+                rng = np.random.default_rng(rep)
+                world = FeatureWorld(kernel, 0.0, rng)
+                seq = qmc.Sobol(2, seed=rng).random_base2(int(np.ceil(np.log2(n))))[:n]
+                pool = qmc.Sobol(2, seed=rng).random_base2(11)
+                shocks = rng.standard_normal(n)
+                t0 = time.perf_counter()
+                run_campaign(ExpectedImprovement("ei"), belief, world, design=seq[:5], sequence=seq,
+                             observe=lambda f, t: f + 0.1 * shocks[t], budget=n, pool=pool, rng=rng)
+                times.append((time.perf_counter() - t0) / n)
+            costs.append(float(np.median(times)))
+    slope = np.polyfit(np.log(sizes), np.log(costs), 1)[0]
+    print("per-trial cost of one EI campaign (2-D, pool 2048, with polish), median of 3")
+    for n, c in zip(sizes, costs):
+        print(f"  {n:>4} trials: {1e3 * c:7.2f} ms per trial")
+    print(f"  fitted exponent of cost per trial against trials: {slope:.2f} "
+          f"(total cost grows as trials^{1 + slope:.2f})")
+
+
+def _timed_run(args: list[str], cwd: str) -> float:
+    t0 = time.perf_counter()
+    subprocess.run([sys.executable, "-m", "simlab", *args], cwd=cwd, check=True,
+                   stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    return time.perf_counter() - t0
+
+
+def bench_workers() -> None:
+    with tempfile.TemporaryDirectory() as tmp:
+        rows = {1: [], 2: []}
+        for rep in range(2):
+            for jobs in (1, 2):
+                out = Path(tmp) / f"j{jobs}-{rep}"
+                rows[jobs].append(_timed_run(["run", str(ROOT / "configs" / "demo.toml"), "--replicates", "40",
+                                              "--jobs", str(jobs), "--out", str(out), "--no-report", "--quiet"],
+                                             tmp))
+    one, two = np.median(rows[1]), np.median(rows[2])
+    print(f"configs/demo.toml, 40 replicates, no report: --jobs 1 {one:.1f} s, --jobs 2 {two:.1f} s "
+          f"(medians of 2); speed-up {one / two:.2f}x")
+
+
+MEMORY_STUDY = """
+[study]
+name = "memory"
+replicates = 10000
+seed = 1
+[space]
+x = [0.0, 1.0]
+[world]
+lengthscale = 0.2
+amplitude = 1.0
+noise = 0.1
+features = 256
+[campaign]
+initial = 3
+budgets = [8]
+pool = 128
+[target]
+regret = 0.1
+[[policy]]
+rule = "ei"
+[[policy]]
+rule = "random"
+"""
+
+_CHILD = """
+import resource, sys, simlab
+simlab.run_study(sys.argv[1], jobs=int(sys.argv[2]), out=sys.argv[3])
+print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+"""
+
+
+def bench_memory(jobs: int = 2) -> None:
+    with tempfile.TemporaryDirectory() as tmp:
+        study = Path(tmp) / "memory.toml"
+        study.write_text(MEMORY_STUDY)
+        t0 = time.perf_counter()
+        out = subprocess.run([sys.executable, "-c", _CHILD, str(study), str(jobs), str(Path(tmp) / "out")],
+                             capture_output=True, text=True, check=True)
+        seconds = time.perf_counter() - t0
+        main_kib = int(out.stdout.strip().splitlines()[-1])
+        workers_kib = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss  # largest single child
+        size = sum(p.stat().st_size for p in (Path(tmp) / "out").rglob("*") if p.is_file())
+    print(f"10,000 replicates x 2 policies x 8 trials (160,000 rows), --jobs {jobs}: {seconds:.0f} s; "
+          f"peak resident memory {main_kib / 1024:.0f} MiB in the main process, {workers_kib / 1024:.0f} MiB "
+          f"in the largest process; results folder {size / 2**20:.1f} MiB")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--only", choices=("trials", "workers", "memory"))
+    args = ap.parse_args()
+    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}")
+    if args.only in (None, "trials"):
+        bench_trials()
+    if args.only in (None, "workers"):
+        bench_workers()
+    if args.only in (None, "memory"):
+        bench_memory()
+
+
+if __name__ == "__main__":
+    main()
