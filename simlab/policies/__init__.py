@@ -8,15 +8,19 @@ from __future__ import annotations
 from .base import Acquisition, Context, Option, Policy
 from .classic import (ConfidenceBound, ExpectedImprovement, PosteriorMean, ProbabilityOfImprovement,
                       RandomSearch, SobolSearch, ThompsonSampling)
+from .info import KnowledgeGradient, MaxValueEntropySearch, ProbabilityOfMinimum
 from .logei import dlog_h, log_h
+from .schedule import GPUCB, GPHedge
 
 __all__ = [
     "Option", "Context", "Policy", "Acquisition", "RandomSearch", "SobolSearch", "PosteriorMean",
     "ConfidenceBound", "ProbabilityOfImprovement", "ExpectedImprovement", "ThompsonSampling",
+    "ProbabilityOfMinimum", "MaxValueEntropySearch", "KnowledgeGradient", "GPUCB", "GPHedge",
     "POLICIES", "log_h", "dlog_h",
 ]
 
 POLICIES: dict[str, type[Policy]] = {c.rule: c for c in (
     RandomSearch, SobolSearch, PosteriorMean, ConfidenceBound,
     ProbabilityOfImprovement, ExpectedImprovement, ThompsonSampling,
+    ProbabilityOfMinimum, MaxValueEntropySearch, KnowledgeGradient, GPUCB, GPHedge,
 )}
