@@ -189,8 +189,10 @@ class Posterior:
                 self.jitter = max(10.0 * self.jitter, 1e-8)
                 escalate = True
         if escalate:
-            warnings.warn(f"Gaussian-process factorisation needed jitter {self.jitter:.0e} x prior variance "
-                          "(repeated or near-identical inputs with little noise)", RuntimeWarning, stacklevel=3)
+            # One wording for every occurrence, so a study reports it once, not once per trial.
+            warnings.warn("a Gaussian-process factorisation needed extra diagonal jitter (repeated or "
+                          "near-identical inputs with little noise); the belief is smoothed slightly there",
+                          RuntimeWarning, stacklevel=3)
         self._L[:n, :n] = L
         self._L[:n, n:] = 0.0
         self._z[:n] = solve_triangular(L, self._y[:n] - self.mean, lower=True, check_finite=False)
