@@ -269,9 +269,13 @@ class Posterior:
         return cho_solve((self.L, True), r, check_finite=False)
 
     def pool_cross(self, r) -> np.ndarray:
-        """``K(pool, X) (K + s2 I)^-1 r`` over the pool in O(n m) using the cached cross term."""
+        """``K(pool, X) (K + s2 I)^-1 r`` over the pool in O(n m) using the cached cross term.
+
+        ``r`` may be a vector (n,), giving (m,), or a matrix (n, S) of S right-hand sides,
+        giving (m, S) (one batched solve: many posterior samples at once).
+        """
         if self.n == 0:
-            return np.zeros(self.pool.shape[0])
+            return np.zeros((self.pool.shape[0],) + np.shape(r)[1:])
         w = solve_triangular(self.L, r, lower=True, check_finite=False)
         return self._V[: self.n].T @ w
 
