@@ -176,8 +176,8 @@ def _percent_axis(axis):
 # ---------------------------------------------------------------------------
 # results figures
 # ---------------------------------------------------------------------------
-def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=None):
-    """Simple regret of the recommendation against trial: median and interquartile band.
+def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=None, unit="trial"):
+    """Simple regret of the recommendation against trial (or round): median and interquartile band.
 
     Parameters
     ----------
@@ -193,6 +193,10 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     colors : dict, optional
         `policy_colors` mapping; default from the order in `curves`.
     ax : matplotlib Axes, optional
+    unit : {"trial", "round"}
+        What the ``trial`` column counts; "round" when the curves are taken at the end of
+        each round of trials evaluated together (the budgets and initial design are then
+        given in rounds too).
 
     Returns
     -------
@@ -203,6 +207,8 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     The y axis is logarithmic; regret below ``target / 1000`` (including exact zeros)
     is drawn at that floor, which the axes state.
     """
+    if unit not in ("trial", "round"):
+        raise ValueError(f"`unit` must be 'trial' or 'round'; got {unit!r}")
     _check_columns(curves, "curves", ("policy", "trial", "regret_median", "regret_q25", "regret_q75"))
     labels = _policies_in(curves)
     colors = _colors_for(labels, colors)
@@ -224,8 +230,8 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
         ax.plot(t, mid, color=colors[label], ls=styles[label], lw=1.8, label=_shown(label))
     for b in budgets:
         ax.axvline(b, color=_GREY, lw=0.8, ls=":", zorder=0)
-        ax.text(b, 0.99, f"budget {b} ", transform=ax.get_xaxis_transform(), fontsize=8, color=_GREY,
-                va="top", ha="right")
+        ax.text(b, 0.99, f"budget {b}{' rounds' if unit == 'round' else ''} ", transform=ax.get_xaxis_transform(),
+                fontsize=8, color=_GREY, va="top", ha="right")
     if target > 0:
         ax.axhline(target, color="#000000", lw=1.0, ls="--", label=f"target ({target:g})")
     ax.set_yscale("log")
@@ -235,9 +241,10 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     ax.set_ylim(bottom / 2.5, top * 3)
     trials = curves["trial"].to_numpy()
     ax.set_xlim(min(trials.min(), 1) - 0.5, trials.max() + 0.5)
-    ax.set_xlabel("trial")
+    ax.set_xlabel("round (trials evaluated together)" if unit == "round" else "trial")
     ax.set_ylabel(f"simple regret (objective units)\n{_floor_note(floor, values)}", fontsize=9.5)
-    ax.set_title("Regret of the recommendation: median (line) and middle 50 % of campaigns (band)",
+    ax.set_title("Regret after each round: median (line) and middle 50 % of campaigns (band)" if unit == "round"
+                 else "Regret of the recommendation: median (line) and middle 50 % of campaigns (band)",
                  fontsize=10, loc="left")
     _legend_outside(ax)
     return fig

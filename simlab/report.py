@@ -29,7 +29,8 @@ SWEEP_RANKING = "sweep/ranking.csv"
 FIGURES = "figures"
 
 # Figure stems in report order.
-_FIGURE_STEMS = ("regret", "failure_risk", "trials_to_target", "final_regret", "win_rates", "snapshot", "sweep")
+_FIGURE_STEMS = ("regret", "regret_rounds", "failure_risk", "trials_to_target", "final_regret", "win_rates",
+                 "snapshot", "sweep")
 
 _KERNEL_NAMES = {
     "sqexp": "squared exponential",
@@ -193,6 +194,7 @@ def _figures(study, traces, tables, *, success, seed):
     curves = metrics.regret_curves(traces, seed=seed)
     yield "regret", plots.regret_figure(curves, target=study.target, budgets=study.campaign.budgets,
                                         initial=study.campaign.initial, colors=colors)
+    yield "regret_rounds", _rounds_figure(study, traces, colors, seed) if study.campaign.batch > 1 else None
     yield "failure_risk", plots.failure_figure(tables[SUMMARY], colors=colors)
     yield "trials_to_target", plots.reach_figure(tables[TRIALS_TO_TARGET], success=success, colors=colors)
     final = metrics.regret_at_budget(traces, budget=horizon)
@@ -203,6 +205,19 @@ def _figures(study, traces, tables, *, success, seed):
     yield "snapshot", snapshot_figure(study, traces, colors=colors) if study.campaign.initial < horizon else None
     yield "sweep", (plots.sweep_figure(tables[SWEEP_SUMMARY], budget=horizon, colors=colors)
                     if SWEEP_SUMMARY in tables else None)
+
+
+def _rounds_figure(study, traces, colors, seed):
+    """Regret after each round (the last trial of the round): what matters when a round takes a week."""
+    from . import plots
+
+    q = study.campaign.batch
+    ends = traces[(traces["trial"] >= 1) & ((traces["trial"] % q == 0) | (traces["trial"] == study.campaign.horizon))]
+    by_round = ends.assign(trial=(ends["trial"] - 1) // q + 1)
+    curves = metrics.regret_curves(by_round, seed=seed)
+    rounds = sorted({-(-b // q) for b in study.campaign.budgets})
+    return plots.regret_figure(curves, target=study.target, budgets=rounds, colors=colors, unit="round",
+                               initial=-(-study.campaign.initial // q) if study.campaign.initial else None)
 
 
 # ---------------------------------------------------------------------------
@@ -657,6 +672,9 @@ def _results(study, summary, reach, pairs, images, success):
                 "Median regret of the recommendation after each trial (line) and the middle 50 % of campaigns "
                 "(band). Dotted lines mark the budgets, the dashed line the target. The initial design is "
                 "shared, so all policies coincide there."),
+        (_figure(images, "regret_rounds", "Median regret against round for each policy, log scale",
+                 f"The same after each round of {study.campaign.batch} trials evaluated together: when a round "
+                 "takes a week, this is the calendar a team lives by.") if "regret_rounds" in images else ""),
         _figure(images, "failure_risk", "Failure risk against budget with intervals",
                 "Share of campaigns that end above the target at each budget, with 95 % Wilson intervals; "
                 "points are shifted sideways so that intervals do not overlap."),

@@ -143,7 +143,7 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
         u_next = np.asarray(pol.choose(post, trial), dtype=float)
         next_x[label] = float(space.from_unit(u_next)[j])
         scores[label] = next_score[label] = None
-        if isinstance(pol, Acquisition):
+        if isinstance(pol, Acquisition) and pol.scores_anywhere:
             # `choose` prepared the rule for this posterior (incumbent, or the Thompson
             # sample it minimised): score the line with exactly that state. With one input
             # the next input lies on the line, so it is scaled together with it.

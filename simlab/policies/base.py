@@ -121,6 +121,7 @@ class Acquisition(Policy):
     polish_iterations: ClassVar[int] = 30
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs
     log_score: ClassVar[bool] = False  # the score is the log of a positive quantity (log EI, log PI)
+    scores_anywhere: ClassVar[bool] = True  # False for rules that only score their own candidate sets
 
     def __init__(self, label: str | None = None, **settings):
         super().__init__(label, **settings)

@@ -172,6 +172,7 @@ class ProbabilityOfMinimum(Acquisition):
     """
 
     rule = "pbest"
+    scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
     options = {
         "samples": Option(256, int, 1, 65536, "posterior draws counted per trial"),
         "features": Option(128, int, 16, 8192, "spectral frequencies shared by the draws"),
@@ -535,6 +536,7 @@ class KnowledgeGradient(Acquisition):
     """
 
     rule = "kg"
+    scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
     options = {
         "points": Option(64, int, 2, 1024, "pool points in the discrete set and candidates"),
         "fill": Option("believer", str, help="how a round of several trials is filled",

@@ -254,6 +254,17 @@ def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
                    "trials per round 2", "refitted by maximum likelihood every 3 trials",
                    "trials fail only at random"):
         assert phrase in text, phrase
+    # rounds of trials get a regret-against-round figure: its medians are the regrets at the
+    # last trial of each round, recomputed here directly from the traces
+    assert (tmp_path / "figures" / "regret_rounds.png").is_file() and "round of 2 trials" in text
+    from simlab.report import _rounds_figure
+    from simlab.plots import policy_colors
+    fig = _rounds_figure(study, traces, policy_colors(study.labels), 0)
+    line = next(l for l in fig.axes[0].get_lines() if l.get_label() == "ei")
+    ends = traces[(traces.policy == "ei") & traces.trial.isin([2, 4, 6])]
+    expected = ends.groupby("trial")["regret"].median().to_numpy()
+    np.testing.assert_allclose(np.asarray(line.get_ydata()), np.maximum(expected, 0.1 / 1000))
+    np.testing.assert_array_equal(line.get_xdata(), [1, 2, 3])
 
 
 def test_a_single_policy_gets_a_report_without_comparisons(tmp_path):
