@@ -66,13 +66,14 @@ def main():
             seq = qmc.Sobol(D, seed=rng).random_base2(5)[:BUDGET]
             noise = NOISE * rng.standard_normal(BUDGET)
             pool = qmc.Sobol(D, seed=rng).random_base2(11)
+            def observe(f, t):
+                return f + noise[t]
+
+            common = dict(design=seq[:INITIAL], sequence=seq, observe=observe, budget=BUDGET, pool=pool, rng=rng)
             for name, run in (
                 ("scikit-learn loop", lambda: sklearn_loop(world, seq[:INITIAL], noise, pool)),
-                ("simlab, pool only", lambda: run_campaign(PoolOnlyEI("ei"), belief, world, design=seq[:INITIAL],
-                                                           sequence=seq, noise=noise, pool=pool, rng=rng)),
-                ("simlab, pool + polish", lambda: run_campaign(ExpectedImprovement("ei"), belief, world,
-                                                               design=seq[:INITIAL], sequence=seq, noise=noise,
-                                                               pool=pool, rng=rng)),
+                ("simlab, pool only", lambda: run_campaign(PoolOnlyEI("ei"), belief, world, **common)),
+                ("simlab, pool + polish", lambda: run_campaign(ExpectedImprovement("ei"), belief, world, **common)),
             ):
                 t0 = time.perf_counter()
                 run()

@@ -133,6 +133,9 @@ def _refit(post: Posterior, rng: np.random.Generator) -> None:
 
 def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray) -> list[np.ndarray]:
     """Choose every trial of a round before any of its results is back."""
+    if len(ts) == 1:                                       # nothing pending: no fantasies to undo
+        t = ts[0]
+        return [np.asarray(design[t] if t < len(design) else policy.choose(post, t), dtype=float)]
     chosen = []
     with post.fantasies():
         for k, t in enumerate(ts):
