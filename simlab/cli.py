@@ -51,34 +51,22 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number; got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"must be >= 1; got {value}")
-    return value
+def _option(kind, ok, rule: str):
+    """An argparse type: convert with ``kind``, accept when ``ok``, else say the rule in one line."""
+    def parse(text: str):
+        try:
+            value = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"must be {rule}; got {text!r}") from None
+        if not ok(value):
+            raise argparse.ArgumentTypeError(f"must be {rule}; got {value:g}")
+        return value
+    return parse
 
 
-def _share(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a number between 0 and 1; got {text!r}") from None
-    if not 0.0 < value < 1.0:
-        raise argparse.ArgumentTypeError(f"must be between 0 and 1 (exclusive); got {value:g}")
-    return value
-
-
-def _jobs(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number (-1 for all cores); got {text!r}") from None
-    if value == 0 or value < -1:
-        raise argparse.ArgumentTypeError(f"must be >= 1, or -1 for all cores; got {value}")
-    return value
+_positive_int = _option(int, lambda v: v >= 1, "a whole number >= 1")
+_share = _option(float, lambda v: 0.0 < v < 1.0, "a number between 0 and 1 (exclusive)")
+_jobs = _option(int, lambda v: v >= 1 or v == -1, "a whole number >= 1, or -1 for all cores")
 
 
 def build_parser() -> argparse.ArgumentParser:
