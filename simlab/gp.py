@@ -1,4 +1,10 @@
-"""Gaussian-process posterior with incremental Cholesky updates over a fixed candidate pool."""
+"""Gaussian-process beliefs with incremental Cholesky updates over fixed candidate pools.
+
+:class:`Stack` holds the beliefs of a block of replicates that share kernel, mean and noise
+and advances them together (lockstep replicates); :class:`Posterior` is the same code for
+one replicate, with a one-campaign interface. Because both run the same arithmetic, a
+campaign gives bit-identical results whether it is replayed alone or inside a block.
+"""
 
 from __future__ import annotations
 
@@ -10,14 +16,258 @@ from scipy.linalg import cho_solve, solve_triangular
 
 from .kernels import Kernel
 
-__all__ = ["Posterior", "NUGGET"]
+__all__ = ["Stack", "Posterior", "NUGGET", "matvec", "vecmat", "rowdot"]
 
 NUGGET = 1e-10  # relative diagonal added to every Gram matrix for round-off (common practice)
 _MAX_JITTER = 1e-2  # relative; beyond this the model would no longer be the one the study asked for
 
 
-class Posterior:
-    """The belief after n trials, kept in factored form and updated one trial at a time.
+# Stacked products. np.matmul on stacks calls BLAS once per slice with the slice's own shape
+# and strides, and sums over a contiguous last axis reduce each row on its own, so a slice's
+# bits never depend on the block it sits in (tests/unit/test_lockstep.py checks this).
+def matvec(A, v):
+    """``A @ v`` per slice: A (B, n, k), v (B, k) give (B, n)."""
+    return np.matmul(A, v[..., None])[..., 0]
+
+
+def vecmat(v, A):
+    """``v @ A`` per slice: v (B, n), A (B, n, k) give (B, k)."""
+    return np.matmul(v[..., None, :], A)[..., 0, :]
+
+
+def rowdot(a, b):
+    """``a . b`` per row: shapes (B, n) give (B,)."""
+    return np.matmul(a[..., None, :], b[..., :, None])[..., 0, 0]
+
+
+class Stack:
+    """The beliefs of B replicates after n trials each, kept in factored form.
+
+    Parameters
+    ----------
+    kernel : Kernel
+        Prior covariance (unit-cube inputs), shared by the block.
+    mean : float
+        Constant prior mean.
+    noise : float
+        Observation noise standard deviation (0 allowed).
+    pools : ndarray of shape (B, m, d)
+        Each replicate's candidate inputs, whose posterior mean and variance are kept current
+        (m may be 0).
+    capacity : int
+        Largest number of trials held before the buffers grow.
+
+    Notes
+    -----
+    Rasmussen & Williams (2006), Algorithm 2.1, with ``K + s2 I = L L^T``:
+
+    - ``z = L^-1 (y - m)``, ``alpha = L^-T z``
+    - mean ``mu(x) = m + v^T z`` with ``v = L^-1 k(x)``, variance ``k(x, x) - v^T v``
+    - ``log p(y) = -z^T z / 2 - sum(log diag L) - n log(2 pi) / 2``
+
+    Adding trial n+1 appends one row to L: ``l = L^-1 k(X, x)``, ``d = sqrt(k(x,x) + s2 - l^T l)``;
+    one element to z: ``(y - m - l^T z) / d``; one row to ``L^-1``: ``[-l^T L^-1 / d, 1 / d]``;
+    and one row to the pool cross term ``V = L^-1 K(X, pool)``: ``(k(x, pool) - l^T V) / d``.
+    That is O(n^2 + n m) per trial, and pool moments are running sums (O(m)).
+
+    The inverse factor ``L^-1`` is kept (one extra row per trial) so every solve is a
+    stacked matrix product: a triangular solve cannot be batched over replicates in NumPy,
+    and calling LAPACK once per replicate would cost more than the arithmetic. With the
+    relative nugget, ``||L^-1||`` stays below about 1e5 times the prior sd, which bounds
+    the extra rounding in the variance near 1e-11 relative.
+    """
+
+    def __init__(self, kernel: Kernel, mean: float, noise: float, *, pools, capacity: int = 64):
+        self.kernel = kernel
+        self.mean = float(mean)
+        self.noise = float(noise)
+        self.pools = np.ascontiguousarray(pools, dtype=float)
+        B, m, d = self.pools.shape
+        self.size = B
+        self._jitter = np.zeros(B)   # relative, raised per replicate only when a factorisation fails
+        self._cap = max(int(capacity), 1)
+        self._X = np.zeros((B, self._cap, d))
+        self._y = np.zeros((B, self._cap))
+        self._L = np.zeros((B, self._cap, self._cap))
+        self._Li = np.zeros((B, self._cap, self._cap))
+        self._z = np.zeros((B, self._cap))
+        self._V = np.zeros((B, self._cap, m))
+        self._pool_mu = np.full((B, m), self.mean)
+        self._pool_vsq = np.zeros((B, m))
+        self.version = 0    # bumped by refit(): policies caching kernel-derived state compare it
+        self.n = 0
+
+    @property
+    def s2(self):
+        """Diagonal added to the Gram matrix per replicate (B,): noise variance plus nugget and jitter."""
+        return self._s2()
+
+    @property
+    def jitter(self):
+        """Relative jitter per replicate (B,)."""
+        return self._jitter
+
+    def _s2(self) -> np.ndarray:
+        return self.noise**2 + (NUGGET + self._jitter) * self.kernel.variance
+
+    def _grow(self, extra: int):
+        need = self.n + extra
+        if need <= self._cap:
+            return
+        cap, n = max(need, 2 * self._cap), self.n
+        for name in ("_X", "_V"):
+            old = getattr(self, name)
+            new = np.zeros((old.shape[0], cap, old.shape[2]))
+            new[:, :n] = old[:, :n]
+            setattr(self, name, new)
+        for name in ("_y", "_z"):
+            old = getattr(self, name)
+            new = np.zeros((old.shape[0], cap))
+            new[:, :n] = old[:, :n]
+            setattr(self, name, new)
+        for name in ("_L", "_Li"):
+            old = getattr(self, name)
+            new = np.zeros((old.shape[0], cap, cap))
+            new[:, :n, :n] = old[:, :n, :n]
+            setattr(self, name, new)
+        self._cap = cap
+
+    # ------------------------------------------------------------------ updates
+    def add(self, xs, ys) -> None:
+        """Condition every replicate on one more observation: xs (B, d), ys (B,)."""
+        xs = np.asarray(xs, dtype=float).reshape(self.size, -1)
+        ys = np.asarray(ys, dtype=float).reshape(self.size)
+        self._grow(1)
+        n, var = self.n, self.kernel.variance
+        Li = self._Li[:, :n, :n]
+        k = self.kernel.stacked(self._X[:, :n], xs[:, None, :])[:, :, 0]      # (B, n)
+        l = matvec(Li, k)
+        d2 = var + self._s2() - rowdot(l, l)
+        bad = ~(d2 > 1e-3 * NUGGET * var)      # the new row repeats an old one: refactor with jitter
+        dd = np.sqrt(np.where(bad, 1.0, d2))
+        self._X[:, n], self._y[:, n] = xs, ys
+        self._L[:, n, :n], self._L[:, n, n] = l, dd
+        self._Li[:, n, :n] = -vecmat(l, Li) / dd[:, None]
+        self._Li[:, n, n] = 1.0 / dd
+        zn = (ys - self.mean - rowdot(l, self._z[:, :n])) / dd
+        self._z[:, n] = zn
+        if self.pools.shape[1]:
+            kp = self.kernel.stacked(xs[:, None, :], self.pools)[:, 0, :]        # (B, m)
+            row = (kp - vecmat(l, self._V[:, :n])) / dd[:, None]
+            self._V[:, n] = row
+            self._pool_mu += row * zn[:, None]
+            self._pool_vsq += row * row
+        self.n += 1
+        for b in np.flatnonzero(bad):
+            self._refactor(b, escalate=True)
+
+    def _refactor(self, b: int, *, escalate: bool) -> None:
+        """Factor replicate b from scratch, raising its jitter tenfold until the Cholesky succeeds."""
+        n = self.n
+        X = self._X[b : b + 1, :n]
+        K = self.kernel.stacked(X, X)[0]
+        if escalate:
+            self._jitter[b] = max(10.0 * self._jitter[b], 1e-8)
+        while True:
+            try:
+                L = np.linalg.cholesky(K + self._s2()[b] * np.eye(n))
+                break
+            except np.linalg.LinAlgError:
+                if self._jitter[b] >= _MAX_JITTER:
+                    raise np.linalg.LinAlgError(
+                        f"Gram matrix not positive definite even with jitter {self._jitter[b]:g} x variance")
+                self._jitter[b] = max(10.0 * self._jitter[b], 1e-8)
+                escalate = True
+        if escalate:
+            # One wording for every occurrence, so a study reports it once, not once per trial.
+            warnings.warn("a Gaussian-process factorisation needed extra diagonal jitter (repeated or "
+                          "near-identical inputs with little noise); the belief is smoothed slightly there",
+                          RuntimeWarning, stacklevel=3)
+        Li = solve_triangular(L, np.eye(n), lower=True, check_finite=False)
+        self._L[b, :n, :n], self._L[b, :n, n:] = L, 0.0
+        self._Li[b, :n, :n], self._Li[b, :n, n:] = Li, 0.0
+        z = Li @ (self._y[b, :n] - self.mean)
+        self._z[b, :n] = z
+        if self.pools.shape[1]:
+            V = Li @ self.kernel.stacked(X, self.pools[b : b + 1])[0]
+            self._V[b, :n] = V
+            self._pool_mu[b] = self.mean + z @ V
+            self._pool_vsq[b] = (V * V).sum(0)
+
+    def _refactor_all(self) -> None:
+        if self.n == 0:
+            self._pool_mu[:] = self.mean
+            self._pool_vsq[:] = 0.0
+        for b in range(self.size):
+            if self.n:
+                self._refactor(b, escalate=False)
+
+    @contextmanager
+    def fantasies(self):
+        """Observations added inside this block are forgotten when it ends.
+
+        Appending rows leaves the first n rows of the factors untouched, so forgetting
+        them only restores n and the running pool sums. A replicate whose jitter had to be
+        raised is refactored once with the raised jitter instead.
+        """
+        n, jitter = self.n, self._jitter.copy()
+        mu, vsq = self._pool_mu.copy(), self._pool_vsq.copy()
+        try:
+            yield self
+        finally:
+            self.n = n
+            self._pool_mu, self._pool_vsq = mu, vsq
+            for b in np.flatnonzero(self._jitter != jitter):
+                self._refactor(b, escalate=False)
+
+    # ------------------------------------------------------------------ queries
+    def stacked_pool_moments(self) -> tuple[np.ndarray, np.ndarray]:
+        """Posterior mean and standard deviation over the pools, each of shape (B, m)."""
+        var = np.maximum(self.kernel.variance - self._pool_vsq, 0.0)
+        return self._pool_mu.copy(), np.sqrt(var)
+
+    def alphas(self) -> np.ndarray:
+        """``(K + s2 I)^-1 (y - m)`` per replicate, shape (B, n)."""
+        n = self.n
+        return matvec(self._Li[:, :n, :n].transpose(0, 2, 1), self._z[:, :n])
+
+    def means_at_data(self) -> np.ndarray:
+        """Posterior mean at the evaluated inputs, (B, n): ``m + L z - s2 alpha``."""
+        n = self.n
+        return self.mean + matvec(self._L[:, :n, :n], self._z[:, :n]) - self._s2()[:, None] * self.alphas()
+
+    def stacked_moments(self, U, *, grad: bool = False):
+        """Posterior mean and sd at inputs U of shape (B, q, d), each (B, q).
+
+        With ``grad`` also their gradients in U, each (B, q, d).
+        """
+        U = np.asarray(U, dtype=float)
+        B, q, d = U.shape
+        n = self.n
+        if n == 0:
+            mu, sd = np.full((B, q), self.mean), np.full((B, q), self.kernel.amplitude)
+            return (mu, sd, np.zeros_like(U), np.zeros_like(U)) if grad else (mu, sd)
+        X, Li = self._X[:, :n], self._Li[:, :n, :n]
+        if grad:
+            Kq, dK = self.kernel.stacked_grad(U, X)                     # (B, q, n), d x (B, q, n)
+        else:
+            Kq = self.kernel.stacked(U, X)
+        vt = np.matmul(Kq, Li.transpose(0, 2, 1))                       # rows v^T = (L^-1 k(x))^T
+        mu = self.mean + matvec(vt, self._z[:, :n])
+        sd = np.sqrt(np.maximum(self.kernel.variance - (vt * vt).sum(-1), 0.0))
+        if not grad:
+            return mu, sd
+        alpha = self.alphas()
+        w = np.matmul(vt, Li)                                            # rows (K^-1 k(x))^T
+        dmu = np.stack([matvec(g, alpha) for g in dK], axis=-1)
+        dvar = np.stack([-2.0 * (g * w).sum(-1) for g in dK], axis=-1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dsd = np.where(sd[..., None] > 0, dvar / (2.0 * sd[..., None]), 0.0)
+        return mu, sd, dmu, dsd
+
+
+class Posterior(Stack):
+    """The belief of one campaign after n trials, updated one trial at a time.
 
     Parameters
     ----------
@@ -30,191 +280,73 @@ class Posterior:
     pool : ndarray of shape (m, d), optional
         Candidate inputs whose posterior mean and variance are kept current.
     capacity : int
-        Largest number of trials this posterior will hold (buffers are allocated once).
+        Largest number of trials held before the buffers grow.
 
     Notes
     -----
-    Rasmussen & Williams (2006), Algorithm 2.1, with ``K + s2 I = L L^T``:
-
-    - ``z = L^-1 (y - m)``, ``alpha = L^-T z``
-    - mean ``mu(x) = m + k(x)^T alpha = m + v^T z`` with ``v = L^-1 k(x)``
-    - variance ``var(x) = k(x, x) - v^T v``
-    - ``log p(y) = -z^T z / 2 - sum(log diag L) - n log(2 pi) / 2``
-
-    Adding trial n+1 appends one row to L: ``l = L^-1 k(X, x)``, ``d = sqrt(k(x,x) + s2 - l^T l)``;
-    one element to z: ``(y - m - l^T z) / d``; and one row to the pool cross term
-    ``V = L^-1 K(X, pool)``: ``(k(x, pool) - l^T V) / d``. That is O(n^2 + n m) per trial, and
-    pool moments are then running sums (O(m)).
+    A :class:`Stack` of one replicate (see there for the algebra), so a campaign replayed
+    alone and one replayed in a block of replicates run the same arithmetic.
     """
 
     def __init__(self, kernel: Kernel, mean: float, noise: float, *, pool=None, capacity: int = 64):
-        self.kernel = kernel
-        self.mean = float(mean)
-        self.noise = float(noise)
-        self.jitter = 0.0  # relative, raised only when a factorisation fails
-        d = kernel.dim
-        self.pool = np.empty((0, d)) if pool is None else np.ascontiguousarray(pool, dtype=float)
-        m = self.pool.shape[0]
-        self._cap = max(int(capacity), 1)
-        self._X = np.empty((self._cap, d))
-        self._y = np.empty(self._cap)
-        self._L = np.zeros((self._cap, self._cap))
-        self._z = np.empty(self._cap)
-        self._V = np.empty((self._cap, m))
-        self._pool_mu = np.full(m, self.mean)
-        self._pool_vsq = np.zeros(m)
-        self._alpha = None  # cached (K + s2 I)^-1 (y - m), cleared by every update
-        self.version = 0    # bumped by refit(): policies caching kernel-derived state compare it
-        self.n = 0
+        pool = np.empty((0, kernel.dim)) if pool is None else np.asarray(pool, dtype=float)
+        super().__init__(kernel, mean, noise, pools=pool[None], capacity=capacity)
+        self.pool = self.pools[0]
 
     # ------------------------------------------------------------------ state
     @property
     def s2(self) -> float:
         """Diagonal added to the Gram matrix: noise variance plus nugget and jitter."""
-        return self.noise**2 + (NUGGET + self.jitter) * self.kernel.variance
+        return float(self._s2()[0])
+
+    @property
+    def jitter(self) -> float:
+        """Relative jitter (raised only when a factorisation fails)."""
+        return float(self._jitter[0])
 
     @property
     def X(self) -> np.ndarray:
-        return self._X[: self.n]
+        return self._X[0, : self.n]
 
     @property
     def y(self) -> np.ndarray:
-        return self._y[: self.n]
+        return self._y[0, : self.n]
 
     @property
     def L(self) -> np.ndarray:
-        return self._L[: self.n, : self.n]
-
-    def _grow(self, extra: int):
-        need = self.n + extra
-        if need <= self._cap:
-            return
-        cap = max(need, 2 * self._cap)
-        for name in ("_X", "_V"):
-            old = getattr(self, name)
-            new = np.empty((cap, old.shape[1]))
-            new[: self.n] = old[: self.n]
-            setattr(self, name, new)
-        for name in ("_y", "_z"):
-            old = getattr(self, name)
-            new = np.empty(cap)
-            new[: self.n] = old[: self.n]
-            setattr(self, name, new)
-        L = np.zeros((cap, cap))
-        L[: self.n, : self.n] = self.L
-        self._L, self._cap = L, cap
+        return self._L[0, : self.n, : self.n]
 
     # ------------------------------------------------------------------ updates
     def add(self, x, y: float) -> None:
         """Condition on one more observation ``y`` at ``x`` (shape (d,))."""
-        x = np.asarray(x, dtype=float).reshape(-1)
-        self._alpha = None
-        self._grow(1)
-        n = self.n
-        k = self.kernel(self._X[:n], x[None, :])[:, 0]
-        l = solve_triangular(self._L[:n, :n], k, lower=True, check_finite=False) if n else k
-        d2 = self.kernel.variance + self.s2 - l @ l
-        if not d2 > 1e-3 * NUGGET * self.kernel.variance:
-            # The new row is (numerically) a copy of an old one: refactor with more jitter.
-            self._X[n], self._y[n] = x, y
-            self.n += 1
-            self._refactor(escalate=True)
-            return
-        dd = np.sqrt(d2)
-        self._X[n], self._y[n] = x, y
-        self._L[n, :n] = l
-        self._L[n, n] = dd
-        self._z[n] = (y - self.mean - l @ self._z[:n]) / dd
-        if self.pool.shape[0]:
-            row = (self.kernel(x[None, :], self.pool)[0] - l @ self._V[:n]) / dd
-            self._V[n] = row
-            self._pool_mu += row * self._z[n]
-            self._pool_vsq += row * row
-        self.n += 1
+        super().add(np.asarray(x, dtype=float).reshape(1, -1), np.array([float(y)]))
 
     def add_many(self, X, y) -> None:
         """Condition on several observations at once (one factorisation)."""
         X = np.atleast_2d(np.asarray(X, dtype=float))
         y = np.asarray(y, dtype=float).reshape(-1)
         self._grow(len(y))
-        self._X[self.n : self.n + len(y)] = X
-        self._y[self.n : self.n + len(y)] = y
+        self._X[0, self.n : self.n + len(y)] = X
+        self._y[0, self.n : self.n + len(y)] = y
         self.n += len(y)
-        self._refactor(escalate=False)
+        self._refactor_all()
 
     def refit(self, kernel: Kernel, mean: float, noise: float) -> None:
         """Replace the hyperparameters and refactor the data held so far (O(n^3 + n^2 m))."""
-        self.kernel, self.mean, self.noise, self.jitter = kernel, float(mean), float(noise), 0.0
+        self.kernel, self.mean, self.noise = kernel, float(mean), float(noise)
+        self._jitter[:] = 0.0
         self.version += 1
-        if self.n:
-            self._refactor(escalate=False)
-        else:
-            self._pool_mu = np.full(self.pool.shape[0], self.mean)
-            self._pool_vsq = np.zeros(self.pool.shape[0])
-
-    @contextmanager
-    def fantasies(self):
-        """Observations added inside this block are forgotten when it ends.
-
-        Appending rows leaves the first n rows of the factor untouched, so forgetting
-        them only restores n and the running pool sums. If an addition had to raise the
-        jitter, the factor is rebuilt once with the raised jitter instead.
-        """
-        n, jitter = self.n, self.jitter
-        mu, vsq = self._pool_mu.copy(), self._pool_vsq.copy()
-        try:
-            yield self
-        finally:
-            self.n, self._alpha = n, None
-            if self.jitter != jitter:
-                self._refactor(escalate=False)
-            else:
-                self._pool_mu, self._pool_vsq = mu, vsq
-
-    def _refactor(self, *, escalate: bool) -> None:
-        """Factor from scratch, raising the jitter tenfold until the Cholesky succeeds."""
-        n = self.n
-        self._alpha = None
-        K = self.kernel(self._X[:n])
-        if escalate:
-            self.jitter = max(10.0 * self.jitter, 1e-8)
-        while True:
-            try:
-                L = np.linalg.cholesky(K + self.s2 * np.eye(n))
-                break
-            except np.linalg.LinAlgError:
-                if self.jitter >= _MAX_JITTER:
-                    raise np.linalg.LinAlgError(
-                        f"Gram matrix not positive definite even with jitter {self.jitter:g} x variance")
-                self.jitter = max(10.0 * self.jitter, 1e-8)
-                escalate = True
-        if escalate:
-            # One wording for every occurrence, so a study reports it once, not once per trial.
-            warnings.warn("a Gaussian-process factorisation needed extra diagonal jitter (repeated or "
-                          "near-identical inputs with little noise); the belief is smoothed slightly there",
-                          RuntimeWarning, stacklevel=3)
-        self._L[:n, :n] = L
-        self._L[:n, n:] = 0.0
-        self._z[:n] = solve_triangular(L, self._y[:n] - self.mean, lower=True, check_finite=False)
-        if self.pool.shape[0]:
-            V = solve_triangular(L, self.kernel(self._X[:n], self.pool), lower=True, check_finite=False)
-            self._V[:n] = V
-            self._pool_mu = self.mean + V.T @ self._z[:n]
-            self._pool_vsq = (V * V).sum(0)
+        self._refactor_all()
 
     # ------------------------------------------------------------------ queries
     def pool_moments(self) -> tuple[np.ndarray, np.ndarray]:
         """Posterior mean and standard deviation over the pool, each of shape (m,)."""
-        var = np.maximum(self.kernel.variance - self._pool_vsq, 0.0)
-        return self._pool_mu.copy(), np.sqrt(var)
+        mu, sd = self.stacked_pool_moments()
+        return mu[0], sd[0]
 
     def alpha(self) -> np.ndarray:
         """``(K + s2 I)^-1 (y - m)``, shape (n,)."""
-        if self.n == 0:
-            return np.zeros(0)
-        if self._alpha is None:
-            self._alpha = solve_triangular(self.L, self._z[: self.n], lower=True, trans="T", check_finite=False)
-        return self._alpha
+        return self.alphas()[0]
 
     def moments(self, Xq, *, grad: bool = False):
         """Posterior mean and sd at arbitrary inputs.
@@ -231,32 +363,11 @@ class Posterior:
         dmu, dsd : ndarray of shape (q, d), only if ``grad``
         """
         Xq = np.atleast_2d(np.asarray(Xq, dtype=float))
-        n = self.n
-        if n == 0:
-            q = Xq.shape[0]
-            mu, sd = np.full(q, self.mean), np.full(q, self.kernel.amplitude)
-            return (mu, sd, np.zeros_like(Xq), np.zeros_like(Xq)) if grad else (mu, sd)
-        Kq = self.kernel(self.X, Xq)                                      # (n, q)
-        v = solve_triangular(self.L, Kq, lower=True, check_finite=False)  # (n, q)
-        mu = self.mean + v.T @ self._z[:n]
-        var = np.maximum(self.kernel.variance - np.einsum("nq,nq->q", v, v), 0.0)
-        sd = np.sqrt(var)
-        if not grad:
-            return mu, sd
-        dK = self.kernel.grad(Xq, self.X)                                 # (q, n, d)
-        dmu = np.einsum("qnd,n->qd", dK, self.alpha())
-        w = solve_triangular(self.L, v, lower=True, trans="T", check_finite=False)  # K^-1 k(x)
-        dvar = -2.0 * np.einsum("qnd,nq->qd", dK, w)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            dsd = np.where(sd[:, None] > 0, dvar / (2.0 * sd[:, None]), 0.0)
-        return mu, sd, dmu, dsd
+        return tuple(a[0] for a in self.stacked_moments(Xq[None], grad=grad))
 
     def mean_at_data(self) -> np.ndarray:
         """Posterior mean at the evaluated inputs: ``m + L z - s2 alpha`` (no new solves of K)."""
-        n = self.n
-        if n == 0:
-            return np.zeros(0)
-        return self.mean + self.L @ self._z[:n] - self.s2 * self.alpha()
+        return self.means_at_data()[0]
 
     def recommend(self) -> int:
         """Index of the evaluated input with the lowest posterior mean."""
@@ -277,10 +388,10 @@ class Posterior:
         if self.n == 0:
             return np.zeros((self.pool.shape[0],) + np.shape(r)[1:])
         w = solve_triangular(self.L, r, lower=True, check_finite=False)
-        return self._V[: self.n].T @ w
+        return self._V[0, : self.n].T @ w
 
     def log_marginal_likelihood(self) -> float:
         """``log p(y | X)`` under the prior (Rasmussen & Williams 2006, Algorithm 2.1)."""
         n = self.n
-        z = self._z[:n]
+        z = self._z[0, :n]
         return float(-0.5 * z @ z - np.log(np.diag(self.L)).sum() - 0.5 * n * np.log(2.0 * np.pi))

@@ -126,7 +126,7 @@ def make_policy(spec) -> Policy:
     return POLICIES[spec.rule](spec.label, **spec.options)
 
 
-def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None) -> pd.DataFrame:
+def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None, lockstep: bool = True) -> pd.DataFrame:
     """All policies on replicate r: a traces frame in the user's units and orientation.
 
     Regret is measured against the better of the world's optimum and every input any
@@ -138,23 +138,56 @@ def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None) -> p
     The ``horizon`` column says which campaign a row belongs to.
     """
     rep = rep or make_replicate(study, r)
+    return _frame(study, rep, _campaigns(study, [rep], lockstep=lockstep)[0])
+
+
+def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
+    """Every policy's campaigns on each replicate: per replicate, ``[(label, [(budget, trace)])]``.
+
+    Campaigns of a rule that can advance in lockstep run as one block over ``reps``
+    (:func:`simlab.lockstep.run_block`); the others run one at a time. Both give the same
+    traces, so ``lockstep=False`` (every campaign alone) is the reference the tests use.
+    """
+    from .lockstep import fits_lockstep, run_block
+
     belief, observer, history = make_belief(study), make_observer(study), history_arrays(study)
     c = study.campaign
+    out: list[list] = [[] for _ in reps]
+    for spec in study.policies:
+        probe = make_policy(spec)
+        horizons = c.budgets if probe.horizon_aware else (c.horizon,)
+        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost)
+        per: list[list[tuple[int, Trace]]] = [[] for _ in reps]
+        for b in horizons:
+            if together:
+                rngs = [stream(study.seed, rep.index, "policy", spec.label) for rep in reps]
+                traces = run_block(make_policy(spec), belief, reps, observer=observer, budget=b, rngs=rngs,
+                                   history=history)
+            else:
+                traces = [_alone(study, spec, belief, observer, history, rep, b) for rep in reps]
+            for k, trace in enumerate(traces):
+                per[k].append((b, trace))
+        for k in range(len(reps)):
+            out[k].append((spec.label, per[k]))
+    return out
 
+
+def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep: Replicate, budget: int) -> Trace:
+    """One campaign replayed on its own (the reference path)."""
     def observe(f, t):
         return observer(f, rep.shocks[t], rep.lost[t])
 
-    runs: list[tuple[str, list[tuple[int, Trace]]]] = []
-    for spec in study.policies:
-        horizons = c.budgets if make_policy(spec).horizon_aware else (c.horizon,)
-        per = [(b, run_campaign(make_policy(spec), belief, rep.world, design=rep.design,
-                                sequence=rep.sequence, observe=observe, budget=b, pool=rep.pool,
-                                rng=stream(study.seed, r, "policy", spec.label), batch=c.batch,
-                                history=history, refit_rng=stream(study.seed, r, "refit", spec.label)))
-               for b in horizons]
-        runs.append((spec.label, per))
-    fstar = min(rep.optimum[1], min(float(t.f.min()) for _, per in runs for _, t in per))
+    r = rep.index
+    return run_campaign(make_policy(spec), belief, rep.world, design=rep.design, sequence=rep.sequence,
+                        observe=observe, budget=budget, pool=rep.pool,
+                        rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
+                        history=history, refit_rng=stream(study.seed, r, "refit", spec.label))
 
+
+def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
+    """The traces frame of one replicate from its campaigns ``[(label, [(budget, trace)])]``."""
+    c, r = study.campaign, rep.index
+    fstar = min(rep.optimum[1], min(float(t.f.min()) for _, per in runs for _, t in per))
     h = study.history.size if study.history is not None else 0
     trial = np.arange(1 - h, c.horizon + 1, dtype=np.int32)   # past trials -h+1 .. 0, then 1 .. B
     frames = []
@@ -201,14 +234,16 @@ def _compose(parts: list[tuple[int, dict]], trial: np.ndarray) -> dict[str, np.n
     return out
 
 
-def _replay_chunk(study: Study, replicates: list[int]) -> pd.DataFrame:
+def _replay_chunk(study: Study, replicates: list[int], lockstep: bool = True) -> pd.DataFrame:
     from threadpoolctl import threadpool_limits
 
     # One BLAS thread: the matrices are small (n trials), so threads cost more than they
-    # save; parallelism comes from running replicates in separate workers instead.
+    # save; parallelism comes from running chunks in separate workers instead. A chunk's
+    # replicates are one lockstep block.
     with threadpool_limits(1), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        frames = [replay_replicate(study, r) for r in replicates]
+        reps = [make_replicate(study, r) for r in replicates]
+        frames = [_frame(study, rep, runs) for rep, runs in zip(reps, _campaigns(study, reps, lockstep=lockstep))]
     out = pd.concat(frames, ignore_index=True)
     out.attrs["warnings"] = sorted({str(w.message) for w in caught})
     return out
@@ -235,7 +270,7 @@ def chunk_plan(study: Study, chunk: int | None = None) -> list[list[int]]:
 
 
 def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip=frozenset(),
-                  cluster: str | None = None):
+                  cluster: str | None = None, lockstep: bool = True):
     """Yield ``(chunk index, traces frame)`` as chunks finish (in any order).
 
     Parameters
@@ -249,15 +284,18 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     cluster : str, optional
         Address of a dask.distributed scheduler (``tcp://host:port``); the chunks then run
         on its workers through joblib's dask backend.
+    lockstep : bool
+        Advance a chunk's campaigns of lockstep rules together (the default); False replays
+        every campaign alone. The traces are identical either way.
     """
     from joblib import Parallel, delayed, parallel_config
 
     tasks = [(i, reps) for i, reps in enumerate(chunk_plan(study, chunk)) if i not in skip]
     if cluster is None and jobs == 1:
         for i, reps in tasks:
-            yield i, _replay_chunk(study, reps)
+            yield i, _replay_chunk(study, reps, lockstep)
         return
-    calls = (delayed(_indexed)(study, i, reps) for i, reps in tasks)
+    calls = (delayed(_indexed)(study, i, reps, lockstep) for i, reps in tasks)
     if cluster is None:
         yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
         return
@@ -270,12 +308,12 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
         yield from Parallel(n_jobs=n, return_as="generator_unordered")(calls)
 
 
-def _indexed(study: Study, i: int, reps: list[int]):
-    return i, _replay_chunk(study, reps)
+def _indexed(study: Study, i: int, reps: list[int], lockstep: bool = True):
+    return i, _replay_chunk(study, reps, lockstep)
 
 
 def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=None,
-           cluster: str | None = None) -> pd.DataFrame:
+           cluster: str | None = None, lockstep: bool = True) -> pd.DataFrame:
     """Replay the whole study and return its traces frame (ordered by replicate, policy, trial).
 
     ``progress`` is called with the number of campaigns finished after each chunk; other
@@ -283,7 +321,7 @@ def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=No
     ``traces.attrs["warnings"]``.
     """
     frames, messages = {}, set()
-    for i, frame in replay_chunks(study, jobs=jobs, chunk=chunk, cluster=cluster):
+    for i, frame in replay_chunks(study, jobs=jobs, chunk=chunk, cluster=cluster, lockstep=lockstep):
         frames[i] = frame
         messages.update(frame.attrs.get("warnings", ()))
         if progress is not None:

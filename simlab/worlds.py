@@ -10,7 +10,7 @@ from .kernels import Kernel
 from .optimize import distinct_best, polish
 
 __all__ = ["World", "FeatureWorld", "GridWorld", "FunctionWorld", "ConditionedWorld", "FeatureSample",
-           "find_minimum"]
+           "WorldBlock", "feature_values", "find_minimum"]
 
 
 class World:
@@ -105,6 +105,7 @@ class FeatureSample:
         self.omega = kernel.spectral(rng, n_freq)          # (F, d)
         self.scale = kernel.amplitude / np.sqrt(n_freq)
         self.w = rng.standard_normal(2 * n_freq)           # (2F,)
+        self._polar_of = None
 
     def basis(self, U) -> np.ndarray:
         """Feature matrix of shape (n, 2F), already multiplied by ``a / sqrt(F)``."""
@@ -115,16 +116,68 @@ class FeatureSample:
         """New weights on the same frequencies (another draw from the same feature prior)."""
         self.w = rng.standard_normal(self.w.size)
 
+    def polar(self) -> tuple[np.ndarray, np.ndarray]:
+        """Weights in amplitude-phase form: ``a cos(p) + b sin(p) = r cos(p - phi)``, each (F,).
+
+        One cosine per frequency instead of a cosine and a sine halves the transcendental
+        work of every evaluation. Recomputed whenever the weights are redrawn.
+        """
+        if self._polar_of is not self.w:
+            F = self.omega.shape[0]
+            self._polar = (np.hypot(self.w[:F], self.w[F:]), np.arctan2(self.w[F:], self.w[:F]))
+            self._polar_of = self.w
+        return self._polar
+
     def __call__(self, U) -> np.ndarray:
-        P = np.atleast_2d(U) @ self.omega.T
-        F = self.omega.shape[0]
-        return self.mean + self.scale * (np.cos(P) @ self.w[:F] + np.sin(P) @ self.w[F:])
+        amp, phase = self.polar()
+        return feature_values(self.omega[None], amp[None], phase[None], self.scale, self.mean,
+                              np.atleast_2d(U)[None])[0]
 
     def grad(self, U) -> np.ndarray:
-        P = np.atleast_2d(U) @ self.omega.T
-        F = self.omega.shape[0]
-        coef = self.scale * (-np.sin(P) * self.w[:F] + np.cos(P) * self.w[F:])  # (n, F)
-        return coef @ self.omega
+        amp, phase = self.polar()
+        P = np.atleast_2d(U) @ self.omega.T - phase
+        return (-self.scale * amp * np.sin(P)) @ self.omega
+
+
+def feature_values(omega, amp, phase, scale, mean, U) -> np.ndarray:
+    """Stacked random-feature functions ``mean + scale sum_j amp_j cos(omega_j . u - phase_j)``.
+
+    omega (B, F, d), amp and phase (B, F), U (B, q, d) give (B, q); ``scale`` and ``mean``
+    are scalars or shaped (B, 1). One function serves a single sample (B = 1) and a block
+    of worlds advancing in lockstep, so both give the same bits.
+    """
+    from .gp import matvec
+
+    P = np.matmul(U, omega.transpose(0, 2, 1))                 # (B, q, F)
+    P -= phase[:, None, :]
+    np.cos(P, out=P)
+    return mean + scale * matvec(P, amp)
+
+
+class WorldBlock:
+    """The worlds of a block of replicates, evaluated together at one input each.
+
+    Random-feature worlds are stacked into one array product; any other kind is evaluated
+    one world at a time. Either way each world's value has the bits of ``world(u[None])[0]``.
+    """
+
+    def __init__(self, worlds: list["World"]):
+        self.worlds = worlds
+        kinds = {type(w) for w in worlds}
+        sizes = {w.sample.omega.shape for w in worlds} if kinds == {FeatureWorld} else set()
+        self.stacked = len(sizes) == 1
+        if self.stacked:
+            self.omega = np.stack([w.sample.omega for w in worlds])
+            self.amp, self.phase = (np.stack(a) for a in zip(*(w.sample.polar() for w in worlds)))
+            self.scale = np.array([[w.sample.scale] for w in worlds])
+            self.mean = np.array([[w.sample.mean] for w in worlds])
+
+    def __call__(self, xs) -> np.ndarray:
+        """Values (B,) at inputs xs (B, d), one input per world."""
+        xs = np.asarray(xs, dtype=float)
+        if self.stacked:
+            return feature_values(self.omega, self.amp, self.phase, self.scale, self.mean, xs[:, None, :])[:, 0]
+        return np.array([w(x[None, :])[0] for w, x in zip(self.worlds, xs)])
 
 
 class FeatureWorld(World):

@@ -9,10 +9,10 @@ import numpy as np
 
 from scipy.special import log_ndtr
 
-from ..gp import Posterior
-from ..optimize import distinct_best, polish
+from ..gp import Posterior, Stack
+from ..optimize import distinct_best, polish, polish_block
 
-__all__ = ["Option", "Context", "Policy", "Acquisition"]
+__all__ = ["Option", "Context", "Block", "Policy", "Acquisition"]
 
 
 @dataclass(frozen=True)
@@ -38,15 +38,27 @@ class Context:
     posterior: Posterior
 
 
+@dataclass
+class Block:
+    """What a policy may use when it chooses for a block of replicates in lockstep."""
+
+    rngs: list[np.random.Generator]   # each replicate's own stream for this policy
+    sequences: np.ndarray             # (B, horizon, d) each replicate's Sobol' sequence
+    horizon: int                      # trials in each campaign
+
+
 class Policy:
     """Chooses the next trial. Subclasses set ``rule`` and implement :meth:`choose`.
 
     ``options`` declared on a class are merged with those of its bases, so a rule lists
-    only its own settings.
+    only its own settings. A rule that sets ``lockstep = True`` also implements
+    :meth:`choose_block`, and its campaigns on a block of replicates then advance together
+    (``simlab.lockstep``) with results identical to replaying them one at a time.
     """
 
     rule: ClassVar[str] = ""
     options: ClassVar[dict[str, Option]] = {}
+    lockstep: ClassVar[bool] = False
 
     def __init_subclass__(cls, **kwargs):
         super().__init_subclass__(**kwargs)
@@ -71,6 +83,10 @@ class Policy:
 
     def choose(self, post: Posterior, t: int) -> np.ndarray:  # pragma: no cover - abstract
         """The next input (d,) on the unit cube; t is the 0-based trial index."""
+        raise NotImplementedError
+
+    def choose_block(self, st: Stack, t: int, block: Block) -> np.ndarray:  # pragma: no cover - abstract
+        """The next inputs (B, d) of a block of replicates advancing in lockstep."""
         raise NotImplementedError
 
     @property
@@ -122,6 +138,9 @@ class Acquisition(Policy):
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs
     log_score: ClassVar[bool] = False  # the score is the log of a positive quantity (log EI, log PI)
     scores_anywhere: ClassVar[bool] = True  # False for rules that only score their own candidate sets
+    # lockstep = True: the score is a function of the posterior mean and sd alone (set through
+    # _from_moments, with per-trial state from prepare_block); choose() then runs the block
+    # code on a block of one, so both paths share every operation.
 
     def __init__(self, label: str | None = None, **settings):
         super().__init__(label, **settings)
@@ -135,6 +154,9 @@ class Acquisition(Policy):
     def prepare(self, post: Posterior) -> None:
         """Per-trial state (incumbent, function sample) computed before scoring."""
 
+    def prepare_block(self, st: Stack) -> None:
+        """Per-trial state for a block, shaped to broadcast against (B, m) scores."""
+
     def _from_moments(self, mu, sd):  # pragma: no cover - abstract
         """Score and its partial derivatives with respect to mu and sd, each (q,)."""
         raise NotImplementedError
@@ -142,6 +164,14 @@ class Acquisition(Policy):
     def _value(self, mu, sd):
         """Score alone (no derivatives); override where that is cheaper."""
         return self._from_moments(mu, sd)[0]
+
+    def _pool_values(self, mu, sd, k: int):
+        """Scores over the pools (B, m) for choosing the k best per row.
+
+        Only the k best of each row need to be right: a rule may return -inf for entries it
+        has proved cannot be among them (see :class:`ExpectedImprovement`).
+        """
+        return self._value(mu, sd)
 
     def _floor(self, post, sd):
         return np.maximum(sd, self.sd_floor * post.kernel.amplitude)
@@ -163,6 +193,11 @@ class Acquisition(Policy):
 
     # ------------------------------------------------------------------ choosing
     def choose(self, post, t):
+        if self.lockstep and not self._pending:
+            block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
+            u = self.choose_block(post, t, block)[0]
+            self.prepare(post)     # leave the one-campaign state (incumbent) for score()
+            return u
         if t >= self.ctx.horizon - self.exploit_last:
             return _lowest_mean(post, self.ctx.pool, self.n_starts, self.polish_iterations)
         self.prepare(post)
@@ -178,6 +213,22 @@ class Acquisition(Policy):
 
         U, v = polish(neg, starts, maxiter=self.polish_iterations)
         return U[int(np.argmin(v))]
+
+    def choose_block(self, st, t, block):
+        if t >= block.horizon - self.exploit_last:
+            return _lowest_mean_block(st, self.n_starts, self.polish_iterations)
+        self.prepare_block(st)
+        floor = self.sd_floor * st.kernel.amplitude
+        mu, sd = st.stacked_pool_moments()
+        values = self._pool_values(mu, np.maximum(sd, floor), _candidates(self.n_starts, mu.shape[-1]))
+
+        def neg(U):
+            mu, sd, dmu, dsd = st.stacked_moments(U, grad=True)
+            a, da_dmu, da_dsd = self._from_moments(mu, np.maximum(sd, floor))
+            da_dsd = np.where(sd < floor, 0.0, da_dsd)
+            return -a, -(da_dmu[..., None] * dmu + da_dsd[..., None] * dsd)
+
+        return _best_polished(st.pools, values, neg, self.n_starts, self.polish_iterations)
 
     # ------------------------------------------------------------------ rounds of trials
     def hold(self, post, u):
@@ -258,3 +309,56 @@ def _lowest_mean(post: Posterior, pool, n_starts: int, iterations: int) -> np.nd
 
     U, v = polish(fg, starts, maxiter=iterations)
     return U[int(np.argmin(v))]
+
+
+def _lowest_mean_block(st: Stack, n_starts: int, iterations: int) -> np.ndarray:
+    """Per replicate, the input with the lowest posterior mean: pool search, then polish."""
+    mu, _ = st.stacked_pool_moments()
+
+    def fg(U):
+        m, _, dm, _ = st.stacked_moments(U, grad=True)
+        return m, dm
+
+    return _best_polished(st.pools, -mu, fg, n_starts, iterations)
+
+
+def _best_polished(pools, values, neg, n_starts: int, iterations: int) -> np.ndarray:
+    """Per replicate, the best pool point by ``values`` (B, m), or the best of the
+    ``n_starts`` best distinct pool points after polishing ``neg`` (lower is better)."""
+    rows = np.arange(pools.shape[0])
+    if n_starts == 0:
+        return pools[rows, np.argmax(values, axis=-1)].copy()
+    starts = pools[rows[:, None], top_distinct(pools, values, n_starts)]
+    U, v = polish_block(neg, starts, iterations=iterations)
+    return U[rows, np.argmin(v, axis=-1)]
+
+
+def _candidates(n_starts: int, m: int) -> int:
+    """How many of the best pool points per replicate the choice looks at (see top_distinct)."""
+    return 1 if n_starts == 0 else min(m, 4 * n_starts)
+
+
+def top_distinct(pools, values, k: int, *, min_dist: float = 1e-6) -> np.ndarray:
+    """Indices (B, k) of each replicate's k best pool points by ``values`` whose inputs differ.
+
+    The same choice as :func:`simlab.optimize.distinct_best` made row by row, without
+    sorting whole rows: candidates are the 4k best (``np.argpartition``), ordered by value
+    and then index. A row with fewer than k distinct candidates repeats its best one.
+    """
+    B, m, _ = pools.shape
+    kk = _candidates(k, m)
+    part = np.argpartition(-values, kk - 1, axis=-1)[:, :kk] if kk < m else np.tile(np.arange(m), (B, 1))
+    order = np.lexsort((part, -np.take_along_axis(values, part, -1)), axis=-1)
+    cand = np.take_along_axis(part, order, -1)                          # (B, kk), best first
+    X = pools[np.arange(B)[:, None], cand]                              # (B, kk, d)
+    chosen = np.repeat(cand[:, :1], k, axis=1)
+    taken = np.full((B, k) + X.shape[2:], np.inf)
+    taken[:, 0] = X[:, 0]
+    count = np.ones(B, dtype=int)
+    for j in range(1, kk):
+        far = (np.abs(X[:, j, None, :] - taken).max(-1) > min_dist).all(-1)
+        ok = far & (count < k)
+        chosen[ok, count[ok]] = cand[ok, j]
+        taken[ok, count[ok]] = X[ok, j]
+        count[ok] += 1
+    return chosen

@@ -17,24 +17,33 @@ class RandomSearch(Policy):
     """Uniformly random inputs: the baseline every adaptive rule must beat."""
 
     rule = "random"
+    lockstep = True
 
     def choose(self, post, t):
         return self.ctx.rng.random(self.ctx.pool.shape[1])
+
+    def choose_block(self, st, t, block):
+        return np.stack([rng.random(st.pools.shape[2]) for rng in block.rngs])
 
 
 class SobolSearch(Policy):
     """Non-adaptive space filling: continues the replicate's scrambled Sobol' sequence."""
 
     rule = "sobol"
+    lockstep = True
 
     def choose(self, post, t):
         return self.ctx.sequence[t]
+
+    def choose_block(self, st, t, block):
+        return block.sequences[:, t]
 
 
 class PosteriorMean(Acquisition):
     """Pure exploitation: the input with the lowest posterior mean."""
 
     rule = "mean"
+    lockstep = True
 
     def _from_moments(self, mu, sd):
         return -mu, -np.ones_like(mu), np.zeros_like(sd)
@@ -51,6 +60,7 @@ class ConfidenceBound(Acquisition):
     """
 
     rule = "lcb"
+    lockstep = True
     options = {"width": Option(2.0, float, 0.0, 100.0, "multiple of the posterior sd")}
 
     def _from_moments(self, mu, sd):
@@ -62,10 +72,17 @@ class _Improvement(Acquisition):
     recommendation), which unlike the lowest observation is not biased down by noise."""
 
     options = {"margin": Option(0.0, float, 0.0, None, "improvement margin xi, objective units")}
+    lockstep = True
 
     def prepare(self, post):
         # before any observation, improvement is measured from the prior mean
         self.best = float(np.min(post.mean_at_data())) if post.n else post.mean
+
+    def prepare_block(self, st):
+        if st.n:
+            self.best = np.min(st.means_at_data(), axis=-1, keepdims=True)
+        else:
+            self.best = np.full((st.size, 1), st.mean)
 
 
 class ProbabilityOfImprovement(_Improvement):
@@ -111,6 +128,51 @@ class ExpectedImprovement(_Improvement):
 
     def _value(self, mu, sd):
         return np.log(sd) + log_h((self.best - self.margin - mu) / sd)
+
+    def _pool_values(self, mu, sd, k):
+        """log EI where it can be among the k best of a row, -inf where it provably cannot.
+
+        Notes
+        -----
+        ``h(z) = phi(z) + z Phi(z)`` has the cheap upper bound ``phi(z) / (1 + z^2)`` for
+        z < 0 (from the Mills-ratio bound ``R(t) > t / (t^2 + 1)``, Gordon 1941, Ann. Math.
+        Statist. 12) and ``phi(z) + z`` for z >= 0 (``Phi <= 1``). The bound costs a few
+        array passes where ``log h`` costs tens of nanoseconds a point, so log EI is
+        computed exactly only at the k points of each row with the largest bound and then at
+        every point whose bound reaches the k-th best exact value found: no point outside
+        can be among the k best. Typically that is a few dozen of thousands.
+        """
+        t = self.best - self.margin - mu
+        z = t / sd
+        bound = np.multiply(z, z)
+        bound *= -0.5
+        np.maximum(bound, -600.0, out=bound)   # a larger bound where it is negligible; no subnormals
+        np.exp(bound, out=bound)
+        bound *= sd
+        bound *= 1.0 / np.sqrt(2.0 * np.pi)
+        np.minimum(z, 0.0, out=z)
+        np.multiply(z, z, out=z)
+        z += 1.0
+        bound /= z
+        np.maximum(t, 0.0, out=t)
+        bound += t
+        rows = np.arange(mu.shape[0])[:, None]
+        if k == 1:
+            first = np.argmax(bound, axis=-1)[:, None]
+        elif k < bound.shape[-1]:
+            first = np.argpartition(-bound, k - 1, axis=-1)[:, :k]
+        else:
+            return self._value(mu, sd)
+        exact = self._value(mu[rows, first], sd[rows, first])
+        # Each row's k best have log EI >= the least of these k exact values, so their bound
+        # reaches its exponential (less a margin for rounding in the bound).
+        with np.errstate(under="ignore"):
+            keep = bound >= np.exp(exact.min(-1, keepdims=True)) * (1.0 - 1e-9)
+        keep[rows, first] = True
+        values = np.full(mu.shape, -np.inf)
+        best = np.broadcast_to(self.best, mu.shape)[keep]
+        values[keep] = np.log(sd[keep]) + log_h((best - self.margin - mu[keep]) / sd[keep])
+        return values
 
     def _from_moments(self, mu, sd):
         z = (self.best - self.margin - mu) / sd

@@ -1,0 +1,86 @@
+"""Lockstep replicates: one policy's campaigns on a block of replicates, advanced together.
+
+The one-screen loop, for a block of B replicates sharing a policy and a budget::
+
+    for each trial t:
+        choose   xs (B, d)   initial design, or policy.choose_block(stack, t, block)
+        evaluate f  (B,)     every replicate's own world at its own input
+        observe  y  (B,)     the replicate's shared noise draw for trial t
+        update   stack.add(xs, y)      one row of every factor, one product per block
+        record   argmin of the posterior mean at the data, per replicate
+
+Python's overhead (a few hundred function calls per trial) is paid once per block rather
+than once per campaign. Every operation works slice by slice (``simlab.gp.matvec`` and
+friends), so each campaign's trace has the same bits as :func:`simlab.campaign.run_campaign`
+gives it alone; ``tests/unit/test_lockstep.py`` compares them.
+
+Campaigns run in lockstep when the rule declares ``lockstep = True`` and every campaign of
+the block stays the same length at every step: one trial per round, no lost trials and no
+belief refits. Other campaigns are replayed one at a time.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .campaign import Belief, Trace
+from .gp import Stack
+from .noise import Observer
+from .policies import Policy
+from .policies.base import Block
+from .worlds import WorldBlock
+
+__all__ = ["run_block", "fits_lockstep"]
+
+
+def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float) -> bool:
+    """Whether campaigns of this policy can advance in lockstep."""
+    return policy.lockstep and batch == 1 and belief.refit_every == 0 and lost == 0.0
+
+
+def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budget: int, rngs,
+              history: tuple[np.ndarray, np.ndarray] | None = None) -> list[Trace]:
+    """Replay one policy on a block of replicates in lockstep.
+
+    Parameters
+    ----------
+    policy : Policy
+        A fresh policy whose class sets ``lockstep = True``.
+    reps : list of simlab.runner.Replicate
+        The block's replicates (world, design, Sobol' sequence, noise draws, pool).
+    observer : Observer
+        The study's observation model.
+    budget : int
+        New trials in each campaign.
+    rngs : list of numpy.random.Generator
+        Each replicate's own stream for this policy.
+    history : (ndarray (h, d), ndarray (h,)), optional
+        Past trials shared by every replicate (first in every trace).
+
+    Returns
+    -------
+    list of Trace
+        One per replicate, identical to what ``run_campaign`` returns for it.
+    """
+    B, d = len(reps), reps[0].pool.shape[1]
+    H, yH = history if history is not None else (np.empty((0, d)), np.empty(0))
+    h, n = len(yH), len(yH) + budget
+    st = Stack(belief.kernel, belief.mean, belief.noise, pools=np.stack([r.pool for r in reps]),
+               capacity=n + 1)
+    block = Block(rngs=list(rngs), sequences=np.stack([r.sequence for r in reps]), horizon=budget)
+    design = np.stack([r.design for r in reps])
+    worlds = WorldBlock([r.world for r in reps])
+    U, y, f, rec = np.empty((B, n, d)), np.empty((B, n)), np.empty((B, n)), np.empty((B, n), dtype=int)
+    for i in range(h):                                        # past trials, already observed
+        U[:, i], y[:, i] = H[i], yH[i]
+        f[:, i] = worlds(U[:, i])
+        st.add(U[:, i], y[:, i])
+        rec[:, i] = np.argmin(st.means_at_data(), axis=-1)
+    for t in range(budget):
+        i = h + t
+        U[:, i] = design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block)   # choose
+        f[:, i] = worlds(U[:, i])                                                              # evaluate
+        y[:, i] = [observer(f[b, i], rep.shocks[t], rep.lost[t]) for b, rep in enumerate(reps)]  # observe
+        st.add(U[:, i], y[:, i])                                                               # update
+        rec[:, i] = np.argmin(st.means_at_data(), axis=-1)                                     # record
+    return [Trace(U=U[b], y=y[b], f=f[b], rec=rec[b]) for b in range(B)]

@@ -1,0 +1,201 @@
+"""Lockstep replicates: a block of campaigns gives the bits of each campaign replayed alone.
+
+The reference is the one-at-a-time path (``replay(..., lockstep=False)``: every campaign
+through ``run_campaign``). Equality is exact (``check_exact=True``, ``np.array_equal``),
+and each comparison has a negative control showing it would see a one-ulp change.
+"""
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import simlab.gp
+from simlab.campaign import Belief
+from simlab.gp import Posterior, Stack, matvec, rowdot, vecmat
+from simlab.kernels import KERNELS, Matern52
+from simlab.lockstep import fits_lockstep
+from simlab.policies import POLICIES
+from simlab.runner import replay
+from simlab.spec import parse_study
+from simlab.worlds import ConditionedWorld, FeatureWorld, GridWorld, WorldBlock
+
+
+def study(**over):
+    data = {
+        "study": {"name": "lockstep", "goal": "minimize", "replicates": 7, "seed": 11},
+        "space": {"speed": [1.0, 5.0], "gap": [0.1, 0.9]},
+        "world": {"kernel": "matern52", "lengthscale": [1.2, 0.25], "amplitude": 1.0, "mean": 3.0,
+                  "noise": 0.05},
+        "campaign": {"initial": 3, "budgets": [6, 10], "pool": 128},
+        "target": {"regret": 0.2},
+        "policy": [{"rule": "ei"}, {"rule": "pi", "margin": 0.01}, {"rule": "lcb", "width": 1.5},
+                   {"rule": "mean"}, {"rule": "random"}, {"rule": "sobol"},
+                   {"rule": "ei", "label": "ei then exploit", "exploit_last": 2}],
+    }
+    for key, value in over.items():
+        data[key] = {**data[key], **value} if isinstance(value, dict) else value
+    return parse_study(data, source="test")
+
+
+# ---------------------------------------------------------------- stacked arithmetic
+@pytest.mark.parametrize("n", [1, 7, 8, 9, 33])
+def test_stacked_products_do_not_depend_on_the_block(n):
+    """common practice (NumPy: matmul loops BLAS per stacked slice; last-axis sums reduce each
+    row alone): each slice of a stacked product equals the product of that slice alone."""
+    rng = np.random.default_rng(n)
+    B, cap, m = 9, 40, 300
+    A = rng.standard_normal((B, cap, cap))[:, :n, :n]
+    V = rng.standard_normal((B, cap, m))[:, :n]
+    v = rng.standard_normal((B, n))
+    together = (matvec(A, v), vecmat(v, V), rowdot(v, v), (V * V).sum(-1))
+    for b in range(B):
+        alone = (matvec(A[b : b + 1].copy(), v[b : b + 1]), vecmat(v[b : b + 1], V[b : b + 1].copy()),
+                 rowdot(v[b : b + 1], v[b : b + 1]), (V[b : b + 1] * V[b : b + 1]).sum(-1))
+        for x, y in zip(together, alone):
+            assert np.array_equal(x[b : b + 1], y)
+    # negative control: another summation order changes the last bits somewhere
+    reordered = (V[:, ::-1] * V[:, ::-1]).sum(-1) if n > 2 else None
+    if reordered is not None:
+        assert not np.array_equal(reordered, together[3])
+
+
+def _data(rng, B, n, d):
+    return rng.random((B, n, d)), rng.standard_normal((B, n))
+
+
+@pytest.mark.parametrize("name", sorted(KERNELS))
+def test_stack_slices_equal_posteriors(name):
+    """Each replicate of a Stack has the bits of a Posterior given the same data."""
+    rng = np.random.default_rng(3)
+    B, n, m, d = 5, 12, 64, 2
+    kernel = KERNELS[name]([0.3, 0.5], 1.4)
+    pools = rng.random((B, m, d))
+    X, y = _data(rng, B, n, d)
+    st = Stack(kernel, 0.2, 0.1, pools=pools, capacity=4)       # small capacity: buffers grow
+    for i in range(n):
+        st.add(X[:, i], y[:, i])
+    U = rng.random((B, 3, d))
+    mu, sd, dmu, dsd = st.stacked_moments(U, grad=True)
+    pmu, psd = st.stacked_pool_moments()
+    md = st.means_at_data()
+    for b in range(B):
+        post = Posterior(kernel, 0.2, 0.1, pool=pools[b], capacity=4)
+        for i in range(n):
+            post.add(X[b, i], y[b, i])
+        for got, want in zip(post.moments(U[b], grad=True), (mu[b], sd[b], dmu[b], dsd[b])):
+            assert np.array_equal(got, want)
+        assert np.array_equal(post.pool_moments()[0], pmu[b])
+        assert np.array_equal(post.pool_moments()[1], psd[b])
+        assert np.array_equal(post.mean_at_data(), md[b])
+
+
+def test_stack_moments_match_a_dense_solve():
+    """Rasmussen & Williams (2006), eqs. 2.25-2.26, by np.linalg.solve on the full Gram matrix."""
+    rng = np.random.default_rng(4)
+    B, n, m, d = 4, 15, 50, 3
+    kernel = Matern52([0.4, 0.6, 0.5], 2.0)
+    pools = rng.random((B, m, d))
+    X, y = _data(rng, B, n, d)
+    st = Stack(kernel, -1.0, 0.2, pools=pools)
+    for i in range(n):
+        st.add(X[:, i], y[:, i])
+    mu, sd = st.stacked_pool_moments()
+    for b in range(B):
+        K = kernel(X[b]) + st.s2[b] * np.eye(n)
+        Ks = kernel(pools[b], X[b])
+        want_mu = -1.0 + Ks @ np.linalg.solve(K, y[b] + 1.0)
+        want_var = kernel.variance - np.einsum("ij,ji->i", Ks, np.linalg.solve(K, Ks.T))
+        assert np.allclose(mu[b], want_mu, rtol=0, atol=1e-10)
+        assert np.allclose(sd[b] ** 2, want_var, rtol=0, atol=1e-10)
+
+
+def test_repeated_input_raises_jitter_for_that_replicate_only(monkeypatch):
+    """Without the nugget a noise-free repeat makes one replicate's Gram matrix singular:
+    that replicate alone is refactored with jitter, and it equals a Posterior doing the same."""
+    monkeypatch.setattr(simlab.gp, "NUGGET", 0.0)
+    rng = np.random.default_rng(5)
+    kernel = Matern52([0.3], 1.0)
+    st = Stack(kernel, 0.0, 0.0, pools=rng.random((3, 20, 1)))
+    x = rng.random((3, 1))
+    st.add(x, np.zeros(3))
+    again = x.copy()
+    again[[0, 2]] = rng.random((2, 1))                  # replicate 1 repeats its input exactly
+    with pytest.warns(RuntimeWarning, match="jitter"):
+        st.add(again, np.zeros(3))
+    assert st.jitter[1] > 0 and st.jitter[0] == 0 and st.jitter[2] == 0
+    for b in range(3):
+        post = Posterior(kernel, 0.0, 0.0, pool=st.pools[b])
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            post.add(x[b], 0.0)
+            post.add(again[b], 0.0)
+        assert post.jitter == st.jitter[b]
+        assert np.array_equal(post.pool_moments()[1], st.stacked_pool_moments()[1][b])
+
+
+# ---------------------------------------------------------------- worlds
+def test_world_block_values_equal_each_world_alone():
+    kernel = Matern52([0.2, 0.3], 1.3)
+    worlds = [FeatureWorld(kernel, 0.5, np.random.default_rng(i)) for i in range(9)]
+    xs = np.random.default_rng(9).random((9, 2))
+    block = WorldBlock(worlds)
+    assert block.stacked
+    alone = np.array([w(x[None])[0] for w, x in zip(worlds, xs)])
+    assert np.array_equal(block(xs), alone)
+    assert np.array_equal(WorldBlock(worlds[:4])(xs[:4]), alone[:4])
+    assert not np.array_equal(block(xs + 1e-15), alone)             # negative control
+
+
+def test_world_block_mixed_kinds_fall_back_to_one_at_a_time():
+    kernel = Matern52([0.3], 1.0)
+    rng = np.random.default_rng(2)
+    base = FeatureWorld(kernel, 0.0, rng)
+    worlds = [GridWorld(kernel, 0.0, rng, 64), ConditionedWorld(base, kernel, [[0.5]], [1.0], 0.1, rng), base]
+    block = WorldBlock(worlds)
+    xs = rng.random((3, 1))
+    assert not block.stacked
+    assert np.array_equal(block(xs), np.array([w(x[None])[0] for w, x in zip(worlds, xs)]))
+
+
+# ---------------------------------------------------------------- whole studies
+@pytest.fixture(scope="module")
+def alone():
+    return replay(study(), lockstep=False, chunk=7)
+
+
+@pytest.mark.parametrize("chunk", [1, 3, 7])
+def test_traces_are_bit_identical_to_one_at_a_time(alone, chunk):
+    together = replay(study(), lockstep=True, chunk=chunk)
+    pd.testing.assert_frame_equal(together, alone, check_exact=True)
+
+
+def test_negative_control_one_ulp_is_seen(alone):
+    """The exact comparison above sees a change in the last bit of one value."""
+    changed = alone.copy()
+    changed.loc[5, "y"] = np.nextafter(changed.loc[5, "y"], np.inf)
+    with pytest.raises(AssertionError):
+        pd.testing.assert_frame_equal(changed, alone, check_exact=True)
+
+
+@pytest.mark.parametrize("over", [
+    {"world": {"noise_kind": "student", "noise_df": 4.0, "noise_growth": 0.3}},
+    {"world": {"kernel": "matern32", "method": "grid", "grid": 16}},
+    {"campaign": {"initial": 2, "budgets": [5], "design": "lhs", "pool": 64}},
+])
+def test_identity_holds_for_other_worlds_and_designs(over):
+    s = study(**over)
+    pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=4), replay(s, lockstep=False, chunk=4),
+                                  check_exact=True)
+
+
+def test_only_campaigns_of_equal_length_run_in_lockstep():
+    belief = Belief(Matern52([0.3], 1.0), 0.0, 0.1)
+    ei, ts = POLICIES["ei"](), POLICIES["thompson"]()
+    assert fits_lockstep(ei, belief, batch=1, lost=0.0)
+    assert not fits_lockstep(ts, belief, batch=1, lost=0.0)          # needs its own samples
+    assert not fits_lockstep(ei, belief, batch=2, lost=0.0)          # rounds fantasise
+    assert not fits_lockstep(ei, belief, batch=1, lost=0.1)          # ragged beliefs
+    refit = Belief(belief.kernel, 0.0, 0.1, refit_every=5)
+    assert not fits_lockstep(ei, refit, batch=1, lost=0.0)
