@@ -40,6 +40,43 @@ def rowdot(a, b):
     return np.matmul(a[..., None, :], b[..., :, None])[..., 0, 0]
 
 
+def _touched(shape) -> np.ndarray:
+    """A zero array whose memory is written now, in order.
+
+    ``np.zeros`` maps pages lazily (and may back them with huge pages); the pool cross
+    term is then written one row per trial per replicate, each row in another page, and a
+    first touch maps and zeroes a whole page: tens of microseconds per replicate and trial
+    measured on the development machine. Writing the buffer once, in order, is cheaper.
+    """
+    out = np.empty(shape)
+    out.fill(0.0)
+    return out
+
+
+_SPARES: list[np.ndarray] = []   # flat buffers of released stacks, reused by the next ones
+_MAX_SPARES = 2
+
+
+def _cross_buffer(shape) -> np.ndarray:
+    """A buffer for the pool cross term: a released stack's when one is large enough, so a
+    worker replaying chunk after chunk maps its memory once. Rows are always written
+    before they are read, so old contents never matter."""
+    size = int(np.prod(shape))
+    for i, flat in enumerate(_SPARES):
+        if flat.size >= size:
+            return _SPARES.pop(i)[:size].reshape(shape)
+    return _touched(shape)
+
+
+def _release(buffer: np.ndarray) -> None:
+    flat = buffer.base if buffer.base is not None else buffer
+    if flat.ndim != 1:
+        flat = flat.reshape(-1)
+    _SPARES.append(flat)
+    _SPARES.sort(key=lambda a: -a.size)
+    del _SPARES[_MAX_SPARES:]
+
+
 class Stack:
     """The beliefs of B replicates after n trials each, kept in factored form.
 
@@ -91,11 +128,12 @@ class Stack:
         self._L = np.zeros((B, self._cap, self._cap))
         self._Li = np.zeros((B, self._cap, self._cap))
         self._z = np.zeros((B, self._cap))
-        self._V = np.zeros((B, self._cap, m))
+        self._V = _cross_buffer((B, self._cap, m))
         self._pool_mu = np.full((B, m), self.mean)
         self._pool_vsq = np.zeros((B, m))
         self.version = 0    # bumped by refit(): policies caching kernel-derived state compare it
         self.n = 0
+        self._scaled_for = None
 
     @property
     def s2(self):
@@ -115,9 +153,9 @@ class Stack:
         if need <= self._cap:
             return
         cap, n = max(need, 2 * self._cap), self.n
-        for name in ("_X", "_V"):
+        for name, make in (("_X", np.zeros), ("_V", _cross_buffer)):
             old = getattr(self, name)
-            new = np.zeros((old.shape[0], cap, old.shape[2]))
+            new = make((old.shape[0], cap, old.shape[2]))
             new[:, :n] = old[:, :n]
             setattr(self, name, new)
         for name in ("_y", "_z"):
@@ -152,14 +190,39 @@ class Stack:
         zn = (ys - self.mean - rowdot(l, self._z[:, :n])) / dd
         self._z[:, n] = zn
         if self.pools.shape[1]:
-            kp = self.kernel.stacked(xs[:, None, :], self.pools)[:, 0, :]        # (B, m)
-            row = (kp - vecmat(l, self._V[:, :n])) / dd[:, None]
+            row = self._pool_row(xs)                                           # (B, m)
+            row -= vecmat(l, self._V[:, :n])
+            row *= (1.0 / dd)[:, None]
             self._V[:, n] = row
             self._pool_mu += row * zn[:, None]
-            self._pool_vsq += row * row
+            row *= row
+            self._pool_vsq += row
         self.n += 1
         for b in np.flatnonzero(bad):
             self._refactor(b, escalate=True)
+
+    def release(self) -> None:
+        """Hand the pool cross term's memory to the next Stack (this one is then unusable)."""
+        _release(self._V)
+        self._V = None
+
+    def _pool_row(self, xs) -> np.ndarray:
+        """``k(x_b, pool_b)`` for every replicate, (B, m): the same values as
+        ``kernel.stacked`` with the pools' scaled coordinates cached and passes done in place
+        (this is the costliest step of a lockstep trial after the pool scores)."""
+        kernel = self.kernel
+        if self._scaled_for is not kernel:
+            self._scaled = [np.ascontiguousarray(self.pools[..., j] / lj) for j, lj in enumerate(kernel.lengthscale)]
+            self._scaled_for = kernel
+        sq = None
+        for j, (P, lj) in enumerate(zip(self._scaled, kernel.lengthscale)):
+            diff = np.subtract((xs[:, j] / lj)[:, None], P)
+            diff *= diff
+            if sq is None:
+                sq = diff
+            else:
+                sq += diff
+        return kernel.cov_from_sq(sq)
 
     def _refactor(self, b: int, *, escalate: bool) -> None:
         """Factor replicate b from scratch, raising its jitter tenfold until the Cholesky succeeds."""
@@ -222,9 +285,13 @@ class Stack:
 
     # ------------------------------------------------------------------ queries
     def stacked_pool_moments(self) -> tuple[np.ndarray, np.ndarray]:
-        """Posterior mean and standard deviation over the pools, each of shape (B, m)."""
-        var = np.maximum(self.kernel.variance - self._pool_vsq, 0.0)
-        return self._pool_mu.copy(), np.sqrt(var)
+        """Posterior mean and standard deviation over the pools, each of shape (B, m).
+
+        The mean is the running sum itself (read-only for callers: no copy in the hot loop).
+        """
+        sd = np.subtract(self.kernel.variance, self._pool_vsq)
+        np.maximum(sd, 0.0, out=sd)
+        return self._pool_mu, np.sqrt(sd, out=sd)
 
     def alphas(self) -> np.ndarray:
         """``(K + s2 I)^-1 (y - m)`` per replicate, shape (B, n)."""
@@ -342,7 +409,7 @@ class Posterior(Stack):
     def pool_moments(self) -> tuple[np.ndarray, np.ndarray]:
         """Posterior mean and standard deviation over the pool, each of shape (m,)."""
         mu, sd = self.stacked_pool_moments()
-        return mu[0], sd[0]
+        return mu[0].copy(), sd[0]
 
     def alpha(self) -> np.ndarray:
         """``(K + s2 I)^-1 (y - m)``, shape (n,)."""

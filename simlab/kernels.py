@@ -109,6 +109,16 @@ class Kernel:
         r = np.sqrt(self._stacked_sq(A, C))
         return self.variance * self._rho(r)
 
+    def cov_from_sq(self, sq) -> np.ndarray:
+        """``k`` from squared scaled distances, computed in place in ``sq`` (which is returned).
+
+        The hot loop of lockstep replicates spends much of its time on these passes over
+        the pool, so kernels override this with a version that allocates at most one
+        temporary; the values equal ``variance * rho(sqrt(sq))`` up to rounding.
+        """
+        sq[...] = self.variance * self._rho(np.sqrt(sq))
+        return sq
+
     def stacked_grad(self, A, C) -> tuple[np.ndarray, list[np.ndarray]]:
         """Covariances (..., p, q) and their gradients in A, one (..., p, q) array per input."""
         diffs = self._stacked_diffs(A, C)
@@ -158,6 +168,12 @@ class SquaredExponential(Kernel):
     def _drho_over_r(self, r):
         return -np.exp(-0.5 * r * r)
 
+    def cov_from_sq(self, sq):
+        sq *= -0.5
+        np.exp(sq, out=sq)
+        sq *= self.variance
+        return sq
+
     def _spectral_scale(self, rng, n):
         return np.ones(n)
 
@@ -185,6 +201,13 @@ class Matern12(_Matern):
             out = -np.exp(-r) / r
         return np.where(r > 0, out, 0.0)
 
+    def cov_from_sq(self, sq):
+        np.sqrt(sq, out=sq)
+        np.negative(sq, out=sq)
+        np.exp(sq, out=sq)
+        sq *= self.variance
+        return sq
+
 
 class Matern32(_Matern):
     """rho(r) = (1 + sqrt3 r) exp(-sqrt3 r)."""
@@ -198,6 +221,16 @@ class Matern32(_Matern):
     def _drho_over_r(self, r):
         return -3.0 * np.exp(-_S3 * r)
 
+    def cov_from_sq(self, sq):
+        s = np.sqrt(sq, out=sq)
+        s *= _S3
+        e = np.negative(s)
+        np.exp(e, out=e)
+        s += 1.0
+        s *= e
+        s *= self.variance
+        return s
+
 
 class Matern52(_Matern):
     """rho(r) = (1 + sqrt5 r + 5 r^2 / 3) exp(-sqrt5 r)."""
@@ -210,6 +243,21 @@ class Matern52(_Matern):
 
     def _drho_over_r(self, r):
         return -(5.0 / 3.0) * (1.0 + _S5 * r) * np.exp(-_S5 * r)
+
+    def cov_from_sq(self, sq):
+        # variance * (1 + s + s^2 / 3) exp(-s) with s = sqrt5 r, as ((v/3 s + v) s + v) e
+        v = self.variance
+        s = np.sqrt(sq, out=sq)
+        s *= _S5
+        e = np.negative(s)
+        np.exp(e, out=e)
+        e *= v
+        p = s * (1.0 / 3.0)
+        p += 1.0
+        p *= s
+        p += 1.0
+        p *= e
+        return p
 
 
 KERNELS: dict[str, type[Kernel]] = {k.name: k for k in (SquaredExponential, Matern12, Matern32, Matern52)}

@@ -69,18 +69,22 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
                capacity=n + 1)
     block = Block(rngs=list(rngs), sequences=np.stack([r.sequence for r in reps]), horizon=budget)
     design = np.stack([r.design for r in reps])
+    shocks, lost = np.stack([r.shocks for r in reps]), np.stack([r.lost for r in reps])
     worlds = WorldBlock([r.world for r in reps])
     U, y, f, rec = np.empty((B, n, d)), np.empty((B, n)), np.empty((B, n)), np.empty((B, n), dtype=int)
-    for i in range(h):                                        # past trials, already observed
-        U[:, i], y[:, i] = H[i], yH[i]
-        f[:, i] = worlds(U[:, i])
-        st.add(U[:, i], y[:, i])
-        rec[:, i] = np.argmin(st.means_at_data(), axis=-1)
-    for t in range(budget):
-        i = h + t
-        U[:, i] = design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block)   # choose
-        f[:, i] = worlds(U[:, i])                                                              # evaluate
-        y[:, i] = [observer(f[b, i], rep.shocks[t], rep.lost[t]) for b, rep in enumerate(reps)]  # observe
-        st.add(U[:, i], y[:, i])                                                               # update
-        rec[:, i] = np.argmin(st.means_at_data(), axis=-1)                                     # record
+    try:
+        for i in range(h):                                        # past trials, already observed
+            U[:, i], y[:, i] = H[i], yH[i]
+            f[:, i] = worlds(U[:, i])
+            st.add(U[:, i], y[:, i])
+            rec[:, i] = np.argmin(st.means_at_data(), axis=-1)
+        for t in range(budget):
+            i = h + t
+            U[:, i] = design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block)   # choose
+            f[:, i] = worlds(U[:, i])                                                              # evaluate
+            y[:, i] = observer.many(f[:, i], shocks[:, t], lost[:, t])                            # observe
+            st.add(U[:, i], y[:, i])                                                               # update
+            rec[:, i] = np.argmin(st.means_at_data(), axis=-1)                                     # record
+    finally:
+        st.release()
     return [Trace(U=U[b], y=y[b], f=f[b], rec=rec[b]) for b in range(B)]

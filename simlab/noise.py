@@ -64,4 +64,10 @@ class Observer:
         """The observation (internal orientation), NaN when the trial is lost."""
         if lost:
             return float("nan")
-        return float(f_internal + self.sd_at(f_internal) * shock)
+        return float(self.many(np.array([f_internal]), np.array([shock]), np.array([lost]))[0])
+
+    def many(self, f_internal, shocks, lost) -> np.ndarray:
+        """Observations of several trials at once (arrays of equal shape); the elementwise
+        arithmetic of one trial, so a block of replicates observes what each would alone."""
+        f_internal = np.asarray(f_internal, dtype=float)
+        return np.where(lost, np.nan, f_internal + self.sd_at(f_internal) * shocks)
