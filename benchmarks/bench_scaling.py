@@ -7,9 +7,10 @@ Run by hand (not part of the test suite):
     python benchmarks/bench_scaling.py --only workers
     python benchmarks/bench_scaling.py --only memory
 
-trials   per-trial cost of one EI campaign (2-D, pool 2048) at 25, 50, 100 and 200 trials,
-         medians of 3 campaigns each, and the exponent of a power-law fit of cost per trial
-         against trials (0 = constant per trial, i.e. linear total; 2 = cubic total).
+trials   per-trial cost of EI campaigns (2-D, pool 2048) at 25, 50, 100 and 200 trials, one
+         at a time and in lockstep blocks of 16, medians of 3, and the exponent of a power-law
+         fit of cost per trial against trials (0 = constant per trial, i.e. linear total;
+         2 = cubic total).
 workers  configs/demo.toml with 40 replicates at --jobs 1 and --jobs 2, side by side, twice
          each in alternation; prints the median speed-up.
 memory   a 10,000-replicate study (1-D, short campaigns) run in a child process with traces
@@ -39,32 +40,47 @@ def bench_trials() -> None:
 
     from simlab.campaign import Belief, run_campaign
     from simlab.kernels import Matern52
+    from simlab.lockstep import run_block
+    from simlab.noise import Observer
     from simlab.policies import ExpectedImprovement
+    from simlab.runner import Replicate
     from simlab.worlds import FeatureWorld
 
     kernel = Matern52([0.2, 0.2], 1.0)
     belief = Belief(kernel, 0.0, 0.1)
-    sizes, costs = (25, 50, 100, 200), []
+    sizes, block = (25, 50, 100, 200), 16
+    costs: dict[str, list[float]] = {"one at a time": [], f"lockstep, blocks of {block}": []}
     with threadpool_limits(1):
         for n in sizes:
-            times = []
-            for rep in range(3):
-                rng = np.random.default_rng(rep)
-                world = FeatureWorld(kernel, 0.0, rng)
+            reps = []
+            for r in range(block):
+                rng = np.random.default_rng(r)
                 seq = qmc.Sobol(2, seed=rng).random_base2(int(np.ceil(np.log2(n))))[:n]
-                pool = qmc.Sobol(2, seed=rng).random_base2(11)
-                shocks = rng.standard_normal(n)
+                reps.append(Replicate(index=r, world=FeatureWorld(kernel, 0.0, rng), optimum=(np.zeros(2), 0.0),
+                                      design=seq[:5], sequence=seq, shocks=rng.standard_normal(n),
+                                      lost=np.zeros(n, bool), pool=qmc.Sobol(2, seed=rng).random_base2(11)))
+            times = []
+            for rep in reps[:3]:
                 t0 = time.perf_counter()
-                run_campaign(ExpectedImprovement("ei"), belief, world, design=seq[:5], sequence=seq,
-                             observe=lambda f, t: f + 0.1 * shocks[t], budget=n, pool=pool, rng=rng)
+                run_campaign(ExpectedImprovement("ei"), belief, rep.world, design=rep.design, sequence=rep.sequence,
+                             observe=lambda f, t, s=rep.shocks: f + 0.1 * s[t], budget=n, pool=rep.pool,
+                             rng=np.random.default_rng(0))
                 times.append((time.perf_counter() - t0) / n)
-            costs.append(float(np.median(times)))
-    slope = np.polyfit(np.log(sizes), np.log(costs), 1)[0]
-    print("per-trial cost of one EI campaign (2-D, pool 2048, with polish), median of 3")
-    for n, c in zip(sizes, costs):
-        print(f"  {n:>4} trials: {1e3 * c:7.2f} ms per trial")
-    print(f"  fitted exponent of cost per trial against trials: {slope:.2f} "
-          f"(total cost grows as trials^{1 + slope:.2f})")
+            costs["one at a time"].append(float(np.median(times)))
+            times = []
+            for _ in range(3):
+                t0 = time.perf_counter()
+                run_block(ExpectedImprovement("ei"), belief, reps, observer=Observer(sd=0.1), budget=n,
+                          rngs=[np.random.default_rng(0)] * block)
+                times.append((time.perf_counter() - t0) / (n * block))
+            costs[f"lockstep, blocks of {block}"].append(float(np.median(times)))
+    print("per-trial cost of EI campaigns (2-D, pool 2048, with polish), medians of 3")
+    for name, values in costs.items():
+        slope = np.polyfit(np.log(sizes), np.log(values), 1)[0]
+        cells = ", ".join(f"{n} trials {1e3 * c:.2f} ms" for n, c in zip(sizes, values))
+        print(f"  {name}: {cells}")
+        print(f"    fitted exponent of cost per trial against trials: {slope:.2f} "
+              f"(total cost grows as trials^{1 + slope:.2f})")
 
 
 def _timed_run(args: list[str], cwd: str) -> float:

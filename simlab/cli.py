@@ -238,11 +238,11 @@ def _check(args) -> int:
           f"of {c.horizon} trials ({campaigns * c.horizon:,} trials; {c.initial} initial per campaign)")
     if not args.no_timing:
         from .runner import time_replicate
-        per = time_replicate(study, replicates=3)
+        per = time_replicate(study, replicates=6)
         workers = args.jobs if args.jobs > 0 else (__import__("os").cpu_count() or 1)
         total = per * study.replicates / workers
-        print(f"# timing: {per:.2f} s per replicate here (median of the first 3); the study needs "
-              f"about {_duration(total)} with --jobs {workers}")
+        print(f"# timing: {per:.2f} s per replicate here (the first {min(6, study.replicates)} replayed "
+              f"together); the study needs about {_duration(total)} with --jobs {workers}")
     return 0
 
 

@@ -54,7 +54,7 @@ def _touched(shape) -> np.ndarray:
 
 
 _SPARES: list[np.ndarray] = []   # flat buffers of released stacks, reused by the next ones
-_MAX_SPARES = 2
+_MAX_SPARES = 1
 
 
 def _cross_buffer(shape) -> np.ndarray:

@@ -249,23 +249,31 @@ def _replay_chunk(study: Study, replicates: list[int], lockstep: bool = True) ->
     return out
 
 
-def time_replicate(study: Study, *, replicates: int = 2) -> float:
-    """Median seconds per replicate over the first few replicates, run as a worker would."""
+def time_replicate(study: Study, *, replicates: int = 6) -> float:
+    """Seconds per replicate, timed on the first few replicates replayed as a worker would:
+    as one lockstep block (a whole chunk is usually larger, and a little faster per replicate)."""
     import time
 
-    times = []
-    for r in range(min(replicates, study.replicates)):
-        t0 = time.perf_counter()
-        _replay_chunk(study, [r])
-        times.append(time.perf_counter() - t0)
-    return float(np.median(times))
+    reps = chunk_plan(study)[0][:replicates]
+    t0 = time.perf_counter()
+    _replay_chunk(study, reps)
+    return (time.perf_counter() - t0) / len(reps)
 
 
 def chunk_plan(study: Study, chunk: int | None = None) -> list[list[int]]:
     """Replicates per task. The plan depends on the study alone (never on the number of
-    workers), so a resumed run cuts the work exactly as the interrupted one did."""
+    workers), so a resumed run cuts the work exactly as the interrupted one did.
+
+    A chunk is also a lockstep block. The default, an eighth of the replicates but at most
+    64, keeps at least 8 tasks for workers to share and blocks of up to 64 in large studies
+    (past that, blocks stop paying: benchmarks/bench_vs_sklearn.py), fewer when a block's
+    pool cross term (replicates x trials x pool points) would pass 128 MiB.
+    """
     R = study.replicates
-    size = chunk or max(1, min(25, -(-R // 64)))
+    c = study.campaign
+    history = study.history.size if study.history is not None else 0
+    per_replicate = 8 * (history + c.horizon + c.batch) * max(c.pool, 1)
+    size = chunk or max(1, min(64, -(-R // 8), (128 << 20) // per_replicate))
     return [list(range(s, min(s + size, R))) for s in range(0, R, size)]
 
 
