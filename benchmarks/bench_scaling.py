@@ -11,8 +11,8 @@ trials   per-trial cost of EI campaigns (2-D, pool 2048) at 25, 50, 100 and 200 
          at a time and in lockstep blocks of 16, medians of 3, and the exponent of a power-law
          fit of cost per trial against trials (0 = constant per trial, i.e. linear total;
          2 = cubic total).
-workers  configs/demo.toml with 40 replicates at --jobs 1 and --jobs 2, side by side, twice
-         each in alternation; prints the median speed-up.
+workers  configs/demo.toml (its 200 replicates unless --replicates) at --jobs 1 and --jobs 2,
+         side by side, --repeats times each in alternation; prints the median speed-up.
 memory   a 10,000-replicate study (1-D, short campaigns) run in a child process with traces
          streamed to disk in chunks; prints the child's peak resident memory.
 """
@@ -90,18 +90,18 @@ def _timed_run(args: list[str], cwd: str) -> float:
     return time.perf_counter() - t0
 
 
-def bench_workers() -> None:
+def bench_workers(replicates: int, repeats: int) -> None:
     with tempfile.TemporaryDirectory() as tmp:
         rows = {1: [], 2: []}
-        for rep in range(2):
+        for rep in range(repeats):
             for jobs in (1, 2):
                 out = Path(tmp) / f"j{jobs}-{rep}"
-                rows[jobs].append(_timed_run(["run", str(ROOT / "configs" / "demo.toml"), "--replicates", "40",
-                                              "--jobs", str(jobs), "--out", str(out), "--no-report", "--quiet"],
-                                             tmp))
+                rows[jobs].append(_timed_run(["run", str(ROOT / "configs" / "demo.toml"), "--replicates",
+                                              str(replicates), "--jobs", str(jobs), "--out", str(out),
+                                              "--no-report", "--quiet"], tmp))
     one, two = np.median(rows[1]), np.median(rows[2])
-    print(f"configs/demo.toml, 40 replicates, no report: --jobs 1 {one:.1f} s, --jobs 2 {two:.1f} s "
-          f"(medians of 2); speed-up {one / two:.2f}x")
+    print(f"configs/demo.toml, {replicates} replicates, no report: --jobs 1 {one:.1f} s, --jobs 2 {two:.1f} s "
+          f"(medians of {repeats}); speed-up {one / two:.2f}x")
 
 
 MEMORY_STUDY = """
@@ -154,12 +154,14 @@ def bench_memory(jobs: int = 2) -> None:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--only", choices=("trials", "workers", "memory"))
+    ap.add_argument("--replicates", type=int, default=200, help="replicates of the demo study for 'workers'")
+    ap.add_argument("--repeats", type=int, default=1, help="runs of each worker count for 'workers'")
     args = ap.parse_args()
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}")
     if args.only in (None, "trials"):
         bench_trials()
     if args.only in (None, "workers"):
-        bench_workers()
+        bench_workers(args.replicates, args.repeats)
     if args.only in (None, "memory"):
         bench_memory()
 

@@ -8,22 +8,23 @@ from scipy.stats import wilcoxon
 from simlab import load_study, run_study
 from simlab.runner import replay, replay_replicate
 from simlab.spec import parse_study
+from studies import study_with
+
+
+BASE = {
+    "study": {"name": "t", "goal": "maximize", "replicates": 4, "seed": 5},
+    "space": {"feed_rate": [0.5, 2.5], "temp": [28.0, 37.0]},
+    "world": {"kernel": "matern52", "lengthscale": [0.5, 2.0], "amplitude": 1.5, "mean": 10.0,
+              "noise": 0.1},
+    "campaign": {"initial": 4, "budgets": [6, 9], "pool": 256},
+    "target": {"regret": 0.2},
+    "policy": [{"rule": "ei"}, {"rule": "thompson", "features": 128}, {"rule": "random"},
+               {"rule": "sobol"}, {"rule": "lcb"}, {"rule": "pi"}, {"rule": "mean"}],
+}
 
 
 def study(**over):
-    data = {
-        "study": {"name": "t", "goal": "maximize", "replicates": 4, "seed": 5},
-        "space": {"feed_rate": [0.5, 2.5], "temp": [28.0, 37.0]},
-        "world": {"kernel": "matern52", "lengthscale": [0.5, 2.0], "amplitude": 1.5, "mean": 10.0,
-                  "noise": 0.1},
-        "campaign": {"initial": 4, "budgets": [6, 9], "pool": 256},
-        "target": {"regret": 0.2},
-        "policy": [{"rule": "ei"}, {"rule": "thompson", "features": 128}, {"rule": "random"},
-                   {"rule": "sobol"}, {"rule": "lcb"}, {"rule": "pi"}, {"rule": "mean"}],
-    }
-    for key, value in over.items():
-        data[key] = {**data[key], **value} if isinstance(value, dict) else value
-    return parse_study(data, source="test")
+    return study_with(BASE, "test", **over)
 
 
 @pytest.fixture(scope="module")

@@ -5,19 +5,19 @@ import pytest
 
 import simlab.gp
 from simlab.runner import replay
-from simlab.spec import parse_study
+from studies import study_with
+
+
+BASE = {"study": {"replicates": 2, "seed": 3},
+        "space": {"a": [0.0, 1.0], "b": [0.0, 1.0]},
+        "world": {"lengthscale": 0.3, "amplitude": 1.0, "noise": 0.0},
+        "campaign": {"initial": 3, "budgets": [10], "pool": 256},
+        "target": {"regret": 0.01},
+        "policy": [{"rule": "mean"}, {"rule": "ei"}, {"rule": "lcb"}, {"rule": "thompson", "features": 128}]}
 
 
 def _study(**over):
-    data = {"study": {"replicates": 2, "seed": 3},
-            "space": {"a": [0.0, 1.0], "b": [0.0, 1.0]},
-            "world": {"lengthscale": 0.3, "amplitude": 1.0, "noise": 0.0},
-            "campaign": {"initial": 3, "budgets": [10], "pool": 256},
-            "target": {"regret": 0.01},
-            "policy": [{"rule": "mean"}, {"rule": "ei"}, {"rule": "lcb"}, {"rule": "thompson", "features": 128}]}
-    for key, value in over.items():
-        data[key] = {**data[key], **value} if isinstance(value, dict) else value
-    return parse_study(data, source="edge")
+    return study_with(BASE, "edge", **over)
 
 
 def _sane(traces):

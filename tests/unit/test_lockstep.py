@@ -18,25 +18,25 @@ from simlab.kernels import KERNELS, Matern52
 from simlab.lockstep import fits_lockstep
 from simlab.policies import POLICIES
 from simlab.runner import replay
-from simlab.spec import parse_study
 from simlab.worlds import ConditionedWorld, FeatureWorld, GridWorld, WorldBlock
+from studies import study_with
+
+
+BASE = {
+    "study": {"name": "lockstep", "goal": "minimize", "replicates": 7, "seed": 11},
+    "space": {"speed": [1.0, 5.0], "gap": [0.1, 0.9]},
+    "world": {"kernel": "matern52", "lengthscale": [1.2, 0.25], "amplitude": 1.0, "mean": 3.0,
+              "noise": 0.05},
+    "campaign": {"initial": 3, "budgets": [6, 10], "pool": 128},
+    "target": {"regret": 0.2},
+    "policy": [{"rule": "ei"}, {"rule": "pi", "margin": 0.01}, {"rule": "lcb", "width": 1.5},
+               {"rule": "mean"}, {"rule": "random"}, {"rule": "sobol"},
+               {"rule": "ei", "label": "ei then exploit", "exploit_last": 2}],
+}
 
 
 def study(**over):
-    data = {
-        "study": {"name": "lockstep", "goal": "minimize", "replicates": 7, "seed": 11},
-        "space": {"speed": [1.0, 5.0], "gap": [0.1, 0.9]},
-        "world": {"kernel": "matern52", "lengthscale": [1.2, 0.25], "amplitude": 1.0, "mean": 3.0,
-                  "noise": 0.05},
-        "campaign": {"initial": 3, "budgets": [6, 10], "pool": 128},
-        "target": {"regret": 0.2},
-        "policy": [{"rule": "ei"}, {"rule": "pi", "margin": 0.01}, {"rule": "lcb", "width": 1.5},
-                   {"rule": "mean"}, {"rule": "random"}, {"rule": "sobol"},
-                   {"rule": "ei", "label": "ei then exploit", "exploit_last": 2}],
-    }
-    for key, value in over.items():
-        data[key] = {**data[key], **value} if isinstance(value, dict) else value
-    return parse_study(data, source="test")
+    return study_with(BASE, "test", **over)
 
 
 # ---------------------------------------------------------------- stacked arithmetic

@@ -10,24 +10,24 @@ from simlab import compare, metrics, plots
 from simlab.gp import Posterior
 from simlab.runner import make_belief, make_world, replay
 from simlab.snapshot import snapshot_figure
-from simlab.spec import parse_study
+from studies import study_with
 
 LABELS = ("EI", "Thompson", "Random")
 
 
+BASE = {
+    "study": {"name": "plots", "goal": "maximize", "replicates": 6, "seed": 11},
+    "space": {"feed_rate": [0.5, 2.5]},
+    "world": {"kernel": "matern52", "lengthscale": 0.4, "amplitude": 1.5, "mean": 10.0, "noise": 0.1},
+    "campaign": {"initial": 3, "budgets": [5, 8], "pool": 128},
+    "target": {"regret": 0.1},
+    "policy": [{"rule": "ei", "label": "EI"}, {"rule": "thompson", "features": 128, "label": "Thompson"},
+               {"rule": "random", "label": "Random"}],
+}
+
+
 def _study(**over):
-    data = {
-        "study": {"name": "plots", "goal": "maximize", "replicates": 6, "seed": 11},
-        "space": {"feed_rate": [0.5, 2.5]},
-        "world": {"kernel": "matern52", "lengthscale": 0.4, "amplitude": 1.5, "mean": 10.0, "noise": 0.1},
-        "campaign": {"initial": 3, "budgets": [5, 8], "pool": 128},
-        "target": {"regret": 0.1},
-        "policy": [{"rule": "ei", "label": "EI"}, {"rule": "thompson", "features": 128, "label": "Thompson"},
-                   {"rule": "random", "label": "Random"}],
-    }
-    for key, value in over.items():
-        data[key] = {**data[key], **value} if isinstance(value, dict) else value
-    return parse_study(data, source="test")
+    return study_with(BASE, "test", **over)
 
 
 @pytest.fixture(scope="module")
