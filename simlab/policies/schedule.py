@@ -56,9 +56,15 @@ class GPUCB(Acquisition):
 
     rule = "gp-ucb"
     options = {"delta": Option(0.1, float, 1e-12, 0.999, "failure probability of the confidence bound")}
+    lockstep = True
 
     def prepare(self, post):
         self.beta = float(gp_ucb_beta(post.n + 1, len(self.ctx.pool), self.delta))
+        self.width = np.sqrt(self.beta)
+
+    def prepare_block(self, st):
+        # every replicate of a block holds the same number of observations
+        self.beta = float(gp_ucb_beta(st.n + 1, st.pools.shape[1], self.delta))
         self.width = np.sqrt(self.beta)
 
     def _from_moments(self, mu, sd):

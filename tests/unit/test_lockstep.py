@@ -31,7 +31,7 @@ BASE = {
     "target": {"regret": 0.2},
     "policy": [{"rule": "ei"}, {"rule": "pi", "margin": 0.01}, {"rule": "lcb", "width": 1.5},
                {"rule": "mean"}, {"rule": "random"}, {"rule": "sobol"},
-               {"rule": "ei", "label": "ei then exploit", "exploit_last": 2}],
+               {"rule": "ei", "label": "ei then exploit", "exploit_last": 2}, {"rule": "gp-ucb"}],
 }
 
 
