@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"
 
 from .api import StudyResult, SweepResult, load_results, run_study, run_sweep_study  # noqa: E402
 from .spec import Study, StudyError, load_study  # noqa: E402

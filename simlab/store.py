@@ -186,6 +186,11 @@ class RunFolder:
         if not resume:
             raise FolderBusy(str(self.path), "", "holds an unfinished run of this study; add --resume to "
                              "continue it or --fresh to start over")
+        if manifest.get("simlab_version") != self.version:
+            # campaigns replayed by another version may differ in the last digits (or more):
+            # never mix them in one traces file
+            raise FolderBusy(str(self.path), "", f"holds an unfinished run made by simlab "
+                             f"{manifest.get('simlab_version')}, not {self.version}; use --fresh to start over")
         if manifest.get("chunks") != self.chunks:
             raise FolderBusy(str(self.path), "", "holds an unfinished run cut into different chunks "
                              "(another simlab version?); use --fresh to start over")

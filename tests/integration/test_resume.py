@@ -136,3 +136,18 @@ def test_cluster_backend_matches_local_run(tmp_path):
                                   dashboard_address=None) as cluster:
         remote = run_study(study, out=tmp_path / "c", cluster=cluster.scheduler_address).traces
     pd.testing.assert_frame_equal(local, remote)
+
+
+def test_an_unfinished_run_of_another_version_is_not_resumed(tmp_path):
+    """Chunks replayed by another simlab version could differ in their numbers; a resume
+    must not mix them into one traces file (common practice: refuse rather than guess)."""
+    import json
+
+    run_study(_small(), out=tmp_path / "out")
+    manifest = tmp_path / "out" / "manifest.json"
+    data = json.loads(manifest.read_text())
+    data.update(complete=False, simlab_version="0.0.1")
+    manifest.write_text(json.dumps(data))
+    with pytest.raises(FolderBusy, match="made by simlab 0.0.1.*--fresh"):
+        run_study(_small(), out=tmp_path / "out", resume=True)
+    assert run_study(_small(), out=tmp_path / "out", fresh=True).traces.shape[0] == 2 * 4 * 5
