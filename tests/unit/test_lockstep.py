@@ -182,6 +182,7 @@ def test_negative_control_one_ulp_is_seen(alone):
 @pytest.mark.parametrize("over", [
     {"world": {"noise_kind": "student", "noise_df": 4.0, "noise_growth": 0.3}},
     {"world": {"kernel": "matern32", "method": "grid", "grid": 16}},
+    {"world": {"lengthscale_within": 2.0, "amplitude_within": 1.5}},     # every world its own kernel
     {"campaign": {"initial": 2, "budgets": [5], "design": "lhs", "pool": 64}},
 ])
 def test_identity_holds_for_other_worlds_and_designs(over):
@@ -199,3 +200,16 @@ def test_only_campaigns_of_equal_length_run_in_lockstep():
     assert not fits_lockstep(ei, belief, batch=1, lost=0.1)          # ragged beliefs
     refit = Belief(belief.kernel, 0.0, 0.1, refit_every=5)
     assert not fits_lockstep(ei, refit, batch=1, lost=0.0)
+
+
+def test_identity_holds_with_past_trials():
+    """configs/fermentation-continue.toml: worlds conditioned on past runs, no initial design."""
+    import dataclasses
+    from pathlib import Path
+
+    from simlab.spec import load_study
+
+    s = load_study(Path(__file__).resolve().parents[2] / "configs" / "fermentation-continue.toml")
+    s = dataclasses.replace(s, replicates=5)
+    pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=5), replay(s, lockstep=False, chunk=5),
+                                  check_exact=True)
