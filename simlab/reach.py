@@ -1,4 +1,4 @@
-"""Trials-to-target: Kaplan-Meier curves of reaching the target, their quantiles and the budget plan."""
+"""The budget plan (from the within-target share) and first passage: Kaplan-Meier curves of first meeting the target."""
 
 __all__ = ["first_reach", "reach_curves", "trials_to_target_summary", "budget_plan"]
 
@@ -15,6 +15,9 @@ from .metrics import (  # shared validation and conventions of the statistics la
     _check_probability,
     _check_target,
     _check_traces,
+    _horizons,
+    _share_interval,
+    _within_curves,
 )
 
 _NOT_REACHED_PLAN = "not reached within the simulated budget"
@@ -61,8 +64,22 @@ def _first_reach(frame, target):
 
 
 def _km_by_policy(frame, target, confidence_level, method):
-    """Kaplan-Meier share reached by each trial, per policy (scipy.stats.ecdf)."""
+    """Kaplan-Meier share that first met the target by each trial, per policy (scipy.stats.ecdf).
+
+    The band at trial t: where no campaign was censored before t, the share is a plain
+    binomial share of the n campaigns (first passage <= t), and the band is its
+    Clopper-Pearson exact interval (`simlab.metrics._share_interval`), whose coverage
+    is at least the nominal level for every true share; every simlab campaign runs to
+    the study's horizon, so this is the case at every trial of a study. Past a campaign
+    censored earlier, the band is scipy's Greenwood band on the `method` scale; where
+    the estimate is exactly 0 or 1 that band is undefined (scipy returns NaN), and the
+    exact one-sided bound of the campaigns still informative is used instead: upper end
+    1 - (a/2)^(1/m) at 0 with m campaigns at risk at t, lower end (a/2)^(1/m) at 1 with
+    m campaigns that met the target by t (Clopper & Pearson 1934, applied to that
+    risk set; an approximation under censoring).
+    """
     reach = _first_reach(frame, target)
+    tail = (1.0 - confidence_level) / 2.0
     curves = {}
     for policy in frame["policy"].cat.categories:
         rows = reach[reach["policy"] == policy]
@@ -76,21 +93,33 @@ def _km_by_policy(frame, target, confidence_level, method):
         )
         share = result.cdf.evaluate(trials)
         with warnings.catch_warnings():
-            # The log-log band is undefined where the share is exactly 0 or 1 (no event
-            # yet, or every campaign still observed has met the target); scipy warns and
-            # returns NaN there. We fill those points with the estimate itself.
+            # The log-log band is undefined where the share is exactly 0 or 1; scipy
+            # warns and returns NaN there. Such points are filled below.
             warnings.simplefilter("ignore", RuntimeWarning)
             band = result.cdf.confidence_interval(confidence_level, method=method)
             low = band.low.evaluate(trials)
             high = band.high.evaluate(trials)
-        low = np.clip(np.where(np.isnan(low), share, low), 0.0, 1.0)
-        high = np.clip(np.where(np.isnan(high), share, high), 0.0, 1.0)
         events = np.array([np.sum(hit & (times <= t)) for t in trials])
+        at_risk = np.array([np.sum(times >= t) for t in trials])
+        censored_before = np.array([np.sum(~hit & (times < t)) for t in trials])
+        n = len(rows)
+        # Censoring before t: the Greenwood band, with exact one-sided ends at 0 and 1.
+        none_yet = share <= 0.0
+        all_met = share >= 1.0
+        low = np.where(none_yet, 0.0, low)
+        high = np.where(none_yet, 1.0 - tail ** (1.0 / np.maximum(at_risk, 1)), high)
+        low = np.where(all_met, tail ** (1.0 / np.maximum(events, 1)), low)
+        high = np.where(all_met, 1.0, high)
+        # No censoring before t: the exact binomial interval.
+        exact_low, exact_high = _share_interval(events, n, confidence_level)
+        plain = censored_before == 0
+        low = np.clip(np.where(plain, exact_low, low), 0.0, 1.0)
+        high = np.clip(np.where(plain, exact_high, high), 0.0, 1.0)
         curves[policy] = pd.DataFrame(
             {
                 "policy": policy,
                 "trial": trials,
-                "replicates": len(rows),
+                "replicates": n,
                 "campaigns_reached": events,
                 "reached": share,
                 "reached_low": low,
@@ -101,7 +130,12 @@ def _km_by_policy(frame, target, confidence_level, method):
 
 
 def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):
-    """Kaplan-Meier share of campaigns that have met the target by each trial.
+    """First passage: Kaplan-Meier share of campaigns whose recommendation was within target at some trial so far.
+
+    Descriptive only: "the first trial at which the recommendation was within target"
+    is not something a real campaign can observe (it does not know its regret), and a
+    recommendation can get worse afterwards. Budgets are planned on the share within
+    target *after* each trial (`simlab.metrics.within_target_curves`, `budget_plan`).
 
     Parameters
     ----------
@@ -112,10 +146,12 @@ def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):
     confidence_level : float, default 0.95
         Level of the pointwise band.
     method : {"log-log", "linear"}, default "log-log"
-        Band passed to scipy's ``confidence_interval``: Greenwood's variance on the
-        log(-log) scale, which stays inside [0, 1] and covers better near 0 and 1
-        (Kalbfleisch & Prentice 2002, The Statistical Analysis of Failure Time Data,
-        2nd ed., recalled from memory), or on the linear scale (clipped to [0, 1]).
+        Band passed to scipy's ``confidence_interval`` at trials after some campaign
+        was censored: Greenwood's variance on the log(-log) scale, which stays inside
+        [0, 1] and covers better near 0 and 1 (Kalbfleisch & Prentice 2002, The
+        Statistical Analysis of Failure Time Data, 2nd ed., recalled from memory), or on
+        the linear scale (clipped to [0, 1]). Without earlier censoring the band is the
+        exact binomial interval whatever `method` says (see Notes).
 
     Returns
     -------
@@ -129,9 +165,12 @@ def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):
     -----
     A campaign that never meets the target is right-censored at its last trial, so a
     share never rises on a campaign's silence. Computed with scipy.stats.ecdf on
-    scipy.stats.CensoredData. Where the estimate is exactly 0 or 1 the band has zero
-    width (the formula is undefined there); read such points as "no campaign has yet
-    met the target" / "every observed campaign has".
+    scipy.stats.CensoredData. Until some campaign is censored, which in a simlab study
+    happens only at the last trial, the Kaplan-Meier share is the plain share of
+    campaigns with first passage <= t and its band is the Clopper-Pearson exact interval
+    (at a share of exactly 0 the upper end is 1 - 0.025^(1/n) at 95 %; at 1 the lower
+    end is 0.025^(1/n)). Otherwise see `method`; at 0 or 1 there an exact one-sided
+    bound on the campaigns still at risk replaces the undefined Greenwood band.
     """
     frame = _check_traces(traces)
     target = _check_target(target)
@@ -161,7 +200,10 @@ def _quantile_row(curve, level, candidates=None):
 
 
 def trials_to_target_summary(traces, *, target, levels=(0.5, 0.9), confidence_level=0.95, method="log-log"):
-    """Trials needed for a given share of campaigns to meet the target, per policy.
+    """First passage: trials until a given share of campaigns had first been within target, per policy.
+
+    Descriptive only, like `reach_curves`: a campaign cannot observe its first passage,
+    and its recommendation can get worse again afterwards; plan budgets with `budget_plan`.
 
     Parameters
     ----------
@@ -232,48 +274,64 @@ def trials_to_target_summary(traces, *, target, levels=(0.5, 0.9), confidence_le
     return out
 
 
-def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0.95, method="log-log"):
-    """Smallest budget at which the chance of meeting the target reaches `success`.
+def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0.95):
+    """Smallest budget at which the share of campaigns shipping a recommendation within target reaches `success`.
 
     Parameters
     ----------
     traces : DataFrame
-        Traces with columns ``policy, replicate, trial, regret``.
+        Traces with columns ``policy, replicate, trial, regret`` (and optionally
+        ``horizon``, see `simlab.metrics.within_target_curves`).
     target : float
         Regret tolerance.
     success : float, default 0.9
-        Required chance that a campaign has met the target by the budget.
+        Required share of campaigns whose recommendation after the budget's last trial
+        is within target.
     budgets : sequence of int, optional
         Candidate budgets; by default every simulated trial. Each must lie within
         every policy's simulated trials.
     confidence_level : float, default 0.95
-        Level of the Kaplan-Meier band.
-    method : {"log-log", "linear"}, default "log-log"
-        Band (see `reach_curves`).
+        Level of the interval of the share.
 
     Returns
     -------
     DataFrame
         One row per policy, columns ``policy, success, replicates, last_trial, budget,
         budget_optimistic, budget_conservative, reached, status, share, share_low,
-        share_high``. ``budget`` is the first candidate where the Kaplan-Meier share
-        reaches `success`; ``budget_optimistic`` where the band's upper edge does and
-        ``budget_conservative`` where its lower edge does (the budget to defend in a
-        proposal). Budgets are nullable integers: <NA> means "not reached within the
-        simulated budget", also written in ``status``. ``share`` and its band are the
-        Kaplan-Meier share at ``budget``, or at the largest candidate when not reached.
+        share_high, campaigns_within, budget_sustained, horizon, horizon_aware``.
+
+        - ``budget``: the first candidate t where the within-target share after t
+          reaches `success`; ``budget_optimistic`` where the upper end of its
+          Clopper-Pearson interval does, ``budget_conservative`` where the lower end
+          does (the budget to defend in a proposal).
+        - ``budget_sustained``: the first candidate from which the share stays at or
+          above `success` at every later simulated trial (equal to ``budget`` unless
+          the share dips below `success` again after first reaching it).
+        - Budgets are nullable integers: <NA> means "not reached within the simulated
+          budget", also written in ``status`` ("reached" otherwise).
+        - ``share``, ``share_low``, ``share_high`` and ``campaigns_within``: the
+          within-target share at ``budget`` (or at the largest candidate when not
+          reached), the same numbers as `within_target_curves` and, at the study's
+          budgets, `budget_summary` (``within_target`` = 1 - ``failure_risk``).
+        - ``horizon``: the budget the campaign behind that share was planned for
+          (<NA> without a ``horizon`` column); ``horizon_aware``: True for a policy
+          replayed once per budget. For such a policy a budget that is not one of the
+          study's budgets comes from a campaign planned for a larger budget, stopped
+          early.
 
     Notes
     -----
-    "Met the target by budget b" means regret(t) <= target at some trial t <= b (the
-    Kaplan-Meier reading). It can differ from 1 - failure risk in `budget_summary`,
-    which looks at regret(b) alone, when a later recommendation is worse.
+    The share is the status after the budget's last trial: what a team that stops
+    there ships. It need not rise with the budget (a recommendation can get worse
+    again), so ``budget`` is the first trial where it is reached, which is why
+    ``budget_sustained`` is reported beside it. The Kaplan-Meier first-passage share
+    (`reach_curves`) counts a campaign as soon as its recommendation was within target
+    once and is never below this share.
     """
     frame = _check_traces(traces)
     target = _check_target(target)
     success = _check_probability("success", success, closed_high=True)
     confidence_level = _check_probability("confidence_level", confidence_level)
-    method = _check_method(method)
     candidates = None
     if budgets is not None:
         candidates = _check_budgets(budgets)
@@ -284,29 +342,50 @@ def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0
                     f"`budgets` {outside} lie outside the simulated trials "
                     f"{trials.min()}..{trials.max()} of policy {policy!r}"
                 )
-    curves = _km_by_policy(frame, target, confidence_level, method)
+    curves = _within_curves(frame, _horizons(traces), target, confidence_level)
     rows = []
-    for policy, curve in curves.items():
-        estimate, optimistic, conservative, shown = _quantile_row(curve, success, candidates)
-        at = shown[shown["trial"] == (estimate if estimate is not None else shown["trial"].iloc[-1])].iloc[0]
+    for policy in frame["policy"].cat.categories:
+        curve = curves[curves["policy"] == policy]
+        last_trial = int(curve["trial"].iloc[-1])
+        if candidates is not None:
+            curve = curve[curve["trial"].isin(candidates)]
+        trials = curve["trial"].to_numpy()
+        share = curve["within_target"].to_numpy()
+        estimate = _first_trial_at(trials, share, success)
+        optimistic = _first_trial_at(trials, curve["within_high"].to_numpy(), success)
+        conservative = _first_trial_at(trials, curve["within_low"].to_numpy(), success)
+        at = curve[curve["trial"] == (estimate if estimate is not None else trials[-1])].iloc[0]
         rows.append(
             {
                 "policy": policy,
                 "success": success,
-                "replicates": int(curve["replicates"].iloc[0]),
-                "last_trial": int(curve["trial"].iloc[-1]),
+                "replicates": int(at["replicates"]),
+                "last_trial": last_trial,
                 "budget": estimate,
                 "budget_optimistic": optimistic,
                 "budget_conservative": conservative,
                 "reached": estimate is not None,
                 "status": "reached" if estimate is not None else _NOT_REACHED_PLAN,
-                "share": float(at["reached"]),
-                "share_low": float(at["reached_low"]),
-                "share_high": float(at["reached_high"]),
+                "share": float(at["within_target"]),
+                "share_low": float(at["within_low"]),
+                "share_high": float(at["within_high"]),
+                "campaigns_within": int(at["campaigns_within"]),
+                "budget_sustained": _sustained_from(trials, share, success),
+                "horizon": at["horizon"],
+                "horizon_aware": bool(at["horizon_aware"]),
             }
         )
     out = pd.DataFrame(rows)
-    for column in ("budget", "budget_optimistic", "budget_conservative"):
-        out[column] = pd.array(out[column].tolist(), dtype="Int64")
+    for column in ("budget", "budget_optimistic", "budget_conservative", "budget_sustained", "horizon"):
+        out[column] = pd.array([None if pd.isna(v) else int(v) for v in out[column]], dtype="Int64")
     out["policy"] = out["policy"].astype(object)
     return out
+
+
+def _sustained_from(trials, share, level):
+    """First trial from which share >= level holds at every later trial, or None."""
+    ok = share >= level - _SHARE_TOLERANCE
+    if not ok.size or not ok[-1]:
+        return None
+    misses = np.flatnonzero(~ok)
+    return int(trials[misses[-1] + 1]) if misses.size else int(trials[0])

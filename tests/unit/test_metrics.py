@@ -7,6 +7,7 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 
 from simlab import metrics
 
@@ -68,13 +69,20 @@ def _naive_first_reach(traces, target):
 
 
 def _naive_km(times_and_flags, trials, confidence_level=0.95):
-    """Kaplan-Meier share reached by each trial with a log-log Greenwood band, by loops.
+    """Kaplan-Meier share reached by each trial with simlab's band rule, by loops.
 
-    Product-limit estimate (Kaplan & Meier 1958) with Greenwood's (1926) variance sum
-    and the log(-log S) transform (Kalbfleisch & Prentice 2002; formula from memory):
-    S^(exp(+-z * sqrt(sum d/(n(n-d))) / |log S|)). Censoring at t counts as at risk at t.
+    Product-limit estimate (Kaplan & Meier 1958). Band: while no campaign has been
+    censored before t, the share is a binomial share and the band is the Clopper &
+    Pearson (1934) exact interval (scipy.stats.binomtest, method="exact"). After
+    censoring, Greenwood's (1926) variance sum with the log(-log S) transform
+    (Kalbfleisch & Prentice 2002; formula from memory):
+    S^(exp(+-z * sqrt(sum d/(n(n-d))) / |log S|)), and at a share of exactly 0 or 1 the
+    exact one-sided bound 1 - 0.025^(1/m) (m at risk) or 0.025^(1/m) (m reached).
+    Censoring at t counts as at risk at t.
     """
     z = {0.95: Z95}[confidence_level]
+    tail = (1 - confidence_level) / 2
+    n = len(times_and_flags)
     survival, greenwood = 1.0, 0.0
     out = []
     for t in trials:
@@ -86,12 +94,20 @@ def _naive_km(times_and_flags, trials, confidence_level=0.95):
                 greenwood += events / (at_risk * (at_risk - events))
             else:
                 greenwood = math.inf
-        if 0.0 < survival < 1.0 and math.isfinite(greenwood):
+        reached = sum(1 for time, hit in times_and_flags if hit and time <= t)
+        censored_before = sum(1 for time, hit in times_and_flags if not hit and time < t)
+        if censored_before == 0:
+            ci = stats.binomtest(reached, n).proportion_ci(confidence_level, method="exact")
+            low, high = ci.low, ci.high
+        elif survival == 1.0:
+            low, high = 0.0, 1 - tail ** (1 / at_risk)
+        elif survival == 0.0:
+            low, high = tail ** (1 / reached), 1.0
+        else:
             width = z * math.sqrt(greenwood) / abs(math.log(survival))
             s_low, s_high = survival ** math.exp(width), survival ** math.exp(-width)
-        else:
-            s_low = s_high = survival
-        out.append((t, 1.0 - survival, 1.0 - s_high, 1.0 - s_low))
+            low, high = 1.0 - s_high, 1.0 - s_low
+        out.append((t, 1.0 - survival, low, high))
     return out
 
 
@@ -205,20 +221,41 @@ def _failure_traces(cases):
     return _traces_from(regrets)
 
 
-def test_failure_interval_matches_newcombe_table_i():
-    summary = metrics.budget_summary(_failure_traces(NEWCOMBE), budgets=[1], target=0.5).set_index("policy")
+# Newcombe (1998) Table I, method 5 (Clopper-Pearson exact); values recalled from memory
+# and equal to scipy.stats.binomtest(...).proportion_ci(method="exact") to 4 decimals.
+NEWCOMBE_EXACT = {(81, 263): (0.2527, 0.3676), (15, 148): (0.0578, 0.1617), (0, 20): (0.0, 0.1684)}
+
+
+def test_wilson_helper_matches_newcombe_table_i():
     for (k, n), (low, high) in NEWCOMBE.items():
+        got = metrics._wilson(k, n, 0.95)
+        assert got == pytest.approx((low, high), abs=5e-5)
+        assert got == pytest.approx(_naive_wilson(k, n), abs=1e-12)  # closed form (Wilson 1927)
+
+
+def test_failure_interval_is_clopper_pearson():
+    cases = {**NEWCOMBE_EXACT, (0, 50): (0.0, 0.0711217365), (50, 50): (0.9288782635, 1.0)}
+    summary = metrics.budget_summary(_failure_traces(cases), budgets=[1], target=0.5).set_index("policy")
+    for (k, n), (low, high) in cases.items():
         row = summary.loc[f"{k}/{n}"]
         assert row["replicates"] == n and row["reached"] == n - k
         assert row["failure_risk"] == pytest.approx(k / n)
-        # Published to 4 decimals: tolerance half a unit in the last place.
-        assert row["failure_low"] == pytest.approx(low, abs=5e-5)
-        assert row["failure_high"] == pytest.approx(high, abs=5e-5)
-    # Negative control: the Wald interval for 81/263 (0.2522-0.3638) misses Table I by
-    # more than the tolerance, so the check tells the two methods apart.
-    p = 81 / 263
-    wald_low = p - Z95 * math.sqrt(p * (1 - p) / 263)
-    assert abs(wald_low - 0.2553) > 5e-5
+        # Newcombe prints 4 decimals: tolerance half a unit in the last place (plus float
+        # rounding); the 0/50 and 50/50 values (REFERENCES.md) have 10.
+        tol = 1e-9 if n == 50 else 5e-5 + 1e-9
+        assert row["failure_low"] == pytest.approx(low, abs=tol)
+        assert row["failure_high"] == pytest.approx(high, abs=tol)
+        exact = stats.binomtest(k, n).proportion_ci(method="exact")  # reference library
+        assert (row["failure_low"], row["failure_high"]) == pytest.approx((exact.low, exact.high), abs=1e-12)
+        # within-target share is the complement, with the same interval mirrored
+        assert row["within_target"] == pytest.approx(1 - k / n)
+        assert row["within_low"] == pytest.approx(1 - row["failure_high"], abs=1e-15)
+        assert row["within_high"] == pytest.approx(1 - row["failure_low"], abs=1e-15)
+    # 0 of 50: the exact one-sided bound 1 - 0.025^(1/50) (Clopper & Pearson 1934).
+    assert summary.loc["0/50", "failure_high"] == pytest.approx(1 - 0.025 ** (1 / 50), rel=1e-12)
+    # Negative control: Wilson's 81/263 lower end (0.2553) misses method 5 by more than
+    # the tolerance, so the check tells the two methods apart.
+    assert abs(NEWCOMBE[(81, 263)][0] - NEWCOMBE_EXACT[(81, 263)][0]) > 5e-5
 
 
 # ---------------------------------------------------------------------------
@@ -247,15 +284,24 @@ def test_budget_summary_matches_naive_recomputation():
         failures = sum(1 for v in values if v > target)
         assert row.reached == len(values) - failures
         assert row.failure_risk == pytest.approx(failures / len(values))
-        low, high = _naive_wilson(failures, len(values))
-        assert row.failure_low == pytest.approx(low, abs=1e-9)
-        assert row.failure_high == pytest.approx(high, abs=1e-9)
+        exact = stats.binomtest(failures, len(values)).proportion_ci(method="exact")
+        assert row.failure_low == pytest.approx(exact.low, abs=1e-9)
+        assert row.failure_high == pytest.approx(exact.high, abs=1e-9)
+        assert row.within_target == pytest.approx(1 - failures / len(values))
         # 37 campaigns: 3.7 campaigns' worth of tail, the fractional case.
         assert row.cvar90 == pytest.approx(_naive_cvar90(values), rel=1e-12)
-        assert row.median_low <= row.regret_median <= row.median_high
-        assert min(values) <= row.median_low and row.median_high <= max(values)
-        # resampled tail means never exceed the largest value (up to float64 rounding)
-        assert row.cvar90_low <= row.cvar90 <= row.cvar90_high <= max(values) * (1 + 1e-12)
+        # order-statistic interval: ranks 13 and 25 of 37 (binomial, Thompson 1936)
+        ordered = sorted(values)
+        assert (row.median_low, row.median_high) == (ordered[12], ordered[24])
+        ci = stats.quantile_test(values, q=statistics.median(values), p=0.5).confidence_interval(0.95)
+        assert (row.median_low, row.median_high) == pytest.approx((ci.low, ci.high), rel=1e-12)  # scipy
+        # DKW lower bound (Thomas & Learned-Miller 2019): mean of the empirical quantile
+        # over [0.9 - e, 1 - e], e = sqrt(log(20) / 74), by integrating the steps
+        e = math.sqrt(math.log(20) / (2 * 37))
+        lo, hi = 0.9 - e, 1 - e
+        naive = sum(v * max(0.0, min((i + 1) / 37, hi) - max(i / 37, lo)) for i, v in enumerate(ordered)) / 0.1
+        assert row.cvar90_low == pytest.approx(naive, rel=1e-12)
+        assert row.cvar90_low <= row.cvar90 and math.isnan(row.cvar90_high)
 
 
 @pytest.mark.parametrize(
@@ -295,71 +341,18 @@ def test_regret_curves_match_naive_and_skip_history_rows():
         assert row.median_low <= row.regret_median <= row.median_high
 
 
-def test_bootstrap_is_reproducible_by_seed():
-    traces = _synthetic_traces(8, replicates=25, trials=3)
-    a = metrics.regret_curves(traces, n_resamples=300, seed=11)
-    b = metrics.regret_curves(traces, n_resamples=300, seed=11)
-    c = metrics.regret_curves(traces, n_resamples=300, seed=12)
-    pd.testing.assert_frame_equal(a, b)
-    assert not np.allclose(a["median_low"], c["median_low"])
-
-
-# ---------------------------------------------------------------------------
-# bootstrap coverage, with negative controls
-# ---------------------------------------------------------------------------
-def _coverage(low, high, truth):
-    return float(np.mean((np.asarray(low) <= truth) & (truth <= np.asarray(high))))
-
-
-def test_median_interval_coverage():
-    # 400 independent cells of 41 exponential(1) regrets; true median ln 2.
-    rng = np.random.default_rng(20240601)
-    cells, n = 400, 41
-    values = rng.exponential(size=(cells, n))
-    traces = pd.DataFrame(
-        {"policy": "p", "replicate": np.tile(np.arange(n), cells),
-         "trial": np.repeat(np.arange(1, cells + 1), n), "regret": values.ravel()}
-    )  # fmt: skip
-
-    def acceptable(coverage):
-        # Nominal 0.95; Monte Carlo sd over 400 cells is sqrt(0.95 * 0.05 / 400) = 0.011.
-        # Allow 4 sd below (percentile intervals for a median of 41 run a little short)
-        # and up to 0.99 above.
-        return 0.95 - 4 * 0.011 <= coverage <= 0.99
-
-    curves = metrics.regret_curves(traces, seed=1)
-    assert acceptable(_coverage(curves["median_low"], curves["median_high"], math.log(2)))
-    # Negative control: 50% intervals must fail the same check.
-    narrow = metrics.regret_curves(traces, seed=1, confidence_level=0.5)
-    assert not acceptable(_coverage(narrow["median_low"], narrow["median_high"], math.log(2)))
-
-
-def test_cvar_interval_coverage_sanity():
-    # 150 policies x 200 exponential(1) regrets. True CVaR-90 = ln 10 + 1 (memoryless
-    # tail: E[X | X > q] = q + 1, q = ln 10; common practice).
-    rng = np.random.default_rng(4242)
-    policies, n = 150, 200
-    values = rng.exponential(size=(policies, n))
-    traces = pd.DataFrame(
-        {"policy": np.repeat([f"p{i:03d}" for i in range(policies)], n),
-         "replicate": np.tile(np.arange(n), policies), "trial": 1, "regret": values.ravel()}
-    )  # fmt: skip
-    truth = math.log(10) + 1
-
-    def acceptable(coverage):
-        # Tail-mean intervals under-cover at n = 200 (about 0.91 in our own simulations);
-        # Monte Carlo sd over 150 policies is about 0.023, so 0.84 is 3 sd below 0.91.
-        return 0.84 <= coverage <= 0.99
-
-    summary = metrics.budget_summary(traces, budgets=[1], target=1.0, n_resamples=500, seed=3)
-    assert acceptable(_coverage(summary["cvar90_low"], summary["cvar90_high"], truth))
-    # The Wilson interval for failure risk P(X > 1) = exp(-1) is checked on the same data.
-    assert 0.95 - 4 * 0.018 <= _coverage(summary["failure_low"], summary["failure_high"], math.exp(-1))
-    # Negative controls: 50% intervals, and the wrong truth (mean of the worst 20%,
-    # ln 5 + 1), must fail the same check.
-    narrow = metrics.budget_summary(traces, budgets=[1], target=1.0, n_resamples=500, seed=3, confidence_level=0.5)
-    assert not acceptable(_coverage(narrow["cvar90_low"], narrow["cvar90_high"], truth))
-    assert not acceptable(_coverage(summary["cvar90_low"], summary["cvar90_high"], math.log(5) + 1))
+def test_median_interval_is_order_statistics_and_ignores_seed():
+    traces = _synthetic_traces(8, replicates=50, trials=3)
+    a = metrics.regret_curves(traces, seed=11)
+    b = metrics.regret_curves(traces, seed=12)
+    pd.testing.assert_frame_equal(a, b)  # nothing resamples any more
+    for row in a.itertuples():
+        values = sorted(traces.loc[(traces["policy"] == row.policy) & (traces["trial"] == row.trial), "regret"])
+        # ranks 18 and 33 of 50: P(Bin(50, 1/2) <= 17) = 0.0164 <= 0.025 < P(<= 18) (scipy.stats.binom)
+        assert (row.median_low, row.median_high) == (values[17], values[32])
+    # too few campaigns for any 95 % order-statistic interval: NaN, not a made-up band
+    few = metrics.regret_curves(_synthetic_traces(1, replicates=5, trials=2))
+    assert few["median_low"].isna().all() and few["median_high"].isna().all()
 
 
 # ---------------------------------------------------------------------------
@@ -414,24 +407,29 @@ def test_reach_curves_and_summary_match_naive_km():
 
 
 def test_budget_plan_matches_naive_and_reports_not_reached():
-    traces = _censored_traces()
+    traces = _censored_traces()[lambda f: f["trial"] <= 9]  # every campaign to trial 9
     target, success = 0.3, 0.8
-    naive = _naive_first_reach(traces, target)
     plan = metrics.budget_plan(traces, target=target, success=success).set_index("policy")
     for policy in ["fast", "slow", "never"]:
-        campaigns = [v for (p, _), v in naive.items() if p == policy]
-        expected = _naive_km(campaigns, range(1, 16))
-        budget = _first_at([(t, s) for t, s, _, _ in expected], success)
-        conservative = _first_at([(t, lo) for t, _, lo, _ in expected], success)
-        optimistic = _first_at([(t, h) for t, _, _, h in expected], success)
+        shares = []
+        for t in range(1, 10):
+            values = traces.loc[(traces["policy"] == policy) & (traces["trial"] == t), "regret"]
+            k = int(sum(v <= target for v in values))
+            exact = stats.binomtest(k, len(values)).proportion_ci(method="exact")
+            shares.append((t, k / len(values), exact.low, exact.high))
+        budget = _first_at([(t, s) for t, s, _, _ in shares], success)
+        conservative = _first_at([(t, lo) for t, _, lo, _ in shares], success)
+        optimistic = _first_at([(t, h) for t, _, _, h in shares], success)
         row = plan.loc[policy]
         for column, value in (("budget", budget), ("budget_conservative", conservative),
                               ("budget_optimistic", optimistic)):  # fmt: skip
             assert (pd.isna(row[column]) and value is None) or row[column] == value, (policy, column)
     assert plan.loc["fast", "status"] == "reached"
-    assert pd.isna(plan.loc["never", "budget"])
+    assert pd.isna(plan.loc["never", "budget"]) and pd.isna(plan.loc["never", "budget_sustained"])
     assert plan.loc["never", "status"] == "not reached within the simulated budget"
     assert plan.loc["never", "share"] == 0.0
+    # 0 of 40 within target: the exact one-sided upper bound 1 - 0.025^(1/40) (Clopper & Pearson 1934)
+    assert plan.loc["never", "share_high"] == pytest.approx(1 - 0.025 ** (1 / 40), rel=1e-12)
     # conservative >= estimate >= optimistic whenever they exist
     fast = plan.loc["fast"]
     assert fast["budget_optimistic"] <= fast["budget"] <= fast["budget_conservative"]
@@ -489,5 +487,6 @@ def test_constant_regret_gives_zero_width_intervals_without_warnings():
         summary = metrics.budget_summary(traces, budgets=[2], target=0.5, n_resamples=200)
         curves = metrics.regret_curves(traces, n_resamples=200)
     assert (summary["median_low"] == summary["regret_median"]).all()
-    assert (summary["cvar90_low"] == summary["cvar90"]).all() and (summary["cvar90_high"] == summary["cvar90"]).all()
+    # the DKW lower bound of a constant sample is the constant (its weights sum to 1)
+    assert np.allclose(summary["cvar90_low"], summary["cvar90"], rtol=1e-12) and summary["cvar90_high"].isna().all()
     assert (curves["median_high"] == curves["regret_median"]).all()
