@@ -435,6 +435,56 @@ def test_budget_plan_matches_naive_and_reports_not_reached():
     assert fast["budget_optimistic"] <= fast["budget"] <= fast["budget_conservative"]
 
 
+def test_shipped_share_and_first_passage_differ_when_regret_rises_again():
+    # Constructed: 10 campaigns, target 0.5. Every recommendation is within target from
+    # trial 3; in three campaigns it gets worse again at trials 5-7 and recovers at 8.
+    campaigns = []
+    for r in range(10):
+        values = [1.0, 1.0, 0.2, 0.2, 0.2, 0.2, 0.2, 0.2, 0.2]
+        if r < 3:
+            values[4:7] = [0.9, 0.9, 0.9]
+        campaigns.append(values)
+    traces = _traces_from({"p": campaigns})
+    within = metrics.within_target_curves(traces, target=0.5).set_index("trial")
+    first = metrics.reach_curves(traces, target=0.5).set_index("trial")
+    assert list(within["within_target"]) == [0, 0, 1, 1, 0.7, 0.7, 0.7, 1, 1]  # counted by hand
+    assert list(first["reached"]) == [0, 0, 1, 1, 1, 1, 1, 1, 1]  # first passage never falls
+    plan = metrics.budget_plan(traces, target=0.5, success=0.9).iloc[0]
+    assert plan["budget"] == 3 and plan["budget_sustained"] == 8
+    assert plan["campaigns_within"] == 10 and plan["share"] == 1.0
+    # Budgets 5, 6, 7 ship 7 of 10: a plan restricted to them and 9 says 9.
+    restricted = metrics.budget_plan(traces, target=0.5, success=0.9, budgets=[5, 6, 7, 9]).iloc[0]
+    assert restricted["budget"] == 9 and restricted["budget_sustained"] == 9
+    # The summary at trial 5 reports the same share and interval, failure risk its complement.
+    row = metrics.budget_summary(traces, budgets=[5], target=0.5).iloc[0]
+    exact = stats.binomtest(7, 10).proportion_ci(method="exact")
+    assert (row["within_target"], row["within_low"], row["within_high"]) == pytest.approx((0.7, exact.low, exact.high))
+    assert (within.at[5, "within_low"], within.at[5, "within_high"]) == (row["within_low"], row["within_high"])
+    assert row["failure_risk"] == pytest.approx(0.3)
+
+
+def test_horizon_column_is_carried_into_the_plan():
+    # A horizon-aware policy as the runner writes it: trials 1-5 from the campaign planned
+    # for 5 trials, 6-10 from the one planned for 10; a plain policy planned for 10 throughout.
+    rng = np.random.default_rng(3)
+    rows = []
+    for policy in ("aware", "plain"):
+        for r in range(20):
+            for t in range(1, 11):
+                horizon = (5 if t <= 5 else 10) if policy == "aware" else 10
+                rows.append((policy, r, t, float(rng.exponential() * 0.7**t), horizon))
+    traces = pd.DataFrame(rows, columns=["policy", "replicate", "trial", "regret", "horizon"])
+    curves = metrics.within_target_curves(traces, target=0.2)
+    aware = curves[curves["policy"] == "aware"]
+    assert list(aware["horizon"]) == [5] * 5 + [10] * 5 and aware["horizon_aware"].all()
+    assert not curves.loc[curves["policy"] == "plain", "horizon_aware"].any()
+    plan = metrics.budget_plan(traces, target=0.2, success=0.5).set_index("policy")
+    b = int(plan.loc["aware", "budget"])
+    assert plan.loc["aware", "horizon"] == (5 if b <= 5 else 10) and plan.loc["aware", "horizon_aware"]
+    with pytest.raises(ValueError, match="horizon"):
+        metrics.within_target_curves(traces.assign(horizon=traces["replicate"]), target=0.2)
+
+
 def test_budget_plan_restricted_to_candidate_budgets():
     traces = _censored_traces()
     full = metrics.budget_plan(traces, target=0.3, success=0.8).set_index("policy")
