@@ -320,6 +320,8 @@ def _report(args) -> int:
 
 
 def _plan(args) -> int:
+    import pandas as pd
+
     from .api import load_results, run_study
     from .metrics import budget_plan
     from .store import STUDY, TRACES, results_dir
@@ -339,23 +341,37 @@ def _plan(args) -> int:
         for msg in sorted({str(w.message) for w in caught}):
             print(f"simlab: warning: {msg}", file=sys.stderr)
     plan = budget_plan(result.traces, target=study.target, success=args.success)
-    print(f"smallest budget at which the chance of meeting the target (regret <= {study.target:g}) "
-          f"reaches {args.success:.0%}\n")
-    header = f"{'policy':<20} {'budget':>7}  {'range (optimistic to conservative)':<36} {'chance at that budget':>22}"
+    print(f"smallest budget at which {args.success:.0%} of campaigns end within the target "
+          f"(recommendation after the budget's last trial: regret <= {study.target:g})\n")
+    header = (f"{'policy':<20} {'budget':>7}  {'range (optimistic to conservative)':<36} "
+              f"{'within target at that budget':>30}  {'stays from':>10}")
     print(header)
     print("-" * len(header))
     for row in plan.itertuples():
+        chance = _share(row.share, row.share_low, row.share_high)
         if row.status == "reached":
             conservative = _int(row.budget_conservative, above=row.last_trial)
             span = f"{_int(row.budget_optimistic, above=row.last_trial)} to {conservative}"
-            chance = f"{row.share:.0%} [{row.share_low:.0%}-{row.share_high:.0%}]"
-            print(f"{str(row.policy)[:20]:<20} {_int(row.budget, above=row.last_trial):>7}  {span:<36} {chance:>22}")
+            stays = "dips again" if pd.isna(row.budget_sustained) else f"{int(row.budget_sustained)}"
+            print(f"{str(row.policy)[:20]:<20} {_int(row.budget, above=row.last_trial):>7}  {span:<36} "
+                  f"{chance:>30}  {stays:>10}")
         else:
             print(f"{str(row.policy)[:20]:<20} {'-':>7}  not reached within {row.last_trial} trials "
-                  f"(chance {row.share:.0%} [{row.share_low:.0%}-{row.share_high:.0%}] at {row.last_trial})")
-    print("\n'conservative' is where the lower edge of the 95 % Kaplan-Meier band reaches the level: "
-          "the budget to defend in a proposal.")
+                  f"({chance} after trial {row.last_trial})")
+    print("\n'conservative' is where the lower end of the share's 95 % interval (Clopper-Pearson) reaches the "
+          "level: the budget to defend in a proposal. The share need not rise with every trial; 'stays from' "
+          "is the first trial from which it stays at or above the level through the last simulated trial.")
+    aware = [str(p) for p, a in zip(plan["policy"], plan["horizon_aware"]) if a]
+    if aware:
+        print(f"{', '.join(aware)}: replayed once per study budget ({', '.join(map(str, study.campaign.budgets))}); "
+              "at other budgets the share comes from the campaign planned for the next larger one, stopped early.")
     return 0
+
+
+def _share(value, low, high) -> str:
+    """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
+    from .page import _fmt_pct
+    return f"{_fmt_pct(value)} % [{_fmt_pct(low)}-{_fmt_pct(high)} %]"
 
 
 def _int(value, *, above: int) -> str:
@@ -365,13 +381,13 @@ def _int(value, *, above: int) -> str:
 
 
 def _format_table(study, summary) -> str:
-    """Median regret with quartiles, and the share within the target with its Wilson interval."""
+    """Median regret with quartiles, and the share within the target with its exact (Clopper-Pearson) interval."""
     lines = [f"simple regret of the recommendation (objective units; target: regret <= {study.target:g})", ""]
     header = (f"{'policy':<20} {'budget':>6}  {'median regret [q25, q75]':<30} "
               f"{'within target [95% interval]':>28}")
     lines += [header, "-" * len(header)]
     for row in summary.itertuples():
         band = f"{row.regret_median:.3g} [{row.regret_q25:.3g}, {row.regret_q75:.3g}]"
-        within = f"{1 - row.failure_risk:.0%} [{1 - row.failure_high:.0%}-{1 - row.failure_low:.0%}]"
+        within = _share(row.within_target, row.within_low, row.within_high)
         lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<30} {within:>28}")
     return "\n".join(lines)

@@ -15,6 +15,7 @@ import pandas as pd
 from . import compare
 
 SUMMARY = "summary.csv"
+WITHIN_TARGET = "within_target.csv"
 TRIALS_TO_TARGET = "trials_to_target.csv"
 TRIALS_TO_TARGET_SUMMARY = "trials_to_target_summary.csv"
 PAIRWISE = "pairwise.csv"
@@ -26,8 +27,8 @@ SWEEP_RANKING = "sweep/ranking.csv"
 FIGURES = "figures"
 
 # Figure stems in report order.
-_FIGURE_STEMS = ("regret", "regret_rounds", "failure_risk", "trials_to_target", "final_regret", "win_rates",
-                 "snapshot", "sweep")
+_FIGURE_STEMS = ("regret", "regret_rounds", "failure_risk", "within_target", "trials_to_target", "final_regret",
+                 "win_rates", "snapshot", "sweep")
 
 _KERNEL_NAMES = {
     "sqexp": "squared exponential",
@@ -419,7 +420,7 @@ def _summary_table(study, summary):
     frame = summary.frame
     rows = []
     for b in study.campaign.budgets:
-        rows.append(f'<tr class="group"><td colspan="6">after {b} trials</td></tr>')
+        rows.append(f'<tr class="group"><td colspan="7">after {b} trials</td></tr>')
         for i in np.flatnonzero(frame["budget"].to_numpy() == b):
             i = int(i)
             rows.append(
@@ -427,15 +428,18 @@ def _summary_table(study, summary):
                 f"<td class='n'>{summary.span(i, 'replicates', 'int')}</td>"
                 f"<td class='n'>{summary.sig(i, 'regret_median', 'median_low', 'median_high', stacked=True)}</td>"
                 f"<td class='n'>{summary.span(i, 'regret_q25', 'sig')}–{summary.span(i, 'regret_q75', 'sig')}</td>"
+                f"<td class='n'>{summary.pct(i, 'within_target', 'within_low', 'within_high', stacked=True)}</td>"
                 f"<td class='n'>{summary.pct(i, 'failure_risk', 'failure_low', 'failure_high', stacked=True)}</td>"
-                f"<td class='n'>{summary.sig(i, 'cvar90', 'cvar90_low', 'cvar90_high', stacked=True)}</td></tr>"
+                f"<td class='n'>{summary.span(i, 'cvar90', 'sig')}"
+                f"<span class='ci'>≥ {summary.span(i, 'cvar90_low', 'sig')}</span></td></tr>"
             )
     return (
         "<table><thead><tr><th>policy</th><th class='n'>campaigns</th>"
         "<th class='n'>median regret<span class='ci'>[95 % interval]</span></th>"
         "<th class='n'>middle 50 % of campaigns</th>"
-        "<th class='n'>failure risk<span class='ci'>[95 % Wilson interval]</span></th>"
-        "<th class='n'>mean of worst 10 % (CVaR-90)<span class='ci'>[95 % interval]</span></th>"
+        "<th class='n'>within target<span class='ci'>[95 % interval]</span></th>"
+        "<th class='n'>failure risk<span class='ci'>[95 % interval]</span></th>"
+        "<th class='n'>mean of worst 10 % (CVaR-90)<span class='ci'>95 % lower bound</span></th>"
         f"</tr></thead><tbody>{''.join(rows)}</tbody></table>"
     )
 
@@ -452,7 +456,8 @@ def _trials_range(cells, row, low, high, last):
 def _reach_table(reach):
     frame = reach.frame
     levels = list(dict.fromkeys(frame["level"].tolist()))
-    head = "".join(f"<th class='n'>trials until {_fmt_pct(lv)} % met [95 % range]</th>" for lv in levels)
+    head = "".join(f"<th class='n'>first trial by which {_fmt_pct(lv)} % had been within target [95 % range]</th>"
+                   for lv in levels)
     rows = []
     for policy in dict.fromkeys(frame["policy"].astype(str)):
         cells = []
@@ -497,10 +502,17 @@ def _results(study, summary, reach, pairs, images, success):
     parts = [
         '<section id="results"><h2>3. Results</h2>',
         ("<p>Regret is the shortfall of the recommended setting from the world's best value, in objective "
-         "units (0 is perfect). Failure risk is the share of campaigns whose regret is still above the "
-         "target when the budget is spent. Intervals are 95 % intervals of the simulation's own "
-         "uncertainty (a finite number of worlds); they do not cover doubts about the prior.</p>"),
-        "<h3>Regret and failure risk at each budget</h3>",
+         "units (0 is perfect). <i>Within target</i> is the share of campaigns whose recommendation after "
+         "the budget's last trial is within the target: what a team that stops there would ship. Failure "
+         "risk is the rest, the share still above the target when the budget is spent. Intervals are 95 % "
+         "intervals of the simulation's own uncertainty (a finite number of worlds); they do not cover "
+         "doubts about the prior. They are built to hold at the study's size: the median's from order "
+         "statistics (binomial, distribution-free), the shares' exact (Clopper–Pearson). For the mean of "
+         "the worst 10 % only a lower bound is given (distribution-free, from the Dvoretzky–Kiefer–Wolfowitz "
+         "inequality; Thomas &amp; Learned-Miller 2019): no method gives an upper bound that holds without "
+         "knowing the largest possible regret, which these worlds do not have. The tail may be worse than "
+         "the figure shown; it is at least as bad as the bound.</p>"),
+        "<h3>Regret, within-target share and failure risk at each budget</h3>",
         _summary_table(study, summary),
         _figure(images, "regret", "Median regret against trial for each policy, log scale",
                 "Median regret of the recommendation after each trial (line) and the middle 50 % of campaigns "
@@ -510,18 +522,28 @@ def _results(study, summary, reach, pairs, images, success):
                  f"The same after each round of {study.campaign.batch} trials evaluated together: when a round "
                  "takes a week, this is the calendar a team lives by.") if "regret_rounds" in images else ""),
         _figure(images, "failure_risk", "Failure risk against budget with intervals",
-                "Share of campaigns that end above the target at each budget, with 95 % Wilson intervals; "
-                "points are shifted sideways so that intervals do not overlap."),
+                "Share of campaigns that end above the target at each budget, with 95 % Clopper–Pearson "
+                "intervals; points are shifted sideways so that intervals do not overlap."),
+        _figure(images, "within_target", "Share of campaigns within target after each trial",
+                "Share of campaigns whose recommendation after each trial is within the target, with its "
+                "95 % Clopper–Pearson band: the quantity budgets are planned on. It need not rise with every "
+                "trial: a recommendation can get worse again. Dotted lines mark the study's budgets, the "
+                f"dashed line the requested success level ({_fmt_pct(success)} %)."),
         _figure(images, "final_regret", "Regret of every campaign at the largest budget",
                 f"Regret of every simulated campaign after {horizon} trials: the box spans the middle 50 %, "
                 "each dot is one world. A long right tail is the risk a median hides."),
-        "<h3>Trials to target</h3>",
-        ("<p>When does a campaign first recommend a setting within the target? Campaigns that never do within "
-         "the simulated trials are counted as censored (Kaplan–Meier), not as failures at a made-up trial.</p>"),
+        "<h3>First passage (descriptive only)</h3>",
+        ("<p>The first trial at which a campaign's recommendation was within the target. A real campaign "
+         "cannot observe this (it does not know its regret), and its recommendation can get worse again "
+         "afterwards, so these numbers are <b>not budgets</b>: budgets come from the share within target "
+         "after the budget's last trial (section “Budget plan”). Campaigns never within target in the "
+         "simulated trials are censored (Kaplan–Meier).</p>"),
         _reach_table(reach),
-        _figure(images, "trials_to_target", "Share of campaigns that met the target by each trial",
-                "Kaplan–Meier share of campaigns whose recommendation has met the target by each trial, with "
-                f"its 95 % band; the dashed line is the requested success level ({_fmt_pct(success)} %)."),
+        _figure(images, "trials_to_target", "Share of campaigns that had been within target by each trial",
+                "First passage: Kaplan–Meier share of campaigns whose recommendation had been within the "
+                "target at some trial so far, with its 95 % band (exact binomial while no campaign is "
+                "censored); never below the within-target share. The dashed line is the requested success "
+                f"level ({_fmt_pct(success)} %)."),
     ]
     if pairs is not None:
         parts += [
@@ -603,12 +625,12 @@ def _choice_section(study, summary, choice, success):
         elif attitude == _ATTITUDE_TRIALS:
             if _missing(choice.value(i, "leader")):
                 s = (f"<b>If trials are what is scarce</b> (fewest trials for {_fmt_pct(success)} % success): "
-                     f"no policy meets the target in {_fmt_pct(success)} % of campaigns within the simulated "
-                     f"{horizon} trials.")
+                     f"at no simulated budget up to {horizon} trials do {_fmt_pct(success)} % of any policy's "
+                     "campaigns end within the target.")
                 sentences.append(f"<li>{s} {choice.text(i, 'evidence')}.</li>")
                 continue
             s = (f"<b>If trials are what is scarce</b> (fewest trials for {_fmt_pct(success)} % of campaigns "
-                 f"to meet the target): {leader} needs {_choice_trials(choice, i, 'leader', horizon)}; "
+                 f"to end within the target): {leader} needs {_choice_trials(choice, i, 'leader', horizon)}; "
                  f"{runner} needs {_choice_trials(choice, i, 'runner_up', horizon)}.")
         else:
             s = f"<b>{_e(attitude)}</b> ({choice.text(i, 'criterion')}): {leader}; runner-up {runner}."
@@ -638,24 +660,40 @@ def _plan_section(study, plan, success):
         if _missing(plan.value(i, "budget")):
             budget = f"{plan.span(i, 'budget', 'int', missing='not reached')}"
             span = "—"
-            share = (f"{plan.pct(i, 'share', 'share_low', 'share_high')} by trial {last}")
+            share = (f"{plan.pct(i, 'share', 'share_low', 'share_high')} after trial {last}")
+            stays = "—"
         else:
             budget = plan.span(i, "budget", "int")
             span = _trials_range(plan, i, "budget_optimistic", "budget_conservative", last)
             share = plan.pct(i, "share", "share_low", "share_high")
+            stays = plan.span(i, "budget_sustained", "int", missing=f"dips again by trial {last}")
         rows.append(f"<tr><td>{plan.text(i, 'policy')}</td><td class='n'>{budget}</td><td class='n'>{span}</td>"
-                    f"<td class='n'>{share}</td><td>{plan.text(i, 'status')}</td></tr>")
+                    f"<td class='n'>{share}</td><td class='n'>{stays}</td><td>{plan.text(i, 'status')}</td></tr>")
+    aware = [str(p) for p, a in zip(frame["policy"], frame.get("horizon_aware", [False] * len(frame))) if a]
+    horizon_note = ""
+    if aware:
+        budgets = ", ".join(str(b) for b in study.campaign.budgets)
+        horizon_note = (
+            f"<p>{_e(', '.join(aware))} plan{'s' if len(aware) == 1 else ''} ahead for the budget, so "
+            f"{'it was' if len(aware) == 1 else 'they were'} replayed once per study budget ({budgets}). "
+            "At those budgets the share comes from the campaign planned for exactly that budget; at a trial "
+            "between them, from the campaign planned for the next larger budget, stopped early, which a team "
+            "planning that smaller budget would not run. Prefer a budget the study simulated.</p>")
     return (
         f'<section id="budget-plan"><h2>5. Budget plan</h2>'
-        f"<p>The smallest budget at which at least {_fmt_pct(success)} % of simulated campaigns have met the "
-        "target (at some trial up to the budget; Kaplan–Meier estimate). The range runs from the budget "
-        "where the upper edge of the 95 % band reaches that level to where its lower edge does. "
+        f"<p>The smallest budget at which at least {_fmt_pct(success)} % of simulated campaigns end within the "
+        "target: the recommendation a campaign holds after its last trial, which is what a team ships. "
+        "The range runs from the budget where the upper end of the share's 95 % interval (Clopper–Pearson) "
+        "reaches that level to where its lower end does. "
         "<b>To defend a budget in a proposal, quote the upper end of the range</b>: it allows for the "
-        "simulation's own uncertainty. A recommendation can get worse after it first met the target, so "
-        "this share can be higher than one minus the failure risk at the same budget.</p>"
+        "simulation's own uncertainty. The share need not rise with every trial, because a recommendation "
+        "can get worse again; a budget is reported only where the share is reached, and the next column "
+        "says from which trial on it stays at or above the level through every later simulated trial. "
+        "These are the same shares as in the results table and <code>simlab plan</code>.</p>"
         "<table><thead><tr><th>policy</th><th class='n'>budget</th><th class='n'>95 % range</th>"
-        "<th class='n'>share met by then [95 %]</th><th>status</th></tr></thead>"
-        f"<tbody>{''.join(rows)}</tbody></table></section>"
+        "<th class='n'>within target at that budget [95 %]</th><th class='n'>stays at or above from</th>"
+        "<th>status</th></tr></thead>"
+        f"<tbody>{''.join(rows)}</tbody></table>{horizon_note}</section>"
     )
 
 
@@ -713,10 +751,15 @@ def _cautions():
 
 def _files_section(has_pairs, has_figures, has_sweep=False):
     files = [
-        (SUMMARY, "regret, failure risk and CVaR-90 per policy and budget"),
-        (TRIALS_TO_TARGET, "Kaplan–Meier share that met the target by each trial, with its band"),
-        (TRIALS_TO_TARGET_SUMMARY, "median trials-to-target and the requested percentile, with ranges"),
-        (BUDGET_PLAN, "smallest budget for the requested success level, per policy"),
+        (SUMMARY, "regret, within-target share, failure risk and CVaR-90 per policy and budget"),
+        (WITHIN_TARGET, "share of campaigns within target after each trial, with its interval: budgets are "
+                        "planned on it"),
+        (BUDGET_PLAN, "smallest budget at which the requested share of campaigns ends within target, per policy"),
+        (TRIALS_TO_TARGET, "first passage (descriptive only): Kaplan–Meier share of campaigns whose "
+                           "recommendation had been within target at some trial so far; a real campaign cannot "
+                           "observe this"),
+        (TRIALS_TO_TARGET_SUMMARY, "first passage (descriptive only): trials until half, and the requested "
+                                   "share, of campaigns had first been within target"),
     ]
     if has_pairs:
         files += [(PAIRWISE, "paired comparison of every two policies at the largest budget"),

@@ -1,4 +1,4 @@
-"""Figures of a study's results: regret, failure risk, trials-to-target, comparisons, the sweep."""
+"""Figures of a study's results: regret, failure risk, within-target share, first passage, comparisons, the sweep."""
 
 from __future__ import annotations
 
@@ -6,6 +6,7 @@ __all__ = [
     "policy_colors",
     "regret_figure",
     "failure_figure",
+    "within_target_figure",
     "reach_figure",
     "final_regret_figure",
     "win_rate_figure",
@@ -295,8 +296,71 @@ def failure_figure(summary, *, colors=None, ax=None):
     return fig
 
 
+def _share_steps(ax, frame, columns, labels, colors):
+    """Step curves of a share per policy with its band; a share holds from its trial to the next."""
+    value, low, high = columns
+    styles = _linestyles(labels)
+    for label in labels:
+        rows = frame[frame["policy"].astype(str) == label].sort_values("trial")
+        t = rows["trial"].to_numpy(dtype=float)
+        # A share holds from its trial until the next one: draw the last step half a trial wide.
+        t_ext = np.append(t, t[-1] + 0.5)
+
+        def ext(column, rows=rows):
+            v = rows[column].to_numpy(dtype=float)
+            return np.append(v, v[-1])
+
+        ax.fill_between(t_ext, ext(low), ext(high), step="post", color=colors[label],
+                        alpha=_band_alpha(labels), lw=0)
+        ax.step(t_ext, ext(value), where="post", color=colors[label], ls=styles[label], lw=1.8, label=_shown(label))
+    trials = frame["trial"].to_numpy(dtype=float)
+    ax.set_xlim(trials.min() - 0.5, trials.max() + 0.5)
+    ax.set_ylim(-0.02, 1.02)
+    _percent_axis(ax.yaxis)
+    ax.grid(axis="y", color="#dddddd", lw=0.6)
+    ax.set_xlabel("trial")
+
+
+def within_target_figure(within, *, success=0.9, budgets=(), colors=None, ax=None):
+    """Share of campaigns whose recommendation after each trial is within target, with its 95 % band.
+
+    Parameters
+    ----------
+    within : DataFrame
+        `simlab.metrics.within_target_curves` output (``policy, trial, within_target,
+        within_low, within_high``).
+    success : float, default 0.9
+        Requested success level, drawn as a horizontal line.
+    budgets : sequence of int, default ()
+        The study's budgets, drawn as dotted vertical lines.
+    colors : dict, optional
+        `policy_colors` mapping.
+    ax : matplotlib Axes, optional
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    _check_columns(within, "within", ("policy", "trial", "within_target", "within_low", "within_high"))
+    labels = _policies_in(within)
+    colors = _colors_for(labels, colors)
+    fig, ax = _new_axes(ax, (_KIND_WIDTH, 4.2))
+    for b in budgets:
+        ax.axvline(b, color="#999999", lw=0.8, ls=":")
+    _share_steps(ax, within, ("within_target", "within_low", "within_high"), labels, colors)
+    ax.axhline(success, color="#000000", lw=1.0, ls="--", label=f"requested success ({success:.0%})")
+    ax.set_ylabel("share of campaigns within target\n(recommendation after the trial)")
+    ax.set_title("Within target after each trial (what a team stopping there ships; 95 % Clopper-Pearson band)",
+                 fontsize=10, loc="left")
+    _legend_outside(ax)
+    return fig
+
+
 def reach_figure(reach, *, success=0.9, colors=None, ax=None):
-    """Kaplan-Meier share of campaigns that have met the target by each trial, with its band.
+    """First passage: Kaplan-Meier share of campaigns whose recommendation was within target at some trial so far.
+
+    Descriptive only (a real campaign cannot observe its first passage); budgets are
+    planned on `within_target_figure`'s share.
 
     Parameters
     ----------
@@ -316,30 +380,11 @@ def reach_figure(reach, *, success=0.9, colors=None, ax=None):
     _check_columns(reach, "reach", ("policy", "trial", "reached", "reached_low", "reached_high"))
     labels = _policies_in(reach)
     colors = _colors_for(labels, colors)
-    styles = _linestyles(labels)
     fig, ax = _new_axes(ax, (_KIND_WIDTH, 4.2))
-    for label in labels:
-        rows = reach[reach["policy"].astype(str) == label].sort_values("trial")
-        t = rows["trial"].to_numpy(dtype=float)
-        # A share holds from its trial until the next one: draw the last step half a trial wide.
-        t_ext = np.append(t, t[-1] + 0.5)
-
-        def ext(column, rows=rows):
-            v = rows[column].to_numpy(dtype=float)
-            return np.append(v, v[-1])
-
-        ax.fill_between(t_ext, ext("reached_low"), ext("reached_high"), step="post", color=colors[label],
-                        alpha=_band_alpha(labels), lw=0)
-        ax.step(t_ext, ext("reached"), where="post", color=colors[label], ls=styles[label], lw=1.8, label=_shown(label))
+    _share_steps(ax, reach, ("reached", "reached_low", "reached_high"), labels, colors)
     ax.axhline(success, color="#000000", lw=1.0, ls="--", label=f"requested success ({success:.0%})")
-    trials = reach["trial"].to_numpy(dtype=float)
-    ax.set_xlim(trials.min() - 0.5, trials.max() + 0.5)
-    ax.set_ylim(-0.02, 1.02)
-    _percent_axis(ax.yaxis)
-    ax.grid(axis="y", color="#dddddd", lw=0.6)
-    ax.set_xlabel("trial")
-    ax.set_ylabel("share of campaigns that met the target")
-    ax.set_title("Trials to target (Kaplan-Meier, 95 % band; campaigns that never meet it are censored)",
+    ax.set_ylabel("share of campaigns that were\nwithin target at some trial so far")
+    ax.set_title("First passage (descriptive: a real campaign cannot observe it; Kaplan-Meier, 95 % band)",
                  fontsize=10, loc="left")
     _legend_outside(ax)
     return fig

@@ -11,7 +11,7 @@ import pandas as pd
 
 from . import compare, metrics
 from .page import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
-                   TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, _FIGURE_STEMS, render)
+                   TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, _FIGURE_STEMS, render)
 from .store import atomic_write
 
 @dataclass(frozen=True)
@@ -27,17 +27,18 @@ class ReportFiles:
     choice: Path | None
     report: Path
     figures: tuple[Path, ...] = field(default=())
+    within_target: Path | None = None   # within_target.csv (always written; a default keeps old callers working)
 
     def paths(self) -> tuple[Path, ...]:
         """Every file written, CSVs first, then figures, then the report."""
-        tables = (self.summary, self.trials_to_target, self.trials_to_target_summary, self.budget_plan,
-                  self.pairwise, self.choice)
+        tables = (self.summary, self.within_target, self.trials_to_target, self.trials_to_target_summary,
+                  self.budget_plan, self.pairwise, self.choice)
         return tuple(p for p in tables if p is not None) + self.figures + (self.report,)
 
 
 def report_steps(*, figures=True):
     """Number of times :func:`write_outputs` calls its `progress` callback."""
-    return 6 + (len(_FIGURE_STEMS) if figures else 0) + 1
+    return 7 + (len(_FIGURE_STEMS) if figures else 0) + 1
 
 
 # ---------------------------------------------------------------------------
@@ -69,8 +70,11 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     -------
     ReportFiles
         Paths of ``summary.csv`` (`simlab.metrics.budget_summary` over the study's
-        budgets), ``trials_to_target.csv`` (`reach_curves`), ``trials_to_target_summary.csv``
-        (`trials_to_target_summary`, median and 90th percentile), ``budget_plan.csv``,
+        budgets), ``within_target.csv`` (`within_target_curves`: the share of campaigns
+        whose recommendation after each trial is within target, which budgets are
+        planned on), ``budget_plan.csv`` (`budget_plan`), the secondary first-passage
+        tables ``trials_to_target.csv`` (`reach_curves`) and ``trials_to_target_summary.csv``
+        (`trials_to_target_summary`, median and the success level),
         ``pairwise.csv`` (at the largest budget) and ``choice.csv`` (both only with two
         or more policies), the figures and ``report.html``.
 
@@ -95,6 +99,9 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     tables = {}
     tables[SUMMARY] = metrics.budget_summary(traces, budgets=budgets, target=target, seed=seed)
     paths = {SUMMARY: _write_csv(tables[SUMMARY], SUMMARY)}
+    step(1)
+    tables[WITHIN_TARGET] = metrics.within_target_curves(traces, target=target)
+    paths[WITHIN_TARGET] = _write_csv(tables[WITHIN_TARGET], WITHIN_TARGET)
     step(1)
     tables[TRIALS_TO_TARGET] = metrics.reach_curves(traces, target=target)
     paths[TRIALS_TO_TARGET] = _write_csv(tables[TRIALS_TO_TARGET], TRIALS_TO_TARGET)
@@ -140,6 +147,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
         trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
         pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
+        within_target=paths[WITHIN_TARGET],
     )
 
 
@@ -160,6 +168,8 @@ def _figures(study, traces, tables, *, success, seed):
                                         initial=study.campaign.initial, colors=colors)
     yield "regret_rounds", _rounds_figure(study, traces, colors, seed) if study.campaign.batch > 1 else None
     yield "failure_risk", plots.failure_figure(tables[SUMMARY], colors=colors)
+    yield "within_target", plots.within_target_figure(tables[WITHIN_TARGET], success=success,
+                                                      budgets=study.campaign.budgets, colors=colors)
     yield "trials_to_target", plots.reach_figure(tables[TRIALS_TO_TARGET], success=success, colors=colors)
     final = metrics.regret_at_budget(traces, budget=horizon)
     yield "final_regret", plots.final_regret_figure(final, target=study.target, budget=horizon, colors=colors)

@@ -99,13 +99,17 @@ def test_files_and_their_contract_columns(written):
     for path in files.paths():
         assert path.is_file() and path.stat().st_size > 0, path
     assert {p.name for p in files.figures} == {f"{stem}.{ext}" for ext in ("png", "svg") for stem in
-                                               ("regret", "failure_risk", "trials_to_target", "final_regret",
-                                                "win_rates", "snapshot")}
+                                               ("regret", "failure_risk", "within_target", "trials_to_target",
+                                                "final_regret", "win_rates", "snapshot")}
     summary = pd.read_csv(files.summary)
     assert {"policy", "budget", "replicates", "regret_median", "regret_q25", "regret_q75", "failure_risk",
             "failure_low", "failure_high", "cvar90"} <= set(summary.columns)
     assert sorted(summary["budget"].unique()) == [5, 8]
     assert {"policy", "trial", "reached", "reached_low", "reached_high"} <= set(pd.read_csv(files.trials_to_target))
+    assert {"within_target", "within_low", "within_high"} <= set(summary.columns)
+    within = pd.read_csv(files.within_target)
+    assert list(within.columns) == ["policy", "trial", "replicates", "campaigns_within", "within_target",
+                                    "within_low", "within_high", "horizon", "horizon_aware"]
     assert pd.read_csv(files.pairwise)["budget"].eq(8).all()  # the largest budget
     # Nothing half-written is left behind, and every step reported progress.
     leftovers = [p for p in files.folder.rglob("*") if p.name.endswith(".tmp")]
@@ -120,6 +124,24 @@ def test_failure_risk_in_summary_matches_a_naive_count(written):
     for row in summary.itertuples():
         at = traces[(traces["policy"].astype(str) == row.policy) & (traces["trial"] == row.budget)]
         assert row.failure_risk == pytest.approx(float(np.mean(at["regret"].to_numpy() > TARGET)), abs=1e-15)
+
+
+def test_budget_figures_agree_across_files(written):
+    """The plan, the within-target table and the summary give one share per (policy, budget)."""
+    _, traces, files, _ = written
+    within = pd.read_csv(files.within_target).set_index(["policy", "trial"])
+    summary = pd.read_csv(files.summary).set_index(["policy", "budget"])
+    for (policy, budget), row in summary.iterrows():
+        for column in ("within_target", "within_low", "within_high"):
+            assert row[column] == within.at[(policy, budget), column]
+        assert row["failure_risk"] == pytest.approx(1 - row["within_target"], abs=1e-15)
+    for row in pd.read_csv(files.budget_plan).itertuples():
+        trial = row.budget if not pd.isna(row.budget) else row.last_trial
+        cell = within.loc[(row.policy, int(trial))]
+        assert (row.share, row.share_low, row.share_high) == (cell.within_target, cell.within_low, cell.within_high)
+        # recomputed from the traces: the share of campaigns with regret <= target after that trial
+        at = traces[(traces["policy"].astype(str) == row.policy) & (traces["trial"] == int(trial))]
+        assert row.share == pytest.approx(float(np.mean(at["regret"].to_numpy() <= TARGET)), abs=1e-15)
 
 
 def test_a_policy_that_never_reaches_is_not_given_a_number(written, page):
@@ -170,7 +192,7 @@ def test_every_tagged_number_equals_its_csv_cell(written, page):
     assert checked > 100
     # Coverage: the headline cells of every row of these files are in the report.
     for name, columns in {"summary.csv": ("regret_median", "failure_risk", "failure_low", "failure_high",
-                                          "cvar90"),
+                                          "within_target", "within_low", "within_high", "cvar90", "cvar90_low"),
                           "choice.csv": ("leader", "leader_value", "runner_up_value", "lead", "evidence"),
                           "budget_plan.csv": ("policy", "budget", "share", "status"),
                           "pairwise.csv": ("win_rate", "regret_p_holm", "failure_p_holm")}.items():
@@ -195,12 +217,13 @@ def test_choice_sentences_say_clear_or_tie(written, page):
 # ---------------------------------------------------------------------------
 def test_report_is_self_contained_and_escaped(page):
     parsed = _parse(page)
-    assert "http" not in page.lower()          # no links, no external references at all
+    # no links, no external references at all (embedded PNG data can spell "http" by chance in base64)
+    assert "http" not in re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "", page).lower()
     assert "@import" not in page and "url(" not in page and "@font-face" not in page
     tags = [t for t, _ in parsed.tags]
     assert "script" not in tags and "link" not in tags and "iframe" not in tags
     images = [a for t, a in parsed.tags if t == "img"]
-    assert len(images) == 6
+    assert len(images) == 7
     for attrs in images:
         assert attrs["src"].startswith("data:image/png;base64,")
         assert base64.b64decode(attrs["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
@@ -229,8 +252,8 @@ def test_report_states_question_assumptions_and_cautions(written, page):
 def test_rebuilding_gives_the_same_files(written, tmp_path):
     study, traces, files, _ = written
     again = write_outputs(tmp_path, study, traces)
-    for name in ("summary.csv", "trials_to_target.csv", "budget_plan.csv", "pairwise.csv", "choice.csv",
-                 "report.html"):
+    for name in ("summary.csv", "within_target.csv", "trials_to_target.csv", "budget_plan.csv", "pairwise.csv",
+                 "choice.csv", "report.html"):
         assert (tmp_path / name).read_bytes() == (files.folder / name).read_bytes(), name
     assert again.report == tmp_path / "report.html"
 
@@ -317,7 +340,7 @@ def test_report_renders_in_headless_chromium_with_no_broken_image(written, page,
                     url=probe.as_uri())
     found = re.search(r"images=(\d+) broken=(\d+)", out.stdout)
     assert found, out.stderr[-2000:]
-    assert found.groups() == ("6", "0")
+    assert found.groups() == ("7", "0")
     # The report itself: a screenshot with ink on it, and a multi-page PDF print.
     shot, pdf = tmp_path / "report.png", tmp_path / "report.pdf"
     _headless(binary, tmp_path / "profile-b", f"--screenshot={shot}", "--window-size=1200,3000",

@@ -53,6 +53,8 @@ def figures(run, colors):
                                       colors=colors),
         "failure": plots.failure_figure(summary, colors=colors),
         "reach": plots.reach_figure(metrics.reach_curves(traces, target=study.target), colors=colors),
+        "within": plots.within_target_figure(metrics.within_target_curves(traces, target=study.target),
+                                             budgets=study.campaign.budgets, colors=colors),
         "final": plots.final_regret_figure(metrics.regret_at_budget(traces, budget=horizon), target=study.target,
                                            budget=horizon, colors=colors),
         "win": plots.win_rate_figure(compare.pairwise(traces, budget=horizon, target=study.target,
@@ -99,13 +101,14 @@ def test_every_figure_labels_its_axes(figures):
         assert axes[-1].get_xlabel().strip(), f"{name}: no x label"
     assert figures["regret"].axes[0].get_ylabel().startswith("simple regret (objective units)")
     assert figures["regret"].axes[0].get_xlabel() == "trial"
-    assert figures["reach"].axes[0].get_ylabel() == "share of campaigns that met the target"
+    assert figures["reach"].axes[0].get_ylabel() == "share of campaigns that were\nwithin target at some trial so far"
+    assert figures["within"].axes[0].get_ylabel().startswith("share of campaigns within target")
     assert figures["final"].axes[0].get_xlabel().startswith("simple regret (objective units)")
     assert figures["snapshot"].axes[-1].get_xlabel() == "feed_rate"  # the user's input name
 
 
 def test_a_policy_keeps_its_colour_in_every_figure(figures, colors):
-    for name in ("regret", "failure", "reach"):
+    for name in ("regret", "failure", "reach", "within"):
         seen = _legend_colors(figures[name].axes[0])
         assert {k: v for k, v in seen.items() if k in LABELS} == {k: to_hex(colors[k]) for k in LABELS}, name
     # Snapshot: acquisition curves (scoring rules only) and next-input markers (every rule).
