@@ -141,13 +141,15 @@ def build_parser() -> argparse.ArgumentParser:
                         help="chance of meeting the target for the budget plan and choice table (default 0.9)")
     report.add_argument("--quiet", action="store_true", help="no progress bar")
 
-    plan = sub.add_parser("plan", help="smallest budget that meets the target with the requested chance",
+    plan = sub.add_parser("plan", help="smallest budget at which the requested share of campaigns ends within target",
                           description="Print, for each policy, the smallest budget at which the share of simulated "
-                          "campaigns meeting the target reaches --success, with its 95 %% range. Uses the stored "
-                          "results of the study if they exist, otherwise runs it first.",
+                          "campaigns whose recommendation after the budget's last trial is within the target "
+                          "reaches --success, with its 95 % range and the trial from which the share stays at or "
+                          "above --success. Uses the stored results of the study if they exist, otherwise runs "
+                          "it first.",
                           epilog=_EPILOG_PLAN, formatter_class=argparse.RawDescriptionHelpFormatter)
     plan.add_argument("study", metavar="STUDY.toml")
-    plan.add_argument("--success", type=_share, default=0.9, metavar="P", help="requested chance (default 0.9)")
+    plan.add_argument("--success", type=_share, default=0.9, metavar="P", help="requested share of campaigns within target (default 0.9)")
     plan.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="worker processes if the study must run")
     plan.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
     plan.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
@@ -348,11 +350,11 @@ def _plan(args) -> int:
     print(header)
     print("-" * len(header))
     for row in plan.itertuples():
-        chance = _share(row.share, row.share_low, row.share_high)
+        chance = _pct_interval(row.share, row.share_low, row.share_high)
         if row.status == "reached":
             conservative = _int(row.budget_conservative, above=row.last_trial)
             span = f"{_int(row.budget_optimistic, above=row.last_trial)} to {conservative}"
-            stays = "dips again" if pd.isna(row.budget_sustained) else f"{int(row.budget_sustained)}"
+            stays = "not held" if pd.isna(row.budget_sustained) else f"{int(row.budget_sustained)}"
             print(f"{str(row.policy)[:20]:<20} {_int(row.budget, above=row.last_trial):>7}  {span:<36} "
                   f"{chance:>30}  {stays:>10}")
         else:
@@ -360,7 +362,8 @@ def _plan(args) -> int:
                   f"({chance} after trial {row.last_trial})")
     print("\n'conservative' is where the lower end of the share's 95 % interval (Clopper-Pearson) reaches the "
           "level: the budget to defend in a proposal. The share need not rise with every trial; 'stays from' "
-          "is the first trial from which it stays at or above the level through the last simulated trial.")
+          "is the first trial from which it stays at or above the level through the last simulated trial "
+          "('not held': it falls below again).")
     aware = [str(p) for p, a in zip(plan["policy"], plan["horizon_aware"]) if a]
     if aware:
         print(f"{', '.join(aware)}: replayed once per study budget ({', '.join(map(str, study.campaign.budgets))}); "
@@ -368,7 +371,7 @@ def _plan(args) -> int:
     return 0
 
 
-def _share(value, low, high) -> str:
+def _pct_interval(value, low, high) -> str:
     """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
     from .page import _fmt_pct
     return f"{_fmt_pct(value)} % [{_fmt_pct(low)}-{_fmt_pct(high)} %]"
@@ -388,6 +391,6 @@ def _format_table(study, summary) -> str:
     lines += [header, "-" * len(header)]
     for row in summary.itertuples():
         band = f"{row.regret_median:.3g} [{row.regret_q25:.3g}, {row.regret_q75:.3g}]"
-        within = _share(row.within_target, row.within_low, row.within_high)
+        within = _pct_interval(row.within_target, row.within_low, row.within_high)
         lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<30} {within:>28}")
     return "\n".join(lines)

@@ -666,7 +666,8 @@ def _plan_section(study, plan, success):
             budget = plan.span(i, "budget", "int")
             span = _trials_range(plan, i, "budget_optimistic", "budget_conservative", last)
             share = plan.pct(i, "share", "share_low", "share_high")
-            stays = plan.span(i, "budget_sustained", "int", missing=f"dips again by trial {last}")
+            stays = (f"not held: below again by trial {last}" if _missing(plan.value(i, "budget_sustained"))
+                     else plan.span(i, "budget_sustained", "int"))
         rows.append(f"<tr><td>{plan.text(i, 'policy')}</td><td class='n'>{budget}</td><td class='n'>{span}</td>"
                     f"<td class='n'>{share}</td><td class='n'>{stays}</td><td>{plan.text(i, 'status')}</td></tr>")
     aware = [str(p) for p, a in zip(frame["policy"], frame.get("horizon_aware", [False] * len(frame))) if a]

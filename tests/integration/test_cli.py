@@ -93,3 +93,42 @@ def test_run_check_report(tmp_path):
     assert any(line.startswith("ei") and f"{med:.3g}" in line for line in out.stdout.splitlines())
     again = simlab("report", folder, cwd=tmp_path)
     assert again.returncode == 0 and f"{med:.3g}" in again.stdout
+
+
+def test_plan_and_printed_table_show_the_shares_of_the_files(tmp_path):
+    """`simlab plan` and the run's table print the within-target share of budget_plan.csv / summary.csv."""
+    import re
+
+    (tmp_path / "s.toml").write_text(SMALL.replace("replicates = 2", "replicates = 6"))
+    run = simlab("run", "s.toml", "--quiet", cwd=tmp_path)
+    assert run.returncode == 0, run.stderr
+    folder = tmp_path / "results" / "cli-small"
+    out = simlab("plan", "s.toml", "--success", "0.5", "--quiet", cwd=tmp_path)
+    assert out.returncode == 0, out.stderr
+    assert "using stored results" in out.stderr
+    traces = pd.read_parquet(folder / "traces.parquet")
+
+    def pct(v):  # the report's percentage format (simlab.page._fmt_pct), written out again
+        v = 100 * float(v)
+        return f"{v:.1f}" if (0 < v < 1 or 99 < v < 100) else f"{v:.0f}"
+
+    def share(policy, trial):
+        at = traces[(traces["policy"] == policy) & (traces["trial"] == trial)]["regret"]
+        return float((at <= 0.1).mean())  # the study's target
+
+    lines = {line.split()[0]: line for line in out.stdout.splitlines() if line.startswith(("ei ", "random "))}
+    assert set(lines) == {"ei", "random"}
+    for policy, line in lines.items():
+        shares = [share(policy, t) for t in range(1, 7)]
+        first = next((t for t, s in enumerate(shares, start=1) if s >= 0.5), None)
+        if first is None:
+            assert "not reached within 6 trials" in line and f"{pct(shares[-1])} %" in line
+        else:
+            assert re.match(rf"^{policy} +{first} ", line), line
+            assert f"{pct(shares[first - 1])} % [" in line
+    summary = pd.read_csv(folder / "summary.csv")
+    for row in summary.itertuples():
+        printed = f"{pct(row.within_target)} % [{pct(row.within_low)}-{pct(row.within_high)} %]"
+        assert row.within_target == share(row.policy, row.budget)
+        assert any(line.startswith(row.policy) and f" {row.budget} " in line and line.endswith(printed)
+                   for line in run.stdout.splitlines()), printed
