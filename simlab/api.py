@@ -31,8 +31,9 @@ class StudyResult:
         return self.traces[self.traces["trial"] == budget]
 
     def summary(self, *, seed: int = 0) -> pd.DataFrame:
-        """One row per policy and budget: median regret (bootstrap interval), quartiles,
-        failure risk (Wilson interval) and CVaR-90; see :func:`simlab.metrics.budget_summary`."""
+        """One row per policy and budget: median regret (order-statistic interval), quartiles,
+        within-target share and failure risk (Clopper-Pearson intervals) and CVaR-90 (with a
+        lower bound); see :func:`simlab.metrics.budget_summary`."""
         from .metrics import budget_summary
         return budget_summary(self.traces, budgets=list(self.study.campaign.budgets),
                               target=self.study.target, seed=seed)

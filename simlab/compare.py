@@ -279,7 +279,7 @@ def choice_table(
     alpha : float, default 0.05
         Familywise level of the paired tests.
     confidence_level : float, default 0.95
-        Level of the reported intervals and of the Kaplan-Meier bands.
+        Level of the reported intervals (for the trials attitude: of the within-target share).
     n_resamples : int, default 2000
         Bootstrap resamples.
     seed : int, numpy Generator or None, default 0
@@ -384,7 +384,7 @@ def choice_table(
         )
 
     ranked = sorted(policies, key=_trials_key)
-    criterion = f"trials until {success:.0%} of campaigns meet regret <= {target:g}"
+    criterion = f"trials until {success:.0%} of campaigns end with regret <= {target:g}"
     columns = ("budget", "budget_optimistic", "budget_conservative")
     if pd.isna(plan.at[ranked[0], "budget"]):
         last = int(plan["last_trial"].max())
