@@ -374,3 +374,28 @@ def test_sweep_section_numbers_equal_the_sweep_files(tmp_path):
     assert "Safest across the grid: " in page and html.escape(str(ranking["policy"].iloc[0])) in page
     checked, seen = _check_tagged_numbers(tmp_path, page)
     assert {("sweep/ranking.csv", r, "worst_failure_risk") for r in range(len(ranking))} <= seen
+
+
+def test_horizon_aware_policy_plan_uses_the_campaign_planned_for_each_budget(tmp_path):
+    """A rule that exploits its last trials is replayed per budget; the plan says which campaign it read."""
+    study = parse_study({
+        "study": {"name": "planned-ahead", "replicates": 6, "seed": 4},
+        "space": {"dose": [0.0, 1.0]},
+        "world": {"lengthscale": 0.2, "amplitude": 1.0, "noise": 0.05},
+        "campaign": {"initial": 2, "budgets": [4, 6], "pool": 64},
+        "target": {"regret": 0.2},
+        "policy": [{"rule": "ei", "label": "EI last", "exploit_last": 1}, {"rule": "random"}],
+    }, source="test")
+    traces = replay(study)
+    files = write_outputs(tmp_path, study, traces, figures=False, success=0.5)
+    within = pd.read_csv(files.within_target)
+    aware = within[within["policy"] == "EI last"]
+    assert list(aware["horizon"]) == [4, 4, 4, 4, 6, 6] and aware["horizon_aware"].all()
+    assert not within.loc[within["policy"] == "random", "horizon_aware"].any()
+    # the share at each study budget is that of the rows of the campaign planned for it
+    for b in (4, 6):
+        rows = traces[(traces["policy"] == "EI last") & (traces["trial"] == b)]
+        assert (rows["horizon"] == b).all()
+        assert aware.set_index("trial").at[b, "within_target"] == pytest.approx(float((rows["regret"] <= 0.2).mean()))
+    text = re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", files.report.read_text(encoding="utf-8")))
+    assert "EI last plans ahead for the budget" in text and "stopped early" in text
