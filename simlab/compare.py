@@ -74,9 +74,18 @@ def format_p(p):
 
 
 def _exact_bounds(k, n, confidence_level):
-    """Clopper-Pearson bounds of k successes in n (scipy.stats.binomtest ... method="exact")."""
-    ci = stats.binomtest(int(k), int(n)).proportion_ci(confidence_level=confidence_level, method="exact")
-    return ci.low, ci.high
+    """Clopper-Pearson bounds of k successes in n, elementwise.
+
+    The beta-quantile form (lower ``B(a/2; k, n-k+1)``, upper ``B(1-a/2; k+1, n-k)``,
+    0 and 1 at the ends) is what scipy.stats.binomtest(...).proportion_ci(method="exact")
+    computes one table at a time; written out here to do every pair in one call
+    (tests/unit/test_leads.py checks the two agree).
+    """
+    tail = (1.0 - confidence_level) / 2.0
+    with np.errstate(invalid="ignore"):
+        low = np.where(k > 0, stats.beta.ppf(tail, np.maximum(k, 1), n - k + 1), 0.0)
+        high = np.where(k < n, stats.beta.ppf(1.0 - tail, k + 1, np.maximum(n - k, 1)), 1.0)
+    return low, high
 
 
 def paired_difference_interval(only_a, only_b, n, *, confidence_level=0.95):
@@ -112,13 +121,10 @@ def paired_difference_interval(only_a, only_b, n, *, confidence_level=0.95):
     intervals (Wilson, Tango 1998) dip to 90 % there too: win rates near 1 are the common
     case when an adaptive rule meets random search.
     """
-    only_a, only_b, n = (np.asarray(v, dtype=int) for v in np.broadcast_arrays(only_a, only_b, n))
-    low, high = np.empty(n.shape), np.empty(n.shape)
-    for i in np.ndindex(n.shape):
-        low_a, high_a = _exact_bounds(only_a[i], n[i], confidence_level)
-        low_ab, high_ab = _exact_bounds(n[i] - only_b[i], n[i], confidence_level)
-        low[i], high[i] = low_a + low_ab - 1.0, high_a + high_ab - 1.0
-    return low, high
+    only_a, only_b, n = (np.asarray(v, dtype=float) for v in np.broadcast_arrays(only_a, only_b, n))
+    low_a, high_a = _exact_bounds(only_a, n, confidence_level)
+    low_ab, high_ab = _exact_bounds(n - only_b, n, confidence_level)
+    return low_a + low_ab - 1.0, high_a + high_ab - 1.0
 
 
 def median_interval(d, *, confidence_level=0.95):

@@ -220,7 +220,7 @@ def render(study, tables, images, *, success):
         _results(study, summary, reach, pairs, images, success),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
-        _sweep_section(study, sweep, images) if sweep is not None else "",
+        _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
         _limits(study),
         _cautions(),
         _files_section(pairs is not None, bool(images), sweep is not None),
@@ -237,9 +237,12 @@ def _number_sections(text):
     return re.sub(r"<h2>\d+\. ", lambda m: f"<h2>{next(counter)}. ", text)
 
 
-def _sweep_section(study, ranking, images):
+def _sweep_section(study, ranking, images, cells=None):
     """Robustness to a wrong prior: the misspecification sweep, if one was run."""
     frame = ranking.frame
+    # The sweep may have been run with --replicates: its own table says how many worlds.
+    worlds = (int(cells["replicates"].max()) if cells is not None and "replicates" in cells
+              else study.sweep.replicates)
     first = 0
     lead = str(frame.at[first, "lead"])
     verdict = ("its lead over the next policy is clear even at the pessimistic ends of the cells' intervals"
@@ -263,7 +266,7 @@ def _sweep_section(study, ranking, images):
     return (
         '<section id="sweep"><h2>0. Robustness to a wrong prior</h2>'
         f"<p>The study was replayed with the belief's lengthscales scaled by {_e(factors(sw.lengthscale))} and its "
-        f"amplitude by {_e(factors(sw.amplitude))}, on the same {sw.replicates} worlds in every cell, to see which "
+        f"amplitude by {_e(factors(sw.amplitude))}, on the same {worlds} worlds in every cell, to see which "
         "policy still meets the target when the team's prior is wrong.</p>"
         "<p>In each cell the best policy is the one with the lowest failure risk there; a policy's "
         "<i>shortfall</i> in the cell is how many percentage points of failure risk it gives away to that best "
@@ -644,7 +647,7 @@ def _clear_rule(study, success):
     return (
         "<p>“Clear” needs the leader to beat every other policy on the paired replicates, by a margin that "
         "matters. The three attitudes read the same campaigns, so they share one 5 % error budget "
-        f"(Bonferroni): each needs a Holm-adjusted p below {level:.3g}, and the budget plan's bands are "
+        f"(Bonferroni): each needs a Holm-adjusted p below {level:.2g}, and the budget plan's bands are "
         f"widened to {100 * (1 - level):.1f} % for the trials attitude. With policies that are really equally "
         "good, some “clear” lead then appears in at most about 5 % of studies. On top of that, for the typical "
         "outcome the 95 % interval of the median paired regret difference must lie beyond "
