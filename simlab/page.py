@@ -84,7 +84,8 @@ def _fmt_int(value):
 
 
 def _fmt_p(value):
-    return f"{float(value):.2g}"
+    """Two significant digits; "< 0.001" below 0.001 (compare.format_p)."""
+    return compare.format_p(float(value))
 
 
 _FORMATS = {"sig": _fmt_sig, "pct": _fmt_pct, "int": _fmt_int, "p": _fmt_p}
@@ -113,7 +114,7 @@ class _Cells:
         """The cell as ``<span class="v" data-src data-row data-col [data-unit]>text</span>``."""
         value = self.frame.at[row, column]
         unit = ' data-unit="%"' if kind == "pct" else ""
-        text = html.escape(missing) if _missing(value) else _FORMATS[kind](value)
+        text = html.escape(missing) if _missing(value) else html.escape(_FORMATS[kind](value))
         return (f'<span class="v" data-src="{self.name}" data-row="{row}" data-col="{html.escape(column)}"'
                 f'{unit}>{text}</span>')
 
@@ -220,7 +221,7 @@ def render(study, tables, images, *, success):
         _results(study, summary, reach, pairs, images, success),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
-        _sweep_section(study, sweep, images) if sweep is not None else "",
+        _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
         _limits(study),
         _cautions(),
         _files_section(pairs is not None, bool(images), sweep is not None),
@@ -237,35 +238,52 @@ def _number_sections(text):
     return re.sub(r"<h2>\d+\. ", lambda m: f"<h2>{next(counter)}. ", text)
 
 
-def _sweep_section(study, ranking, images):
+def _sweep_section(study, ranking, images, cells=None):
     """Robustness to a wrong prior: the misspecification sweep, if one was run."""
     frame = ranking.frame
+    # The sweep may have been run with --replicates: its own table says how many worlds.
+    worlds = (int(cells["replicates"].max()) if cells is not None and "replicates" in cells
+              else study.sweep.replicates)
     first = 0
     lead = str(frame.at[first, "lead"])
-    verdict = ("its lead over the next policy is statistically clear" if lead == "clear" else
-               "its lead is not statistically clear (the worst-cell intervals overlap), so treat the "
-               "top policies as a tie and consider more replicates")
+    verdict = ("its lead over the next policy is clear even at the pessimistic ends of the cells' intervals"
+               if lead == "clear" else
+               "its lead is not clear once each cell's 95 % intervals are allowed for, so treat the top "
+               "policies as a tie and consider more replicates")
     rows = "".join(
         f"<tr><td>{ranking.text(i, 'rank')}</td><td>{ranking.text(i, 'policy')}</td>"
-        f"<td class='num'>{ranking.pct(i, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high')}</td>"
-        f"<td class='num'>×{ranking.span(i, 'worst_lengthscale_factor', 'sig')}, "
+        f"<td class='n'>{ranking.span(i, 'worst_shortfall', 'pct')} points"
+        f"<span class='ci'>at ×{ranking.span(i, 'shortfall_lengthscale_factor', 'sig')}, "
+        f"×{ranking.span(i, 'shortfall_amplitude_factor', 'sig')} (best there: "
+        f"{ranking.text(i, 'shortfall_best_policy')})</span></td>"
+        f"<td class='n'>{ranking.pct(i, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high', stacked=True)}</td>"
+        f"<td class='n'>×{ranking.span(i, 'worst_lengthscale_factor', 'sig')}, "
         f"×{ranking.span(i, 'worst_amplitude_factor', 'sig')}</td>"
-        f"<td class='num'>{ranking.span(i, 'mean_failure_risk', 'pct')} %</td>"
-        f"<td class='num'>{ranking.span(i, 'correct_belief_failure_risk', 'pct')} %</td></tr>"
+        f"<td class='n'>{ranking.span(i, 'mean_failure_risk', 'pct')} %</td>"
+        f"<td class='n'>{ranking.span(i, 'correct_belief_failure_risk', 'pct')} %</td></tr>"
         for i in range(len(frame)))
     sw = study.sweep
     factors = lambda v: ", ".join(f"×{x:g}" for x in v)
     return (
         '<section id="sweep"><h2>0. Robustness to a wrong prior</h2>'
         f"<p>The study was replayed with the belief's lengthscales scaled by {_e(factors(sw.lengthscale))} and its "
-        f"amplitude by {_e(factors(sw.amplitude))}, on the same {sw.replicates} worlds in every cell, to see which "
+        f"amplitude by {_e(factors(sw.amplitude))}, on the same {worlds} worlds in every cell, to see which "
         "policy still meets the target when the team's prior is wrong.</p>"
-        f"<p><strong>Safest across the grid: {ranking.text(first, 'policy')}</strong> — the lowest worst-cell "
-        f"failure risk ({ranking.pct(first, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high')}) "
-        f"after {study.campaign.horizon} trials; {_e(verdict)}.</p>"
-        "<table><thead><tr><th>rank</th><th>policy</th><th>worst failure risk<br><small>[95 % Wilson]</small></th>"
-        "<th>worst cell<br><small>(lengthscale, amplitude)</small></th><th>mean over the grid</th>"
-        "<th>with the study's own belief</th></tr></thead>"
+        "<p>In each cell the best policy is the one with the lowest failure risk there; a policy's "
+        "<i>shortfall</i> in the cell is how many percentage points of failure risk it gives away to that best "
+        "policy. The safest policy is the one whose largest shortfall over the grid is smallest (minimax "
+        "regret, Savage 1951): whichever way the belief is wrong, choosing it costs least against the choice "
+        "that would have been best. The raw worst cell is shown beside it; ranking on it alone can favour a "
+        "policy that is mediocre everywhere, such as random search.</p>"
+        f"<p><strong>Safest across the grid: {ranking.text(first, 'policy')}</strong> — it falls at most "
+        f"{ranking.span(first, 'worst_shortfall', 'pct')} percentage points short of the best policy of any "
+        f"cell after {study.campaign.horizon} trials (its worst failure risk is "
+        f"{ranking.pct(first, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high')}); "
+        f"{_e(verdict)}.</p>"
+        "<table><thead><tr><th>rank</th><th>policy</th><th class='n'>worst shortfall<br><small>against the "
+        "cell's best</small></th><th class='n'>worst failure risk<br><small>[95 % interval]</small></th>"
+        "<th class='n'>worst cell<br><small>(lengthscale, amplitude)</small></th><th class='n'>mean over the grid</th>"
+        "<th class='n'>with the study's own belief</th></tr></thead>"
         f"<tbody>{rows}</tbody></table>"
         + (_figure(images, "sweep", "Failure risk over the misspecification grid",
                    "Failure risk after the largest budget in each cell of the grid, one panel per policy.")
@@ -484,6 +502,7 @@ def _pairwise_table(pairs):
             f"<td class='n'>{pairs.pct(i, 'win_rate', 'win_rate_low', 'win_rate_high', stacked=True)}</td>"
             f"<td class='n'>{pairs.sig(i, 'median_difference', 'median_difference_low', 'median_difference_high', stacked=True)}</td>"
             f"<td>{pairs.text(i, 'regret_favours')}</td>"
+            f"<td class='n'>{pairs.span(i, 'sign_p_holm', 'p')}</td>"
             f"<td class='n'>{pairs.span(i, 'regret_p_holm', 'p')}</td>"
             f"<td class='n'>{pairs.span(i, 'failures_only_a', 'int')} / {pairs.span(i, 'failures_only_b', 'int')}</td>"
             f"<td class='n'>{pairs.span(i, 'failure_p_holm', 'p')}</td></tr>"
@@ -491,7 +510,8 @@ def _pairwise_table(pairs):
     return (
         "<table><thead><tr><th>policy A</th><th>policy B</th>"
         "<th class='n'>A wins<span class='ci'>[95 % interval]</span></th>"
-        "<th class='n'>median regret A − B<span class='ci'>[95 % interval]</span></th><th>favoured</th><th class='n'>Wilcoxon p (Holm)</th>"
+        "<th class='n'>median regret A − B<span class='ci'>[95 % interval]</span></th><th>favoured</th>"
+        "<th class='n'>sign test p (Holm)</th><th class='n'>Wilcoxon p (Holm)</th>"
         "<th class='n'>only A / only B miss</th><th class='n'>McNemar p (Holm)</th></tr></thead>"
         f"<tbody>{''.join(rows)}</tbody></table>"
     )
@@ -549,13 +569,15 @@ def _results(study, summary, reach, pairs, images, success):
         parts += [
             f"<h3>Policies compared on the same worlds (after {horizon} trials)</h3>",
             ("<p>Every policy met the same worlds, so policies are compared replicate by replicate. "
-             "“A wins” is the share of worlds where A ends with lower regret (ties count half). "
-             "p-values are Holm-adjusted over all pairs: Wilcoxon signed-rank for regret, McNemar's exact "
-             "test for missing the target.</p>"),
+             "“A wins” is the share of worlds where A ends with lower regret (ties count half), with "
+             "an exact (Clopper–Pearson-based) interval; the median regret difference has a distribution-free (order-statistic) "
+             "interval. p-values are Holm-adjusted over all pairs: the exact sign test of A's wins against "
+             "B's (ties left out) for the win rate, Wilcoxon signed-rank for regret, McNemar's exact test "
+             "for missing the target.</p>"),
             _pairwise_table(pairs),
             _figure(images, "win_rates", "Pairwise win-rate matrix",
                     "Share of worlds where the row policy ends with lower regret than the column policy; "
-                    "a star marks a Holm-adjusted Wilcoxon p below 0.05."),
+                    "a star marks a Holm-adjusted sign-test p below 0.05 (wins against losses, ties left out)."),
         ]
     parts.append(_figure(
         images, "snapshot", "Campaign snapshot of one replicate",
@@ -636,11 +658,28 @@ def _choice_section(study, summary, choice, success):
             s = f"<b>{_e(attitude)}</b> ({choice.text(i, 'criterion')}): {leader}; runner-up {runner}."
         sentences.append(f"<li>{s}{_lead_sentence(choice, i)}</li>")
     parts.append(f'<ul class="choice">{"".join(sentences)}</ul>')
-    parts.append("<p>“Clear” needs the leader to beat every other policy on the paired replicates "
-                 "(Holm-adjusted p below 0.05; for trials, non-overlapping 95 % ranges). Otherwise the report "
-                 "says “tie”: more replicates may separate the policies, or they may be equally good.</p>")
+    parts.append(_clear_rule(study, success))
     parts.append("</section>")
     return "".join(parts)
+
+
+def _clear_rule(study, success):
+    """What "clear" means in the choice table, with the study's own thresholds."""
+    level = 0.05 / len(compare._ATTITUDES)
+    return (
+        "<p>“Clear” needs the leader to beat every other policy on the paired replicates, by a margin that "
+        "matters. The three attitudes read the same campaigns, so they share one 5 % error budget "
+        f"(Bonferroni): each needs a Holm-adjusted p below {level:.2g}, and the budget plan's bands are "
+        f"widened to {100 * (1 - level):.1f} % for the trials attitude. With policies that are really equally "
+        "good, some “clear” lead then appears in at most about 5 % of studies. On top of that, for the typical "
+        "outcome the 95 % interval of the median paired regret difference must lie beyond "
+        f"<b>{_num(study.lead_difference)}</b> objective units (<code>[target] difference</code>), and for "
+        "failure risk the 95 % interval of the paired difference in failure shares must lie beyond "
+        f"{_num(100 * (1 - success) / 10)} percentage points (a tenth of the {_fmt_pct(1 - success)} % failure "
+        "risk accepted); for trials the ranges must be apart, i.e. by at least one whole trial. Otherwise the "
+        "report says “tie” and gives the reason: more replicates may separate the policies, the difference may "
+        "be too small to act on, or they may be equally good.</p>"
+    )
 
 
 def _choice_trials(choice, i, who, horizon):
@@ -767,7 +806,8 @@ def _files_section(has_pairs, has_figures, has_sweep=False):
                   (CHOICE, "the leading policy under each attitude to risk")]
     if has_sweep:
         files += [(SWEEP_SUMMARY, "failure risk and median regret per policy, budget and cell of the sweep"),
-                  (SWEEP_RANKING, "policies ranked by their worst failure risk over the sweep")]
+                  (SWEEP_RANKING, "policies ranked by their worst shortfall against each cell's best policy "
+                                  "(minimax regret), with the raw worst cell")]
     if has_figures:
         files.append((f"{FIGURES}/", "every figure as PNG and SVG"))
     items = "".join(f"<li><code>{_e(name)}</code>: {_e(what)}</li>" for name, what in files)

@@ -291,7 +291,7 @@ def failure_figure(summary, *, colors=None, ax=None):
     ax.grid(axis="y", color="#dddddd", lw=0.6)
     ax.set_xlabel("budget (trials)")
     ax.set_ylabel("failure risk\n(share of campaigns above the target)")
-    ax.set_title("Failure risk at each budget, with 95 % Wilson intervals", fontsize=10, loc="left")
+    ax.set_title("Failure risk at each budget, with exact 95 % intervals (Clopper–Pearson)", fontsize=10, loc="left")
     _legend_outside(ax)
     return fig
 
@@ -452,9 +452,9 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
     ----------
     pairs : DataFrame
         `simlab.compare.pairwise` output (``policy_a, policy_b, budget, win_rate,
-        regret_p_holm``).
+        sign_p_holm``).
     alpha : float, default 0.05
-        Cells whose Holm-adjusted Wilcoxon p-value is below it get a star.
+        Cells whose Holm-adjusted sign-test p-value is below it get a star.
     colors : dict, optional
         `policy_colors` mapping, used for the tick labels.
     ax : matplotlib Axes, optional
@@ -466,10 +466,12 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
     Notes
     -----
     Ties count half to each policy, so cell (a, b) and cell (b, a) add up to 100 %.
+    A star tests the number shown: the two-sided exact sign test of wins against losses
+    (ties excluded; scipy.stats.binomtest), Holm-adjusted over the pairs of the matrix.
     """
     import seaborn as sns
 
-    _check_columns(pairs, "pairs", ("policy_a", "policy_b", "win_rate", "regret_p_holm"))
+    _check_columns(pairs, "pairs", ("policy_a", "policy_b", "win_rate", "sign_p_holm"))
     labels = []
     for a, b in zip(pairs["policy_a"].astype(str), pairs["policy_b"].astype(str)):
         for p in (a, b):
@@ -482,7 +484,7 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
     text = pd.DataFrame("", index=labels, columns=labels)
     for row in pairs.itertuples(index=False):
         a, b, w = str(row.policy_a), str(row.policy_b), float(row.win_rate)
-        star = "*" if float(row.regret_p_holm) < alpha else ""
+        star = "*" if float(row.sign_p_holm) < alpha else ""
         matrix.loc[a, b], matrix.loc[b, a] = w, 1.0 - w
         text.loc[a, b], text.loc[b, a] = f"{w:.0%}{star}", f"{1.0 - w:.0%}{star}"
     with _quiet_seaborn():
@@ -500,7 +502,7 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
     budget = pairs["budget"].iloc[0] if "budget" in pairs.columns and len(pairs) else None
     when = f" after {budget} trials" if budget is not None else ""
     ax.set_title(f"Share of worlds where the row policy\nends with lower regret{when}\n"
-                 f"(ties count half; * Holm-adjusted\nWilcoxon p < {alpha:g})", fontsize=10, loc="left")
+                 f"(ties count half; * Holm-adjusted\nsign-test p < {alpha:g})", fontsize=10, loc="left")
     return fig
 
 

@@ -114,10 +114,11 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     paths[BUDGET_PLAN] = _write_csv(tables[BUDGET_PLAN], BUDGET_PLAN)
     step(1)
     if several:
-        tables[PAIRWISE] = compare.pairwise(traces, budget=horizon, target=target, seed=seed)
+        tables[PAIRWISE] = compare.pairwise(traces, budget=horizon, target=target)
         paths[PAIRWISE] = _write_csv(tables[PAIRWISE], PAIRWISE)
         step(1)
-        tables[CHOICE] = compare.choice_table(traces, budget=horizon, target=target, success=success, seed=seed)
+        tables[CHOICE] = compare.choice_table(traces, budget=horizon, target=target, success=success, seed=seed,
+                                              difference=study.lead_difference)
         paths[CHOICE] = _write_csv(tables[CHOICE], CHOICE)
         step(1)
     else:

@@ -33,7 +33,7 @@ _SECTION_KEYS = {
     "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",
               "lengthscale_within", "amplitude_within", "noise_kind", "noise_df", "noise_growth", "lost"),
     "campaign": ("initial", "design", "budgets", "pool", "batch"),
-    "target": ("regret",),
+    "target": ("regret", "difference"),
     "sweep": ("lengthscale", "amplitude", "replicates"),
     "history": ("file", "response"),
 }
@@ -166,7 +166,13 @@ class Study:
     sweep: SweepSpec = SweepSpec()
     history: HistorySpec | None = None
     refit_every: int = 0         # [belief] refit_every: refit the belief by maximum likelihood every k trials
+    difference: float | None = None  # [target] difference, objective units; None: target / 10
     source: str = field(default="<study>", compare=False)
+
+    @property
+    def lead_difference(self) -> float:
+        """Smallest median paired regret difference that matters (``[target] difference``)."""
+        return self.target / 10.0 if self.difference is None else self.difference
 
     @property
     def sign(self) -> float:
@@ -291,6 +297,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     tt = r.table(data, "target")
     r.keys(tt, "target", _SECTION_KEYS["target"])
     target = r.number(tt, "target.regret", low=0.0)
+    # smallest median paired regret difference that matters for a "clear" lead (compare.choice_table)
+    difference = r.number(tt, "target.difference", low=0.0, default=target / 10.0)
 
     policies = _read_policies(r, data)
 
@@ -303,7 +311,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     )
     return Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                  belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
-                 history=history, refit_every=refit_every, source=source)
+                 history=history, refit_every=refit_every, difference=difference, source=source)
 
 
 _NOISE_KEYS = ("noise_kind", "noise_df", "noise_growth", "lost")
@@ -635,7 +643,7 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
     c = study.campaign
     lines += [f"initial = {c.initial}", f"design = {_toml_value(c.design)}",
               f"budgets = {_toml_value(list(c.budgets))}", f"pool = {c.pool}", f"batch = {c.batch}", "",
-              "[target]", f"regret = {study.target!r}"]
+              "[target]", f"regret = {study.target!r}", f"difference = {study.lead_difference!r}"]
     if study.history is not None:
         lines += ["", "[history]", f"file = {_toml_value(history_file or study.history.file)}",
                   f"response = {_toml_value(study.history.response)}"]

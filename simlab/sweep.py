@@ -51,7 +51,7 @@ def run_sweep(study: Study, *, jobs: int = 1, progress=None) -> pd.DataFrame:
 
 
 def summarize_sweep(rows: pd.DataFrame, study: Study, *, seed: int = 0) -> pd.DataFrame:
-    """Failure risk (Wilson 95 % interval) and median regret per policy, cell and budget."""
+    """Failure risk (Clopper–Pearson 95 % interval) and median regret per policy, cell and budget."""
     parts = []
     for (lf, af), g in rows.groupby(["lengthscale_factor", "amplitude_factor"], sort=True):
         s = budget_summary(g, budgets=list(study.campaign.budgets), target=study.target, seed=seed)
@@ -62,32 +62,71 @@ def summarize_sweep(rows: pd.DataFrame, study: Study, *, seed: int = 0) -> pd.Da
 
 
 def safest_policy(summary: pd.DataFrame, *, budget: int) -> pd.DataFrame:
-    """Policies ranked by their worst failure risk over the grid at one budget.
+    """Policies ranked by their worst shortfall against the best policy of each cell (minimax regret).
 
-    The safest policy is the one whose *worst* cell is least bad (a minimax choice: it
-    holds up however the belief is wrong within the grid); ties go to the lower mean
-    failure risk over the grid, then to the lower worst-cell median regret. Column
-    ``lead`` on the first row says whether that lead is ``clear`` (its worst-cell Wilson
-    interval lies wholly below the runner-up's) or a ``tie``.
+    In every cell of the grid (one way the belief can be wrong) the best policy is the
+    one with the lowest failure risk there; a policy's *shortfall* in that cell is its
+    failure risk minus that best one (0 for the best). The safest policy is the one whose
+    largest shortfall over the grid is smallest: Savage's (1951) minimax-regret rule, the
+    choice a team regrets least however the belief is wrong within the grid. Ranking on
+    the raw worst cell instead (Wald's minimax) can name a uniformly mediocre policy,
+    such as random search, whose worst cell is least bad only because it never adapts to
+    the belief; that worst cell is kept beside the shortfall. Ties go to the lower raw
+    worst failure risk, then the lower mean failure risk over the grid.
+
+    Returns
+    -------
+    DataFrame
+        One row per policy, best first: ``rank, policy, worst_shortfall,
+        shortfall_lengthscale_factor, shortfall_amplitude_factor, shortfall_best_policy``
+        (the cell of the largest shortfall and the policy best there),
+        ``worst_failure_risk, worst_failure_low, worst_failure_high,
+        worst_lengthscale_factor, worst_amplitude_factor`` (the raw worst cell with its
+        interval), ``mean_failure_risk, worst_regret_median, correct_belief_failure_risk,
+        lead``. ``lead`` on the first row is ``clear`` when even the leader's pessimistic
+        worst shortfall (its cells' upper interval edges against the best policies' lower
+        edges) is below the runner-up's optimistic one (the reverse); otherwise ``tie``.
+
+    References
+    ----------
+    Savage, L. J. (1951). The theory of statistical decision. JASA 46, 55-67.
     """
-    at = summary[summary["budget"] == budget]
-    g = at.groupby("policy", observed=True, sort=False)
+    at = summary[summary["budget"] == budget].copy()
+    at["policy"] = at["policy"].astype(str)
+    cell = ["lengthscale_factor", "amplitude_factor"]
+    by_cell = at.groupby(cell)
+    at["shortfall"] = at["failure_risk"] - by_cell["failure_risk"].transform("min")
+    # Interval edges of the shortfall for the lead check only (not printed): pessimistic
+    # = own upper edge against the cell's lowest lower edge, optimistic = the reverse.
+    at["shortfall_high"] = (at["failure_high"] - by_cell["failure_low"].transform("min")).clip(lower=0.0)
+    at["shortfall_low"] = (at["failure_low"] - by_cell["failure_high"].transform("min")).clip(lower=0.0)
+    best_in_cell = at.loc[by_cell["failure_risk"].idxmin(), cell + ["policy"]].rename(
+        columns={"policy": "shortfall_best_policy"})
+    at = at.merge(best_in_cell, on=cell, how="left")
+    g = at.groupby("policy", sort=False)
     table = pd.DataFrame({
+        "worst_shortfall": g["shortfall"].max(),
         "worst_failure_risk": g["failure_risk"].max(),
         "mean_failure_risk": g["failure_risk"].mean(),
         "worst_regret_median": g["regret_median"].max(),
     })
-    correct = at[(at["lengthscale_factor"] == 1.0) & (at["amplitude_factor"] == 1.0)]
-    table["correct_belief_failure_risk"] = correct.set_index("policy")["failure_risk"].reindex(table.index)
-    worst_cell = at.loc[at.groupby("policy", observed=True)["failure_risk"].idxmax(),
-                        ["policy", "lengthscale_factor", "amplitude_factor", "failure_low", "failure_high"]]
-    table = table.join(worst_cell.set_index("policy").rename(columns={
+    short = at.loc[g["shortfall"].idxmax(), ["policy", *cell, "shortfall_best_policy"]].set_index("policy")
+    table = table.join(short.rename(columns={"lengthscale_factor": "shortfall_lengthscale_factor",
+                                             "amplitude_factor": "shortfall_amplitude_factor"}))
+    worst = at.loc[g["failure_risk"].idxmax(), ["policy", *cell, "failure_low", "failure_high"]].set_index("policy")
+    table = table.join(worst.rename(columns={
         "lengthscale_factor": "worst_lengthscale_factor", "amplitude_factor": "worst_amplitude_factor",
         "failure_low": "worst_failure_low", "failure_high": "worst_failure_high"}))
-    table = table.sort_values(["worst_failure_risk", "mean_failure_risk", "worst_regret_median"])
-    table.insert(0, "rank", np.arange(1, len(table) + 1))
-    # The lead is clear only when the leader's worst-cell Wilson interval lies wholly below
-    # the runner-up's (a conservative check: non-overlapping 95 % intervals).
-    clear = len(table) > 1 and table["worst_failure_high"].iloc[0] < table["worst_failure_low"].iloc[1]
+    correct = at[(at["lengthscale_factor"] == 1.0) & (at["amplitude_factor"] == 1.0)]
+    table["correct_belief_failure_risk"] = correct.set_index("policy")["failure_risk"].reindex(table.index)
+    table = table.sort_values(["worst_shortfall", "worst_failure_risk", "mean_failure_risk"], kind="stable")
+    pessimistic = g["shortfall_high"].max().reindex(table.index)
+    optimistic = g["shortfall_low"].max().reindex(table.index)
+    clear = len(table) > 1 and pessimistic.iloc[0] < optimistic.iloc[1]
     table["lead"] = ["clear" if clear else "tie"] + [""] * (len(table) - 1)
-    return table.reset_index().rename(columns={"index": "policy"})
+    table.insert(0, "rank", np.arange(1, len(table) + 1))
+    columns = ["rank", "worst_shortfall", "shortfall_lengthscale_factor", "shortfall_amplitude_factor",
+               "shortfall_best_policy", "worst_failure_risk", "worst_failure_low", "worst_failure_high",
+               "worst_lengthscale_factor", "worst_amplitude_factor", "mean_failure_risk", "worst_regret_median",
+               "correct_belief_failure_risk", "lead"]
+    return table[columns].rename_axis("policy").reset_index()

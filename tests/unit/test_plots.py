@@ -57,8 +57,8 @@ def figures(run, colors):
                                              budgets=study.campaign.budgets, colors=colors),
         "final": plots.final_regret_figure(metrics.regret_at_budget(traces, budget=horizon), target=study.target,
                                            budget=horizon, colors=colors),
-        "win": plots.win_rate_figure(compare.pairwise(traces, budget=horizon, target=study.target,
-                                                      n_resamples=200), colors=colors),
+        "win": plots.win_rate_figure(compare.pairwise(traces, budget=horizon, target=study.target),
+                                     colors=colors),
         "snapshot": snapshot_figure(study, traces, samples=300, colors=colors),
     }
 
