@@ -252,7 +252,7 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
 
 
 def failure_figure(summary, *, colors=None, ax=None):
-    """Failure risk against budget with its Wilson 95 % interval (error bars).
+    """Failure risk against budget with its exact (Clopper–Pearson) 95 % interval (error bars).
 
     Parameters
     ----------
