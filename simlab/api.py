@@ -279,9 +279,9 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
     >>> import simlab
     >>> w = simlab.world("configs/quick-1d.toml", 0)          # doctest: +SKIP
     >>> w([[20.0], [40.0]])                                  # doctest: +SKIP
-    array([49.1..., 51.7...])
+    array([50.80..., 51.64...])
     >>> w.best_x, w.best_value                               # doctest: +SKIP
-    (array([41.2...]), 52.3...)
+    (array([37.93...]), 51.97...)
     """
     from threadpoolctl import threadpool_limits
 
