@@ -58,6 +58,7 @@ class SearchPlan:
     n_search: int            # Sobol' points ranked (a power of two)
     n_polish: int            # starts polished with L-BFGS-B
     zoom: int                # rounds of the derivative-free local search
+    zoom_points: int         # uniform points per start and round
     half: np.ndarray         # (d,) half-width of the first zoom box, per input
     separation: np.ndarray   # (d,) starts differ by more than this in some input
 
@@ -86,21 +87,25 @@ def search_plan(dim: int, lengthscale=None, nu: float = np.inf) -> SearchPlan:
     ``prod_j 1 / l_j`` of them in the cube (for the squared exponential in one input, Rice's
     formula gives sqrt(3) / (2 pi l) local minima per unit length; Adler & Taylor 2007,
     *Random Fields and Geometry*, chapter 11, from memory). The search ranks
-    ``64 x roughness x cells`` Sobol' points (2^12 to 2^18), polishes 8 + 4 d starts in
-    distinct basins, and zooms down to 1e-4 lengthscales on rough kernels, whose
-    random-feature draws are wiggly on scales far below the lengthscale.
+    ``64 x roughness x cells`` Sobol' points (2^12 to 2^18) and polishes 8 + 4 d starts in
+    distinct basins (twice as many for Matern 1/2). Rough kernels' random-feature draws are
+    wiggly on scales far below the lengthscale (their spectral densities have heavy tails):
+    for them the zoom goes down to 1e-4 lengthscales with 128 (Matern 3/2) or 256
+    (Matern 1/2) points per start and round; 64 points in 8 rounds otherwise.
     """
     ls = np.full(dim, 0.25) if lengthscale is None else np.minimum(np.asarray(lengthscale, dtype=float), 1.0)
     cells = float(np.prod(1.0 / ls))
     rough = _ROUGH.get(float(nu), 1.0)
     want = _POINTS_PER_CELL * rough * cells
     n_search = 2 ** int(np.ceil(np.log2(np.clip(want, _MIN_SEARCH, _MAX_SEARCH))))
-    zoom = 14 if nu <= 1.5 else 8
-    return SearchPlan(n_search=n_search, n_polish=8 + 4 * dim, zoom=zoom, half=0.5 * ls, separation=0.5 * ls)
+    n_polish = (8 + 4 * dim) * (2 if nu <= 0.5 else 1)
+    zoom, zoom_points = (14, 256) if nu <= 0.5 else (14, 128) if nu <= 1.5 else (8, 64)
+    return SearchPlan(n_search=n_search, n_polish=n_polish, zoom=zoom, zoom_points=zoom_points, half=0.5 * ls,
+                      separation=0.5 * ls)
 
 
 def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, rank=None,
-                 plan: SearchPlan | None = None, extra=None, zoom_points: int = 64) -> tuple[np.ndarray, float]:
+                 plan: SearchPlan | None = None, extra=None) -> tuple[np.ndarray, float]:
     """Global minimum of a function on [0, 1]^dim.
 
     Parameters
@@ -131,7 +136,7 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     -----
     1. ``plan.n_search`` scrambled Sobol' points, plus any ``extra`` points, are ranked.
     2. The ``2 n_polish`` best in distinct basins (:func:`simlab.optimize.separated_best`)
-       start ``plan.zoom`` rounds of ``zoom_points`` uniform points in a box around each
+       start ``plan.zoom`` rounds of ``plan.zoom_points`` uniform points in a box around each
        start that halves every round: a derivative-free local search for rough worlds
        (Matern 1/2) where gradients say little, each start moving to the best point found.
     3. The ``n_polish`` best, by their float64 values, are polished with L-BFGS-B.
@@ -153,9 +158,9 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     best_v = rank(starts)
     half = plan.half.copy()
     for _ in range(plan.zoom):
-        cand = starts[:, None, :] + half * (2.0 * rng.random((len(starts), zoom_points, dim)) - 1.0)
+        cand = starts[:, None, :] + half * (2.0 * rng.random((len(starts), plan.zoom_points, dim)) - 1.0)
         cand = np.clip(cand, 0.0, 1.0)
-        vc = rank(cand.reshape(-1, dim)).reshape(len(starts), zoom_points)
+        vc = rank(cand.reshape(-1, dim)).reshape(len(starts), plan.zoom_points)
         j = np.argmin(vc, axis=1)
         better = vc[np.arange(len(starts)), j] < best_v
         starts[better] = cand[better, j[better]]
@@ -228,12 +233,14 @@ class FeatureSample:
         P = np.atleast_2d(U) @ self.omega.T - phase
         return (-self.scale * amp * np.sin(P)) @ self.omega
 
-    def values32(self, U, *, chunk: int = 4096) -> np.ndarray:
+    def values32(self, U, *, chunk: int = 512) -> np.ndarray:
         """Values in float32 arithmetic (returned as float64), for ranking many candidates.
 
         NumPy's float32 cosine is vectorised and about 12-19 times faster here than the
         float64 one; the result is off by about 1e-6 of the amplitude (rounding of the
         phases and of the sum), which is plenty to rank candidates that float64 then polishes.
+        Chunks of 512 inputs keep the (chunk, F) phase matrix in cache: 2.5 times faster than
+        chunks of 4096 here.
         """
         amp, phase = self.polar()
         if getattr(self, "_f32_of", None) is not self.w:

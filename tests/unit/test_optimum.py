@@ -43,7 +43,8 @@ def searched():
     for d, name, ls, i in WORLDS:
         w = _world(d, name, ls, i)
         u, v = w.optimum(stream(11, i, "optimum"))
-        crippled = SearchPlan(n_search=2**10, n_polish=2, zoom=0, half=np.full(d, 0.1), separation=np.full(d, 1e-6))
+        crippled = SearchPlan(n_search=2**10, n_polish=2, zoom=0, zoom_points=64, half=np.full(d, 0.1),
+                              separation=np.full(d, 1e-6))
         _, v_small = find_minimum(w, w.value_grad, d, stream(11, i, "optimum"), plan=crippled)
         out.append((w, u, v, v_small, de_minimum(w, d, 100 + i)))
     return out
