@@ -7,13 +7,14 @@ import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
-from .runner import replay
+from .runner import replay_study
 from .spec import Study, load_study
-from .store import read_results, results_dir
+from .store import read_results, read_worlds, results_dir
 
-__all__ = ["StudyResult", "SweepResult", "run_study", "run_sweep_study", "load_results"]
+__all__ = ["StudyResult", "SweepResult", "WorldView", "run_study", "run_sweep_study", "load_results", "world"]
 
 
 @dataclass
@@ -24,6 +25,7 @@ class StudyResult:
     traces: pd.DataFrame
     path: Path | None = None
     up_to_date: bool = False     # the folder already held this finished run; nothing was replayed
+    worlds: pd.DataFrame | None = None   # worlds.csv: one row per replicate (None for older folders)
 
     def final(self, budget: int | None = None) -> pd.DataFrame:
         """Rows at one budget (default the largest): one per policy and replicate."""
@@ -86,9 +88,9 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
 
     if not write:
         with _progress_bar(study, progress) as bar:
-            traces = replay(study, jobs=jobs, progress=bar, cluster=cluster)
+            traces, worlds = replay_study(study, jobs=jobs, progress=bar, cluster=cluster)
         _rewarn(traces.attrs.get("warnings", ()))
-        return StudyResult(study=study, traces=traces, path=None)
+        return StudyResult(study=study, traces=traces, path=None, worlds=worlds)
 
     path = results_dir(study, out)
     plan = chunk_plan(study)
@@ -97,7 +99,7 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
         done = folder.prepare(resume=resume, fresh=fresh)
         if done is None:
             _, traces = read_results(path)
-            return StudyResult(study=study, traces=traces, path=path, up_to_date=True)
+            return StudyResult(study=study, traces=traces, path=path, up_to_date=True, worlds=read_worlds(path))
         if not done:
             folder.start()
         with _progress_bar(study, progress, initial=sum(len(plan[i]) for i in done)) as bar:
@@ -109,7 +111,7 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
         folder.finish()
     _rewarn(sorted(messages))
     _, traces = read_results(path)
-    return StudyResult(study=study, traces=traces, path=path)
+    return StudyResult(study=study, traces=traces, path=path, worlds=read_worlds(path))
 
 
 def _rewarn(messages) -> None:
@@ -142,7 +144,7 @@ class _progress_bar:
 def load_results(path: str | os.PathLike) -> StudyResult:
     """Read a results folder written by :func:`run_study`."""
     study, traces = read_results(path)
-    return StudyResult(study=study, traces=traces, path=Path(path))
+    return StudyResult(study=study, traces=traces, path=Path(path), worlds=read_worlds(path))
 
 
 @dataclass
@@ -196,3 +198,106 @@ def run_sweep_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str
         save_figure(sweep_figure(summary, budget=study.campaign.horizon, colors=policy_colors(study.labels)),
                     path, "heatmap")
     return SweepResult(study=study, rows=rows, summary=summary, ranking=ranking, path=path)
+
+
+@dataclass(frozen=True, eq=False)
+class WorldView:
+    """One replicate's true objective, in the user's units and orientation (see :func:`world`)."""
+
+    study: Study
+    replicate: int
+    best_x: np.ndarray        # (d,) where the search found the optimum, user units
+    best_value: float         # the searched optimum, user orientation
+    optimum_gap: float        # how far a second, independent search disagreed (>= 0)
+    _world: object = None
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        """The inputs, in the order of the columns of ``x``."""
+        return self.study.space.names
+
+    def __call__(self, x) -> np.ndarray:
+        """Noise-free values at inputs ``x`` of shape (n, d) in the user's units: shape (n,)."""
+        space = self.study.space
+        x = np.asarray(x, dtype=float)
+        if x.ndim != 2 or x.shape[1] != space.dim:
+            raise ValueError(f"x must have shape (n, {space.dim}), one column per input "
+                             f"({', '.join(space.names)}); got shape {x.shape}")
+        if not np.all(np.isfinite(x)):
+            raise ValueError("x must be finite; got NaN or infinity")
+        u = space.to_unit(x)
+        slack = 1e-9                      # from_unit(to_unit(x)) may step past an edge by rounding
+        outside = np.flatnonzero(((u < -slack) | (u > 1.0 + slack)).any(axis=1))
+        if outside.size:
+            i = int(outside[0])
+            raise ValueError(f"x must lie in the study's space {dict(zip(space.names, zip(space.low, space.high)))}; "
+                             f"row {i} is {x[i].tolist()}")
+        from threadpoolctl import threadpool_limits
+
+        with threadpool_limits(1):        # as the runner's workers evaluate it
+            return self.study.sign * self._world(np.clip(u, 0.0, 1.0))
+
+
+def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
+    """The true objective of one replicate of a study, to evaluate or check by hand.
+
+    Parameters
+    ----------
+    study : Study or path
+        A study from :func:`simlab.load_study`, the path of a study file, or a results
+        folder (its ``study.toml`` is read).
+    replicate : int
+        0-based replicate index, ``0 <= replicate < study.replicates``.
+
+    Returns
+    -------
+    WorldView
+        Callable on an array of shape (n, d) in the user's units (columns in the order of
+        ``[space]``), giving noise-free values of shape (n,) in the user's orientation (for
+        ``goal = "maximize"`` larger is better, as in the traces' ``f`` column). Attributes:
+
+        - ``best_x`` (d,), ``best_value``: the world's optimum as simlab's search found it,
+          the better of two independent searches (:func:`simlab.runner.world_optimum`);
+          the maximum for a ``maximize`` study.
+        - ``optimum_gap``: how far the two searches disagreed (>= 0, objective units).
+
+    Notes
+    -----
+    ``best_value`` is the *searched* optimum. Regret in the traces is measured against
+    ``reference`` in ``worlds.csv``: the better of ``best_value`` and every input any
+    campaign of the study evaluated on this replicate (equal to ``best_value`` unless a
+    campaign found a better point than the search). The world is rebuilt from the study's
+    keyed random streams, so it is the same world the campaigns met, whatever ran before.
+
+    Raises
+    ------
+    ValueError
+        If ``replicate`` is not an integer in range, or (when called) ``x`` is not of
+        shape (n, d), not finite, or outside the space.
+
+    Examples
+    --------
+    >>> import simlab
+    >>> w = simlab.world("configs/quick-1d.toml", 0)          # doctest: +SKIP
+    >>> w([[20.0], [40.0]])                                  # doctest: +SKIP
+    array([50.80..., 51.64...])
+    >>> w.best_x, w.best_value                               # doctest: +SKIP
+    (array([37.93...]), 51.97...)
+    """
+    from threadpoolctl import threadpool_limits
+
+    from .runner import make_world, world_optimum
+
+    if not isinstance(study, Study):
+        path = Path(study)
+        study = load_study(path / "study.toml" if path.is_dir() else path)
+    if isinstance(replicate, bool) or not isinstance(replicate, (int, np.integer)) \
+            or not 0 <= int(replicate) < study.replicates:
+        raise ValueError(f"replicate must be an integer from 0 to {study.replicates - 1} "
+                         f"(the study has {study.replicates} replicates); got {replicate!r}")
+    r = int(replicate)
+    with threadpool_limits(1):
+        w = make_world(study, r)
+        u, v, gap = world_optimum(w, study, r)
+    return WorldView(study=study, replicate=r, best_x=study.space.from_unit(u), best_value=float(study.sign * v),
+                     optimum_gap=float(gap), _world=w)

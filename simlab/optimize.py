@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.optimize import minimize
 
-__all__ = ["polish", "polish_block", "distinct_best"]
+__all__ = ["polish", "polish_block", "distinct_best", "separated_best"]
 
 
 def distinct_best(U, values, k: int, *, min_dist: float = 1e-6) -> np.ndarray:
@@ -17,6 +17,34 @@ def distinct_best(U, values, k: int, *, min_dist: float = 1e-6) -> np.ndarray:
             chosen.append(int(i))
             if len(chosen) == k:
                 break
+    return np.asarray(chosen, dtype=int)
+
+
+def separated_best(U, values, k: int, scale) -> np.ndarray:
+    """Indices of k low ``values`` whose inputs lie, as far as possible, in different basins.
+
+    Among the ``64 k`` lowest values, a point is taken when, in some coordinate j, it differs
+    from every better point taken by more than ``scale[j]`` (a scaled max-norm), so starts
+    spread over distinct basins of a function whose features are about ``2 scale`` wide
+    instead of crowding into the best one. When fewer than k such points exist there, the
+    best of the others fill up (as :func:`distinct_best` would choose them).
+    """
+    values = np.asarray(values)
+    scale = np.broadcast_to(np.asarray(scale, dtype=float), (U.shape[1],))
+    m = min(len(values), 64 * k)
+    head = np.argpartition(values, m - 1)[:m] if m < len(values) else np.arange(len(values))
+    head = head[np.argsort(values[head], kind="stable")]
+    chosen: list[int] = []
+    for i in head:
+        if not chosen or np.all(np.max(np.abs(U[chosen] - U[i]) / scale, axis=1) > 1.0):
+            chosen.append(int(i))
+            if len(chosen) == k:
+                return np.asarray(chosen, dtype=int)
+    for i in head:
+        if len(chosen) == k:
+            break
+        if np.all(np.max(np.abs(U[chosen] - U[i]), axis=1) > 1e-6):
+            chosen.append(int(i))
     return np.asarray(chosen, dtype=int)
 
 

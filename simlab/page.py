@@ -24,6 +24,7 @@ BUDGET_PLAN = "budget_plan.csv"
 REPORT = "report.html"
 SWEEP_SUMMARY = "sweep/sweep.csv"
 SWEEP_RANKING = "sweep/ranking.csv"
+WORLDS = "worlds.csv"
 FIGURES = "figures"
 
 # Figure stems in report order.
@@ -218,6 +219,7 @@ def render(study, tables, images, *, success):
          "worlds, each met by every policy</p></header>"),
         _question(study, success),
         _assumptions(study, __version__),
+        _optimum_warning(study, tables.get(WORLDS)),
         _results(study, summary, reach, pairs, images, success),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
@@ -230,6 +232,27 @@ def render(study, tables, images, *, success):
         "</body></html>",
     ]
     return _number_sections("\n".join(p for p in parts if p) + "\n")
+
+
+def _optimum_warning(study, worlds):
+    """A caution when two independent searches for a world's optimum disagreed by > 1 % of the target."""
+    if worlds is None or "optimum_gap" not in worlds or not len(worlds):
+        return ""
+    limit = 0.01 * study.target
+    gaps = worlds["optimum_gap"].to_numpy(dtype=float)
+    wide = np.flatnonzero(gaps > limit)
+    if not wide.size:
+        return ""
+    cells = _Cells(WORLDS, worlds)
+    worst = int(np.argmax(gaps))
+    return (f'<div class="caution"><p><b>World optima may be missed.</b> On {wide.size} of {len(gaps)} '
+            f"replicates two independent searches for the world's optimum disagreed by more than 1 % of the "
+            f"target ({_num(limit)}); the largest gap is {cells.span(worst, 'optimum_gap', 'sig')} on replicate "
+            f"{cells.span(worst, 'replicate', 'int')} (column <code>optimum_gap</code> of <code>{WORLDS}</code>). "
+            "Regret is measured against the better search and every input a campaign evaluated, but where the "
+            "searches disagree the true optimum may be better still: regret there may be understated, "
+            "and more so for policies that never came near it. Rough or short-lengthscale priors in several "
+            "inputs cause this; treat small regrets and high success shares on those worlds with care.</p></div>")
 
 
 def _number_sections(text):

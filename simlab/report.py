@@ -11,7 +11,7 @@ import pandas as pd
 
 from . import compare, metrics
 from .page import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
-                   TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, _FIGURE_STEMS, render)
+                   TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS, _FIGURE_STEMS, render)
 from .store import atomic_write
 
 @dataclass(frozen=True)
@@ -128,6 +128,9 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         # a misspecification sweep of this study was run (simlab sweep): report it too
         tables[SWEEP_RANKING] = pd.read_csv(folder / SWEEP_RANKING)
         tables[SWEEP_SUMMARY] = pd.read_csv(folder / SWEEP_SUMMARY)
+
+    if (folder / WORLDS).is_file():
+        tables[WORLDS] = pd.read_csv(folder / WORLDS)   # the runner's per-replicate optima (optimum_gap)
 
     images, figure_paths = {}, []
     if figures:

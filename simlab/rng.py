@@ -19,6 +19,7 @@ PURPOSES = {
     "optimum": 5,    # the search for the world's optimum
     "hyper": 6,      # the replicate's own world hyperparameters when they are uncertain
     "refit": 7,      # starting points of a campaign's belief refits (per policy)
+    "optimum_check": 8,   # a second, independent search for the world's optimum (optimum_gap)
 }
 
 

@@ -19,10 +19,13 @@ from .noise import Observer
 from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
-           "replay_replicate", "replay", "replay_chunks", "chunk_plan", "time_replicate", "history_arrays", "TRACE_COLUMNS"]
+           "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan", "time_replicate",
+           "history_arrays", "world_optimum", "TRACE_COLUMNS", "WORLD_COLUMNS"]
 
 TRACE_COLUMNS = ("policy", "replicate", "trial", "round", "initial", "history", "y", "f", "lost", "regret",
                  "regret_seen", "rec_trial", "horizon")
+# worlds.csv, one row per replicate (the input columns, named as in [space], follow "replicate")
+WORLD_COLUMNS = ("replicate", "best_value", "optimum_gap", "reference", "reference_from_trial")
 
 
 def _kernel(prior: Prior, study: Study):
@@ -87,12 +90,30 @@ class Replicate:
 
     index: int
     world: World
-    optimum: tuple[np.ndarray, float]
+    optimum: tuple[np.ndarray, float]   # the better of two independent searches (internal orientation)
     design: np.ndarray      # (n0, d)
     sequence: np.ndarray    # (B, d)
     shocks: np.ndarray      # (B,) unit-variance noise draws, one per trial
     lost: np.ndarray        # (B,) bool: the trial is lost
     pool: np.ndarray        # (m, d)
+    optimum_gap: float = 0.0   # |first search - second search| >= 0, objective units
+
+
+def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float, float]:
+    """The world's optimum from two independent searches: location, the better value, and the gap.
+
+    The searches use their own keyed streams ("optimum" and "optimum_check"), so their
+    Sobol' points and zoom points differ. Regret uses the better of the two (a missed
+    optimum makes regret too small, so never the worse one); ``gap`` = how far they
+    disagreed, >= 0, in objective units: a lower bound on how far the better one may
+    still be from the true optimum.
+    """
+    u1, v1 = world.optimum(stream(study.seed, r, "optimum"))
+    if isinstance(world, FunctionWorld):
+        return u1, v1, 0.0        # the published optimum: nothing to search
+    u2, v2 = world.optimum(stream(study.seed, r, "optimum_check"))
+    u, v = (u1, v1) if v1 <= v2 else (u2, v2)
+    return u, v, abs(v1 - v2)
 
 
 def make_observer(study: Study) -> Observer:
@@ -107,7 +128,7 @@ def make_replicate(study: Study, r: int) -> Replicate:
     d, c = study.space.dim, study.campaign
     B = c.horizon
     world = make_world(study, r)
-    optimum = world.optimum(stream(study.seed, r, "optimum"))
+    u_best, v_best, gap = world_optimum(world, study, r)
     rng = stream(study.seed, r, "design")
     sequence = _sobol(d, B, rng)
     if c.design == "sobol":
@@ -118,8 +139,8 @@ def make_replicate(study: Study, r: int) -> Replicate:
         design = rng.random((c.initial, d))
     shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
     pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
-    return Replicate(index=r, world=world, optimum=optimum, design=design, sequence=sequence,
-                     shocks=shocks, lost=lost, pool=pool)
+    return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,
+                     shocks=shocks, lost=lost, pool=pool, optimum_gap=gap)
 
 
 def make_policy(spec) -> Policy:
@@ -129,8 +150,11 @@ def make_policy(spec) -> Policy:
 def replay_replicate(study: Study, r: int, *, rep: Replicate | None = None, lockstep: bool = True) -> pd.DataFrame:
     """All policies on replicate r: a traces frame in the user's units and orientation.
 
-    Regret is measured against the better of the world's optimum and every input any
-    policy evaluated on this replicate, so it is never negative and stays paired.
+    Regret is measured against the better of the world's searched optimum (two independent
+    searches, :func:`world_optimum`) and every input any policy evaluated on this
+    replicate, so it is never negative and stays paired. Adding a policy can therefore
+    lower f* (when it evaluates a point better than the search found) and so change the
+    other policies' regret; it never changes their campaigns.
 
     A horizon-aware policy (one whose early choices depend on the budget) is replayed
     once per budget; its rows for trials in (previous budget, budget] come from the
@@ -187,7 +211,7 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
 def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
     """The traces frame of one replicate from its campaigns ``[(label, [(budget, trace)])]``."""
     c, r = study.campaign, rep.index
-    fstar = min(rep.optimum[1], min(float(t.f.min()) for _, per in runs for _, t in per))
+    fstar = _fstar(rep, runs)
     h = study.history.size if study.history is not None else 0
     trial = np.arange(1 - h, c.horizon + 1, dtype=np.int32)   # past trials -h+1 .. 0, then 1 .. B
     frames = []
@@ -209,6 +233,24 @@ def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
                       "horizon": cols["horizon"]})
         frames.append(pd.DataFrame(frame))
     return pd.concat(frames, ignore_index=True)
+
+
+def _fstar(rep: Replicate, runs) -> float:
+    """What regret is measured against: the searched optimum or any input evaluated, whichever is lower."""
+    return min(rep.optimum[1], min(float(t.f.min()) for _, per in runs for _, t in per))
+
+
+def _world_rows(study: Study, reps: list[Replicate], runs_per_rep) -> pd.DataFrame:
+    """worlds.csv rows of some replicates: the searched optimum in the user's units and orientation,
+    how far the second search disagreed, and the reference regret was measured against."""
+    rows = {"replicate": np.array([rep.index for rep in reps], dtype=np.int32)}
+    X = study.space.from_unit(np.array([rep.optimum[0] for rep in reps]).reshape(len(reps), study.space.dim))
+    rows.update({name: X[:, j] for j, name in enumerate(study.space.names)})
+    fstar = np.array([_fstar(rep, runs) for rep, runs in zip(reps, runs_per_rep)])
+    best = np.array([rep.optimum[1] for rep in reps])
+    rows.update({"best_value": study.sign * best, "optimum_gap": np.array([rep.optimum_gap for rep in reps]),
+                 "reference": study.sign * fstar, "reference_from_trial": fstar < best})
+    return pd.DataFrame(rows)
 
 
 def _columns(t: Trace, trial: np.ndarray, fstar: float) -> dict[str, np.ndarray]:
@@ -243,9 +285,13 @@ def _replay_chunk(study: Study, replicates: list[int], lockstep: bool = True) ->
     with threadpool_limits(1), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         reps = [make_replicate(study, r) for r in replicates]
-        frames = [_frame(study, rep, runs) for rep, runs in zip(reps, _campaigns(study, reps, lockstep=lockstep))]
+        runs = _campaigns(study, reps, lockstep=lockstep)
+        frames = [_frame(study, rep, per) for rep, per in zip(reps, runs)]
+        worlds = _world_rows(study, reps, runs)
     out = pd.concat(frames, ignore_index=True)
+    # the chunk's worlds.csv rows travel with it (and are taken off before the traces are used)
     out.attrs["warnings"] = sorted({str(w.message) for w in caught})
+    out.attrs["worlds"] = worlds
     return out
 
 
@@ -326,10 +372,18 @@ def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=No
 
     ``progress`` is called with the number of campaigns finished after each chunk; other
     parameters as in :func:`replay_chunks`. Warnings raised in workers are collected in
-    ``traces.attrs["warnings"]``.
+    ``traces.attrs["warnings"]``. :func:`replay_study` also returns the worlds table.
     """
-    frames, messages = {}, set()
+    return replay_study(study, jobs=jobs, chunk=chunk, progress=progress, cluster=cluster, lockstep=lockstep)[0]
+
+
+def replay_study(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=None,
+                 cluster: str | None = None, lockstep: bool = True) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """As :func:`replay`, returning ``(traces, worlds)``: worlds has one row per replicate
+    (:data:`WORLD_COLUMNS` and the optimum's inputs), as written to ``worlds.csv``."""
+    frames, worlds, messages = {}, {}, set()
     for i, frame in replay_chunks(study, jobs=jobs, chunk=chunk, cluster=cluster, lockstep=lockstep):
+        worlds[i] = frame.attrs.pop("worlds")
         frames[i] = frame
         messages.update(frame.attrs.get("warnings", ()))
         if progress is not None:
@@ -337,4 +391,5 @@ def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=No
     traces = pd.concat([frames[i] for i in sorted(frames)], ignore_index=True)
     traces["policy"] = pd.Categorical(traces["policy"], categories=list(study.labels))
     traces.attrs = {"warnings": sorted(messages)}
-    return traces
+    table = pd.concat([worlds[i] for i in sorted(worlds)], ignore_index=True)
+    return traces, table

@@ -27,7 +27,8 @@ DESIGNS = ("sobol", "lhs", "random")
 WORLD_METHODS = ("features", "grid")
 # Columns of traces.parquet that an input name must not shadow.
 RESERVED = ("policy", "replicate", "trial", "y", "f", "regret", "regret_seen", "initial",
-            "history", "round", "rec_trial", "lost")
+            "history", "round", "rec_trial", "lost",
+            "best_value", "optimum_gap", "reference", "reference_from_trial")   # and of worlds.csv
 _SECTION_KEYS = {
     "study": ("name", "goal", "replicates", "seed"),
     "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",

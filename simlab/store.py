@@ -15,10 +15,11 @@ import pandas as pd
 
 from .spec import Study, StudyError, dump_study, load_study
 
-__all__ = ["TRACES", "STUDY", "HISTORY", "MANIFEST", "PARTIAL", "results_dir", "write_results", "read_results",
-           "atomic_write", "study_hash", "RunFolder", "FolderBusy"]
+__all__ = ["TRACES", "STUDY", "HISTORY", "MANIFEST", "PARTIAL", "WORLDS", "results_dir", "write_results",
+           "read_results", "read_worlds", "atomic_write", "study_hash", "RunFolder", "FolderBusy"]
 
 TRACES = "traces.parquet"
+WORLDS = "worlds.csv"       # one row per replicate: the world's searched optimum and optimum_gap
 STUDY = "study.toml"
 HISTORY = "history.csv"
 MANIFEST = "manifest.json"
@@ -71,12 +72,16 @@ def _study_text(study: Study, version: str, history_file: str | None) -> str:
                                      "source": study.source}, history_file=history_file)
 
 
-def write_results(path: Path, study: Study, traces: pd.DataFrame, *, version: str) -> None:
-    """Write ``traces.parquet`` and the resolved ``study.toml`` into ``path`` in one go."""
+def write_results(path: Path, study: Study, traces: pd.DataFrame, *, version: str,
+                  worlds: pd.DataFrame | None = None) -> None:
+    """Write ``traces.parquet``, the resolved ``study.toml`` and (if given) ``worlds.csv``
+    into ``path`` in one go; the manifest marks the folder complete last."""
     path = Path(path)
     _write_study(path, study, version)
     plain = traces.copy()
     plain.attrs = {}
+    if worlds is not None:
+        atomic_write(path / WORLDS, lambda p: worlds.to_csv(p, index=False))
     atomic_write(path / TRACES, lambda p: plain.to_parquet(p, index=False))
     _write_manifest(path, study, version, chunks=None, complete=True)
 
@@ -118,6 +123,13 @@ def read_results(path: str | os.PathLike) -> tuple[Study, pd.DataFrame]:
     traces = pd.read_parquet(path / TRACES)
     traces["policy"] = pd.Categorical(traces["policy"].astype(str), categories=list(study.labels))
     return study, traces
+
+
+def read_worlds(path: str | os.PathLike) -> pd.DataFrame | None:
+    """``worlds.csv`` of a results folder (one row per replicate), or None for a folder written
+    before simlab recorded it."""
+    path = Path(path) / WORLDS
+    return pd.read_csv(path) if path.is_file() else None
 
 
 @dataclass
@@ -217,7 +229,13 @@ class RunFolder:
         return {int(p.stem.split("-")[1]) for p in part.glob("chunk-*.parquet")}
 
     def write_chunk(self, index: int, frame: pd.DataFrame) -> None:
-        plain = frame.copy()
+        """Store a finished chunk: its worlds rows (``frame.attrs["worlds"]``) first, then its
+        traces, whose file marks the chunk done, so a done chunk always has both."""
+        worlds = frame.attrs.get("worlds")
+        if worlds is not None:
+            atomic_write(self.path / PARTIAL / f"worlds-{index:06d}.parquet",
+                         lambda p: worlds.to_parquet(p, index=False))
+        plain = frame.copy(deep=False)
         plain.attrs = {}
         atomic_write(self.path / PARTIAL / f"chunk-{index:06d}.parquet", lambda p: plain.to_parquet(p, index=False))
 
@@ -241,6 +259,13 @@ class RunFolder:
                 if writer is not None:
                     writer.close()
 
+        worlds = sorted((self.path / PARTIAL).glob("worlds-*.parquet"))
+        if len(worlds) == self.chunks:
+            # chunk files sort by index, which is replicate order: the same table however the run went
+            table = pd.concat([pd.read_parquet(f) for f in worlds], ignore_index=True)
+            atomic_write(self.path / WORLDS, lambda p: table.to_csv(p, index=False))
+        else:
+            (self.path / WORLDS).unlink(missing_ok=True)   # chunks from before worlds.csv: none at all
         atomic_write(self.path / TRACES, write)
         _write_manifest(self.path, self.study, self.version, chunks=self.chunks, complete=True)
         shutil.rmtree(self.path / PARTIAL, ignore_errors=True)
