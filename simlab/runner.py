@@ -11,6 +11,7 @@ from scipy.stats import qmc
 
 from . import functions
 from .campaign import Belief, Trace, run_campaign
+from .columns import TRACE_COLUMNS
 from .kernels import make_kernel
 from .policies import POLICIES, Policy
 from .rng import stream
@@ -21,8 +22,6 @@ from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, Wo
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
            "replay_replicate", "replay", "replay_chunks", "chunk_plan", "time_replicate", "history_arrays", "TRACE_COLUMNS"]
 
-TRACE_COLUMNS = ("policy", "replicate", "trial", "round", "initial", "history", "y", "f", "lost", "regret",
-                 "regret_seen", "rec_trial", "horizon")
 
 
 def _kernel(prior: Prior, study: Study):

@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 
 from . import functions
+from .columns import TRACE_COLUMNS
 from .kernels import KERNELS
 from .policies import POLICIES
 
@@ -25,9 +26,8 @@ __all__ = [
 GOALS = ("minimize", "maximize")
 DESIGNS = ("sobol", "lhs", "random")
 WORLD_METHODS = ("features", "grid")
-# Columns of traces.parquet that an input name must not shadow.
-RESERVED = ("policy", "replicate", "trial", "y", "f", "regret", "regret_seen", "initial",
-            "history", "round", "rec_trial", "lost")
+# Columns of traces.parquet that an input name must not shadow (defined once, in columns.py).
+RESERVED = TRACE_COLUMNS
 _SECTION_KEYS = {
     "study": ("name", "goal", "replicates", "seed"),
     "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",
