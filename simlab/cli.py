@@ -327,16 +327,22 @@ def _check(args) -> int:
     print(f"\n# work: {study.replicates} replicates x {len(study.policies)} policies = {campaigns} campaigns "
           f"of {c.horizon} trials ({campaigns * c.horizon:,} trials; {c.initial} initial per campaign)")
     if not args.no_timing:
-        from .runner import time_replicate
-        per = time_replicate(study, replicates=6)
-        workers = args.jobs if args.jobs > 0 else (__import__("os").cpu_count() or 1)
-        total = per * study.replicates / workers
-        print(f"# timing: {per:.2f} s per replicate here (the first {min(6, study.replicates)} replayed "
-              f"together); the study needs about {_duration(total)} with --jobs {workers}")
+        from .estimate import measure
+        est = measure(study)
+        workers = args.jobs if args.jobs > 0 else _cores()
+        print(f"# timing: simlab run needs about {_duration(est.run(study, args.jobs))} with --jobs {workers} "
+              f"({est.per_replicate:.2f} s per replicate, timed on the first {est.timed} with their world optima; "
+              f"{est.report:.1f} s for the report; {est.startup:.1f} s to start)")
+        sw = study.sweep
+        cells = len(sw.lengthscale) * len(sw.amplitude)
+        print(f"# timing: simlab sweep ({cells} cells x {sw.replicates} replicates) needs about "
+              f"{_duration(est.sweep(study, args.jobs))} with --jobs {workers}")
     return 0
 
 
 def _duration(seconds: float) -> str:
+    if seconds < 10:
+        return f"{seconds:.1f} s"
     if seconds < 90:
         return f"{seconds:.0f} s"
     if seconds < 5400:
@@ -428,8 +434,15 @@ def _plan(args) -> int:
             result = stored
             print(f"using stored results in {folder}", file=sys.stderr)
     if result is None:
+        from . import __version__
+        from .runner import chunk_plan
+        from .store import FolderBusy, RunFolder
+        if folder.is_dir():   # refuse before saying it will run (prepare only reads the folder)
+            try:
+                RunFolder(folder, study, __version__, chunks=len(chunk_plan(study))).prepare(resume=False, fresh=False)
+            except FolderBusy as exc:
+                raise _plan_refusal(exc, args) from None
         print(f"no results for this study in {folder}: running it first", file=sys.stderr)
-        from .store import FolderBusy
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", RuntimeWarning)
             try:

@@ -219,7 +219,7 @@ def render(study, tables, images, *, success):
         _results(study, summary, reach, pairs, images, success),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
-        _sweep_section(study, sweep, images) if sweep is not None else "",
+        _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
         _limits(study),
         _cautions(),
         _files_section(pairs is not None, bool(images), sweep is not None),
@@ -236,8 +236,11 @@ def _number_sections(text):
     return re.sub(r"<h2>\d+\. ", lambda m: f"<h2>{next(counter)}. ", text)
 
 
-def _sweep_section(study, ranking, images):
-    """Robustness to a wrong prior: the misspecification sweep, if one was run."""
+def _sweep_section(study, ranking, images, cells=None):
+    """Robustness to a wrong prior: the misspecification sweep, if one was run.
+
+    The world count comes from sweep.csv (``simlab sweep --replicates N`` overrides the
+    study's ``[sweep] replicates``, and the stored study.toml does not know it)."""
     frame = ranking.frame
     first = 0
     lead = str(frame.at[first, "lead"])
@@ -253,11 +256,16 @@ def _sweep_section(study, ranking, images):
         f"<td class='num'>{ranking.span(i, 'correct_belief_failure_risk', 'pct')} %</td></tr>"
         for i in range(len(frame)))
     sw = study.sweep
+    if cells is not None and "replicates" in cells.columns and len(cells):
+        table = _Cells(SWEEP_SUMMARY, cells)
+        worlds = table.span(int(np.argmax(table.frame["replicates"].to_numpy())), "replicates", "int")
+    else:
+        worlds = str(sw.replicates)
     factors = lambda v: ", ".join(f"×{x:g}" for x in v)
     return (
         '<section id="sweep"><h2>0. Robustness to a wrong prior</h2>'
         f"<p>The study was replayed with the belief's lengthscales scaled by {_e(factors(sw.lengthscale))} and its "
-        f"amplitude by {_e(factors(sw.amplitude))}, on the same {sw.replicates} worlds in every cell, to see which "
+        f"amplitude by {_e(factors(sw.amplitude))}, on the same {worlds} worlds in every cell, to see which "
         "policy still meets the target when the team's prior is wrong.</p>"
         f"<p><strong>Safest across the grid: {ranking.text(first, 'policy')}</strong> — the lowest worst-cell "
         f"failure risk ({ranking.pct(first, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high')}) "

@@ -28,7 +28,7 @@ PARTIAL = ".partial"        # finished chunks of a run still under way
 LOCK = ".lock"
 # Files a run writes at the top of its folder besides the report's (names from page.py, read
 # in _own_names): --fresh deletes only these, and only in a folder holding a simlab manifest.
-# A new file written by simlab belongs here (tests/integration/test_safety.py checks a full run).
+# A new file written by simlab belongs here (tests/integration/test_safety_files.py checks a full run).
 OWN_FILES = (TRACES, STUDY, HISTORY, MANIFEST, LOCK)
 SWEEP = "sweep"
 _SWEEP_FILES = ("sweep.csv", "ranking.csv", "heatmap.png", "heatmap.svg")
@@ -116,7 +116,12 @@ def make_folder(path: Path) -> list[Path]:
     made = []
     try:
         for p in reversed(missing):
-            p.mkdir()
+            try:
+                p.mkdir()
+            except FileExistsError:
+                if not p.is_dir():
+                    raise
+                continue          # made meanwhile by another process (two runs starting together)
             made.append(p)
     except OSError as exc:
         _remove_made(made)
