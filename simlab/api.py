@@ -79,12 +79,30 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
         When ``out`` holds an unfinished run (and neither ``resume`` nor ``fresh``), a
         different study, or another run is writing to it.
     """
-    from .runner import chunk_plan, replay_chunks
-    from .store import RunFolder
+    from .runner import connect
 
+    if resume and fresh:
+        raise ValueError("`resume` and `fresh` exclude each other; got both")
     if not isinstance(study, Study):
         study = load_study(study)
     from . import __version__
+
+    client = None
+    if cluster is not None:
+        # reach the scheduler before anything is written: a bad address leaves no folder behind
+        client = connect(cluster)
+        cluster = client
+    try:
+        return _run_study(study, jobs=jobs, out=out, write=write, progress=progress, resume=resume, fresh=fresh,
+                          cluster=cluster, version=__version__)
+    finally:
+        if client is not None:
+            client.close()
+
+
+def _run_study(study: Study, *, jobs, out, write, progress, resume, fresh, cluster, version) -> StudyResult:
+    from .runner import chunk_plan, replay_chunks
+    from .store import RunFolder
 
     if not write:
         with _progress_bar(study, progress) as bar:
@@ -95,7 +113,7 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
     path = results_dir(study, out)
     plan = chunk_plan(study)
     messages: set[str] = set()
-    with RunFolder(path, study, __version__, chunks=len(plan)) as folder:
+    with RunFolder(path, study, version, chunks=len(plan)) as folder:
         done = folder.prepare(resume=resume, fresh=fresh)
         if done is None:
             _, traces = read_results(path)

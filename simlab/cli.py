@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import argparse
+import os
+import signal
 import sys
 import time
 import warnings
@@ -65,6 +67,19 @@ def _option(kind, ok, rule: str):
 
 
 _positive_int = _option(int, lambda v: v >= 1, "a whole number >= 1")
+
+
+def _replicates(text: str) -> int:
+    """--replicates: the same rule and words as ``[study] replicates`` in a study file."""
+    from .spec import MAX_REPLICATES
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number between 1 and {MAX_REPLICATES}; "
+                                         f"got {text!r}") from None
+    if not 1 <= value <= MAX_REPLICATES:
+        raise argparse.ArgumentTypeError(f"must be between 1 and {MAX_REPLICATES}; got {value}")
+    return value
 _share = _option(float, lambda v: 0.0 < v < 1.0, "a number between 0 and 1 (exclusive)")
 _jobs = _option(int, lambda v: v >= 1 or v == -1, "a whole number >= 1, or -1 for all cores")
 
@@ -85,10 +100,13 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("study", metavar="STUDY.toml")
     run.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="worker processes (-1: all cores; default 1)")
     run.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
-    run.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
+    run.add_argument("--replicates", type=_replicates, metavar="N", help="override [study] replicates")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
-    run.add_argument("--resume", action="store_true", help="continue an unfinished run of this study in the folder")
-    run.add_argument("--fresh", action="store_true", help="discard what the results folder holds and start over")
+    again = run.add_mutually_exclusive_group()
+    again.add_argument("--resume", action="store_true", help="continue an unfinished run of this study in the folder")
+    again.add_argument("--fresh", action="store_true",
+                       help="discard the earlier simlab run in the results folder and start over "
+                       "(refused if the folder holds anything simlab did not write)")
     run.add_argument("--cluster", metavar="tcp://HOST:PORT",
                      help="run on a dask.distributed scheduler (pip install 'simlab[cluster]')")
     run.add_argument("--no-report", action="store_true",
@@ -101,7 +119,7 @@ def build_parser() -> argparse.ArgumentParser:
                            "and estimate the work (timed on one replicate unless --no-timing).",
                            epilog=_EPILOG_CHECK, formatter_class=argparse.RawDescriptionHelpFormatter)
     check.add_argument("study", metavar="STUDY.toml")
-    check.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
+    check.add_argument("--replicates", type=_replicates, metavar="N", help="override [study] replicates")
     check.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="workers to plan for (default 1)")
     check.add_argument("--no-timing", action="store_true", help="skip the one-replicate timing run")
 
@@ -114,7 +132,7 @@ def build_parser() -> argparse.ArgumentParser:
     sweep.add_argument("study", metavar="STUDY.toml")
     sweep.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="worker processes (-1: all cores; default 1)")
     sweep.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
-    sweep.add_argument("--replicates", type=_positive_int, metavar="N", help="override [sweep] replicates")
+    sweep.add_argument("--replicates", type=_replicates, metavar="N", help="override [sweep] replicates")
     sweep.add_argument("--quiet", action="store_true", help="no progress bar")
 
     cal = sub.add_parser("calibrate", help="fit a world prior to past runs (prints TOML)",
@@ -153,7 +171,7 @@ def build_parser() -> argparse.ArgumentParser:
     plan.add_argument("--success", type=_share, default=0.9, metavar="P", help="requested share of campaigns within target (default 0.9)")
     plan.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="worker processes if the study must run")
     plan.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
-    plan.add_argument("--replicates", type=_positive_int, metavar="N", help="override [study] replicates")
+    plan.add_argument("--replicates", type=_replicates, metavar="N", help="override [study] replicates")
     plan.add_argument("--quiet", action="store_true", help="no progress bar")
     return p
 
@@ -168,18 +186,74 @@ def _version() -> str:
     return __version__
 
 
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM (``kill PID``), raised in the main thread so that a run stops as after Ctrl-C:
+    workers stopped, finished chunks kept, the lock removed."""
+
+
+def _on_sigterm(signum, frame):
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)   # one stop is enough: let the clean-up finish
+    raise _Terminated()
+
+
 def main(argv=None) -> int:
+    """Run the command line; the exit code is 0, 2 (a mistake in the input, one line on
+    standard error), 130 after Ctrl-C or 143 after SIGTERM (128 + the signal number)."""
     args = build_parser().parse_args(argv)
     from .spec import StudyError
+    try:
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    except ValueError:   # not the main thread (main() called from a thread): leave signals alone
+        previous = None
     try:
         return {"run": _run, "check": _check, "report": _report, "sweep": _sweep,
                 "calibrate": _calibrate, "plan": _plan}[args.command](args)
     except StudyError as exc:
         print(f"simlab: error: {exc}", file=sys.stderr)
         return 2
-    except KeyboardInterrupt:
-        print("simlab: interrupted", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        what = "stopped (SIGTERM)" if isinstance(exc, _Terminated) else "interrupted"
+        hint = getattr(exc, "simlab_hint", "")
+        print(f"simlab: {what}" + (f"; {hint}" if hint else ""), file=sys.stderr)
+        return 128 + (signal.SIGTERM if isinstance(exc, _Terminated) else signal.SIGINT)
+    except OSError as exc:
+        # the file system refused (permission lost, disk full, a path too long...): one line
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"simlab: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        return 2
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _stopped(exc: KeyboardInterrupt, hint: str) -> KeyboardInterrupt:
+    """Attach what to do next to an interruption (printed by :func:`main`)."""
+    if not getattr(exc, "simlab_hint", ""):
+        exc.simlab_hint = hint
+    return exc
+
+
+def _resume_command(args, study) -> str:
+    from .store import results_dir
+    folder = results_dir(study, args.out)
+    out = f" --out {args.out}" if args.out is not None else ""
+    return (f"finished chunks are kept in {folder}; continue with "
+            f"`simlab run {args.study}{out} --resume`")
+
+
+def _warn_jobs(jobs: int) -> None:
+    """One line when more workers are asked for than this machine has cores."""
+    cores = _cores()
+    if jobs > cores:
+        print(f"simlab: warning: --jobs {jobs} is more than the {cores} cores available here; workers "
+              "will share cores (and at most one runs per chunk of replicates)", file=sys.stderr)
+
+
+def _cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):   # not on Linux
+        return os.cpu_count() or 1
 
 
 def _load(args):
@@ -187,7 +261,16 @@ def _load(args):
     study = load_study(args.study)
     if getattr(args, "replicates", None):
         study = study.with_replicates(args.replicates)
+    _advise(study)
+    if getattr(args, "jobs", None):
+        _warn_jobs(args.jobs)
     return study
+
+
+def _advise(study) -> None:
+    from .spec import advice
+    for line in advice(study):
+        print(f"simlab: warning: {line}", file=sys.stderr)
 
 
 def _run(args) -> int:
@@ -196,8 +279,11 @@ def _run(args) -> int:
     t0 = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", RuntimeWarning)
-        result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet, resume=args.resume,
-                           fresh=args.fresh, cluster=args.cluster)
+        try:
+            result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet, resume=args.resume,
+                               fresh=args.fresh, cluster=args.cluster)
+        except KeyboardInterrupt as exc:
+            raise _stopped(exc, _resume_command(args, study))
     for msg in sorted({str(w.message) for w in caught}):
         print(f"simlab: warning: {msg}", file=sys.stderr)
     if result.up_to_date:
@@ -206,8 +292,12 @@ def _run(args) -> int:
     want_report = not args.no_report and not (result.up_to_date and (result.path / "report.html").is_file())
     summary = _write_report(result, success=args.success, quiet=args.quiet) if want_report else None
     print(_format_table(result.study, summary if summary is not None else result.summary()))
-    print(f"\n{study.replicates} replicates x {len(study.policies)} policies in "
-          f"{time.perf_counter() - t0:.1f} s; results in {result.path}")
+    if result.up_to_date:
+        print(f"\nnothing replayed: {result.path} already held the finished run ({study.replicates} replicates x "
+              f"{len(study.policies)} policies)")
+    else:
+        print(f"\n{study.replicates} replicates x {len(study.policies)} policies in "
+              f"{time.perf_counter() - t0:.1f} s; results in {result.path}")
     if (result.path / "report.html").is_file() and not args.no_report:
         print(f"report: {result.path / 'report.html'}")
     return 0
@@ -240,16 +330,22 @@ def _check(args) -> int:
     print(f"\n# work: {study.replicates} replicates x {len(study.policies)} policies = {campaigns} campaigns "
           f"of {c.horizon} trials ({campaigns * c.horizon:,} trials; {c.initial} initial per campaign)")
     if not args.no_timing:
-        from .runner import time_replicate
-        per = time_replicate(study, replicates=6)
-        workers = args.jobs if args.jobs > 0 else (__import__("os").cpu_count() or 1)
-        total = per * study.replicates / workers
-        print(f"# timing: {per:.2f} s per replicate here (the first {min(6, study.replicates)} replayed "
-              f"together); the study needs about {_duration(total)} with --jobs {workers}")
+        from .estimate import measure
+        est = measure(study)
+        workers = args.jobs if args.jobs > 0 else _cores()
+        print(f"# timing: simlab run needs about {_duration(est.run(study, args.jobs))} with --jobs {workers} "
+              f"({est.per_replicate:.2f} s per replicate, timed on the first {est.timed} with their world optima; "
+              f"{est.report:.1f} s for the report; {est.startup:.1f} s to start)")
+        sw = study.sweep
+        cells = len(sw.lengthscale) * len(sw.amplitude)
+        print(f"# timing: simlab sweep ({cells} cells x {sw.replicates} replicates) needs about "
+              f"{_duration(est.sweep(study, args.jobs))} with --jobs {workers}")
     return 0
 
 
 def _duration(seconds: float) -> str:
+    if seconds < 10:
+        return f"{seconds:.1f} s"
     if seconds < 90:
         return f"{seconds:.0f} s"
     if seconds < 5400:
@@ -265,10 +361,15 @@ def _sweep(args) -> int:
     study = load_study(args.study)
     if args.replicates:
         study = dataclasses.replace(study, sweep=dataclasses.replace(study.sweep, replicates=args.replicates))
+    _advise(study)
+    _warn_jobs(args.jobs)
     t0 = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", RuntimeWarning)
-        result = run_sweep_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
+        try:
+            result = run_sweep_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
+        except KeyboardInterrupt as exc:
+            raise _stopped(exc, "a sweep keeps no partial results; run it again to finish it")
     for msg in sorted({str(w.message) for w in caught}):
         print(f"simlab: warning: {msg}", file=sys.stderr)
     budget = study.campaign.horizon
@@ -293,7 +394,8 @@ def _sweep(args) -> int:
             _write_report(stored, success=0.9, quiet=args.quiet)
             print(f"report with a robustness section: {folder / 'report.html'}")
     else:
-        print(f"(run `simlab run {args.study}` too: its report will include this sweep)")
+        out = f" --out {args.out}" if args.out is not None else ""
+        print(f"(run `simlab run {args.study}{out}` too: its report will include this sweep)")
     first = result.ranking.iloc[0]
     verdict = ("a clear lead" if first["lead"] == "clear" else
                "not a clear lead once the cells' intervals are allowed for; more replicates would tell")
@@ -341,10 +443,23 @@ def _plan(args) -> int:
             result = stored
             print(f"using stored results in {folder}", file=sys.stderr)
     if result is None:
+        from . import __version__
+        from .runner import chunk_plan
+        from .store import FolderBusy, RunFolder
+        if folder.is_dir():   # refuse before saying it will run (prepare only reads the folder)
+            try:
+                RunFolder(folder, study, __version__, chunks=len(chunk_plan(study))).prepare(resume=False, fresh=False)
+            except FolderBusy as exc:
+                raise _plan_refusal(exc, args) from None
         print(f"no results for this study in {folder}: running it first", file=sys.stderr)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", RuntimeWarning)
-            result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
+            try:
+                result = run_study(study, jobs=args.jobs, out=args.out, progress=not args.quiet)
+            except FolderBusy as exc:
+                raise _plan_refusal(exc, args) from None
+            except KeyboardInterrupt as exc:
+                raise _stopped(exc, _resume_command(args, study) + ", then plan again")
         for msg in sorted({str(w.message) for w in caught}):
             print(f"simlab: warning: {msg}", file=sys.stderr)
     plan = budget_plan(result.traces, target=study.target, success=args.success)
@@ -380,6 +495,23 @@ def _pct_interval(value, low, high) -> str:
     """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
     from .page import _fmt_pct
     return f"{_fmt_pct(value)} % [{_fmt_pct(low)}-{_fmt_pct(high)} %]"
+
+
+def _plan_refusal(exc, args):
+    """A folder refusal in the words of `plan`, which has no --resume or --fresh of its own."""
+    from .store import FolderBusy
+    out = f" --out {args.out}" if args.out is not None else ""
+    if exc.kind == "unfinished":
+        what = (f"holds an unfinished run of this study; finish it with `simlab run {args.study}{out} --resume`, "
+                "then plan again")
+    elif exc.kind in ("other-study", "version", "chunks") and exc.fresh_ok:
+        what = (f"{exc.message.split(';')[0]}; give plan another --out, or replace them with "
+                f"`simlab run {args.study}{out} --fresh`")
+    elif exc.kind in ("other-study", "version", "chunks", "foreign"):
+        what = f"{exc.message.split(';')[0]}; give plan another --out"
+    else:
+        return exc
+    return FolderBusy(exc.file, exc.field, what, kind=exc.kind)
 
 
 def _int(value, *, above: int) -> str:

@@ -21,6 +21,9 @@ _NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
 _COMMA_NUMBER = re.compile(r"^[+-]?[\d.,]*\d[\d.,]*([eE][+-]?\d+)?$")
 _MISSING = {"nan", "na", "n/a", "#n/a", "null", "none", "missing", "-", "?", "#value!", "#div/0!"}
 _INFINITE = {"inf", "+inf", "-inf", "infinity", "+infinity", "-infinity"}
+# Largest magnitude accepted. The fits square and sum the values (and their spread); with
+# |x| <= 1e100 a sum of squares over a million rows stays far below float64's 1.8e308.
+_LIMIT = 1e100
 
 
 class DataError(ValueError):
@@ -98,10 +101,11 @@ def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data"
         if h in seen:
             raise DataError(name, "appears twice in the header; column names must be unique", column=h, row=1)
         seen[h] = True
+    _check_fields(name, text, sep, len(header))
     try:
         raw = pd.read_csv(io.StringIO(text), sep=sep, header=None, skiprows=1, dtype=str,
                           keep_default_na=False, na_filter=False, skip_blank_lines=False,
-                          names=header, index_col=False, engine="python")
+                          names=header, index_col=False, engine="python", on_bad_lines="error")
     except pd.errors.ParserError as exc:
         line = re.search(r"line (\d+)", str(exc))
         row = int(line.group(1)) if line else None   # pandas counts file lines, header included
@@ -130,6 +134,20 @@ def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data"
     out.attrs["skipped"] = skipped
     out.attrs["source"] = name
     return out
+
+
+def _check_fields(name: str, text: str, sep: str, width: int) -> None:
+    """Every row holds as many fields as the header (blank rows aside), else a DataError.
+
+    Read with the csv module first because pandas silently takes an extra field in the first
+    data row as the row's index, shifting every value of that row one column to the right.
+    """
+    for k, record in enumerate(csv.reader(io.StringIO(text, newline=""), delimiter=sep)):
+        if k == 0 or len(record) == width or all(not cell.strip() for cell in record):
+            continue
+        why = ("a stray separator or an unquoted comma inside a value?" if len(record) > width else
+               "a missing value or separator? leave a cell empty as two separators in a row")
+        raise DataError(name, f"has {len(record)} fields but the header has {width} columns ({why})", row=k + 1)
 
 
 def _read_text(path: Path, name: str) -> str:
@@ -170,7 +188,13 @@ def _numbers(name: str, col: pd.Series, column: str, role: str) -> np.ndarray:
         row = int(col.index[np.argmin(ok)])
         cell = cells.loc[row]
         raise DataError(name, _why(cell, role), column=column, row=row)
-    return cells.astype(float).to_numpy()
+    values = cells.astype(float).to_numpy()
+    big = ~(np.abs(values) <= _LIMIT)          # also "1e400", which reads as inf
+    if big.any():
+        row = int(col.index[np.argmax(big)])
+        raise DataError(name, f'"{cells.loc[row]}" is beyond ±{_LIMIT:g}; {role} needs numbers of a sensible size '
+                        "(rescale the column, e.g. into other units)", column=column, row=row)
+    return values
 
 
 def _why(cell: str, role: str) -> str:

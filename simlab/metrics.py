@@ -680,5 +680,14 @@ def _within_curves(frame, horizons, target, confidence_level):
 
 
 # The trials-to-target functions live in reach.py; they are re-exported here so that
-# `simlab.metrics` stays the one place to find every summary of the traces.
-from .reach import budget_plan, first_reach, reach_curves, trials_to_target_summary  # noqa: E402
+# `simlab.metrics` stays the one place to find every summary of the traces. The import is
+# lazy (PEP 562 module __getattr__): reach.py imports this module's validation helpers, so
+# importing reach at the bottom made `import simlab.reach` in a fresh interpreter circular.
+_FROM_REACH = ("budget_plan", "first_reach", "reach_curves", "trials_to_target_summary")
+
+
+def __getattr__(name):
+    if name in _FROM_REACH:
+        from . import reach
+        return getattr(reach, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -262,11 +262,11 @@ def _number_sections(text):
 
 
 def _sweep_section(study, ranking, images, cells=None):
-    """Robustness to a wrong prior: the misspecification sweep, if one was run."""
+    """Robustness to a wrong prior: the misspecification sweep, if one was run.
+
+    The world count comes from sweep.csv (``simlab sweep --replicates N`` overrides the
+    study's ``[sweep] replicates``, and the stored study.toml does not know it)."""
     frame = ranking.frame
-    # The sweep may have been run with --replicates: its own table says how many worlds.
-    worlds = (int(cells["replicates"].max()) if cells is not None and "replicates" in cells
-              else study.sweep.replicates)
     first = 0
     lead = str(frame.at[first, "lead"])
     verdict = ("its lead over the next policy is clear even at the pessimistic ends of the cells' intervals"
@@ -286,6 +286,11 @@ def _sweep_section(study, ranking, images, cells=None):
         f"<td class='n'>{ranking.span(i, 'correct_belief_failure_risk', 'pct')} %</td></tr>"
         for i in range(len(frame)))
     sw = study.sweep
+    if cells is not None and "replicates" in cells.columns and len(cells):
+        table = _Cells(SWEEP_SUMMARY, cells)
+        worlds = table.span(int(np.argmax(table.frame["replicates"].to_numpy())), "replicates", "int")
+    else:
+        worlds = str(sw.replicates)
     factors = lambda v: ", ".join(f"×{x:g}" for x in v)
     return (
         '<section id="sweep"><h2>0. Robustness to a wrong prior</h2>'

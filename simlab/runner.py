@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import warnings
 from dataclasses import dataclass
 
@@ -11,6 +12,7 @@ from scipy.stats import qmc
 
 from . import functions
 from .campaign import Belief, Trace, run_campaign
+from .columns import TRACE_COLUMNS, WORLD_COLUMNS
 from .kernels import make_kernel
 from .policies import POLICIES, Policy
 from .rng import stream
@@ -20,12 +22,8 @@ from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, Wo
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
            "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan", "time_replicate",
-           "history_arrays", "world_optimum", "TRACE_COLUMNS", "WORLD_COLUMNS"]
+           "history_arrays", "world_optimum", "TRACE_COLUMNS", "WORLD_COLUMNS", "connect"]
 
-TRACE_COLUMNS = ("policy", "replicate", "trial", "round", "initial", "history", "y", "f", "lost", "regret",
-                 "regret_seen", "rec_trial", "horizon")
-# worlds.csv, one row per replicate (the input columns, named as in [space], follow "replicate")
-WORLD_COLUMNS = ("replicate", "best_value", "optimum_gap", "reference", "reference_from_trial")
 
 
 def _kernel(prior: Prior, study: Study):
@@ -345,24 +343,84 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     from joblib import Parallel, delayed, parallel_config
 
     tasks = [(i, reps) for i, reps in enumerate(chunk_plan(study, chunk)) if i not in skip]
-    if cluster is None and jobs == 1:
+    # never more workers than chunks to share: each worker is a process with its own memory
+    workers = min(_workers(jobs), max(len(tasks), 1))
+    if cluster is None and workers == 1:
         for i, reps in tasks:
             yield i, _replay_chunk(study, reps, lockstep)
         return
     calls = (delayed(_indexed)(study, i, reps, lockstep) for i, reps in tasks)
     if cluster is None:
-        yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
+        try:
+            yield from Parallel(n_jobs=workers, return_as="generator_unordered")(calls)
+        except BaseException:
+            _stop_local_workers()   # Ctrl-C, SIGTERM or an error: no worker outlives the run
+            raise
         return
+    client = connect(cluster) if isinstance(cluster, str) else cluster
+    try:
+        with parallel_config(backend="dask", wait_for_workers_timeout=60):
+            n = max(1, sum(client.nthreads().values()))
+            yield from Parallel(n_jobs=n, return_as="generator_unordered")(calls)
+    finally:
+        if isinstance(cluster, str):
+            client.close()
+
+
+def _workers(jobs: int) -> int:
+    if jobs == -1:
+        import os
+        return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    return max(int(jobs), 1)
+
+
+def _stop_local_workers() -> None:
+    """Kill joblib's loky worker processes now (they would otherwise idle on for minutes)."""
+    try:
+        from joblib.externals.loky import reusable_executor
+    except ImportError:  # pragma: no cover - depends on the joblib version
+        return
+    executor = getattr(reusable_executor, "_executor", None)
+    if executor is not None:
+        executor.shutdown(wait=True, kill_workers=True)
+
+
+_CLUSTER_ADDRESS = re.compile(r"^(tcp|tls)://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):(\d{1,5})$")
+
+
+def connect(cluster: str, *, timeout: float = 10.0):
+    """A dask.distributed client of the scheduler at ``cluster`` (``tcp://HOST:PORT``).
+
+    Raises
+    ------
+    StudyError
+        One line for a malformed address, a missing dask installation or a scheduler that
+        cannot be reached within ``timeout`` seconds.
+    """
+    from .spec import StudyError
+    m = _CLUSTER_ADDRESS.match(cluster or "")
+    if m is None or not 0 < int(m.group(3)) < 65536:
+        raise StudyError("--cluster", "", f"must be a scheduler address like tcp://HOST:8786 (tcp:// or tls://, "
+                         f"a host and a port 1-65535); got {cluster!r}")
     try:
         from dask.distributed import Client
     except ImportError:  # pragma: no cover - depends on the installation
-        raise ImportError("--cluster needs dask and distributed: pip install 'simlab[cluster]'") from None
-    with Client(cluster) as client, parallel_config(backend="dask", wait_for_workers_timeout=60):
-        n = max(1, sum(client.nthreads().values()))
-        yield from Parallel(n_jobs=n, return_as="generator_unordered")(calls)
+        raise StudyError("--cluster", "", "needs dask and distributed: pip install 'simlab[cluster]'") from None
+    try:
+        return Client(cluster, timeout=timeout)
+    except (OSError, TimeoutError, ValueError) as exc:
+        reason = " ".join(str(exc).split())[:120] or type(exc).__name__
+        raise StudyError("--cluster", "", f"cannot reach a dask scheduler at {cluster} ({reason}); start one with "
+                         "`dask scheduler` or check the address") from None
 
 
 def _indexed(study: Study, i: int, reps: list[int], lockstep: bool = True):
+    import signal
+    import threading
+    if threading.current_thread() is threading.main_thread():
+        # A worker process: Ctrl-C reaches the whole process group, but the parent stops
+        # the workers itself; a worker printing its own KeyboardInterrupt is only noise.
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
     return i, _replay_chunk(study, reps, lockstep)
 
 

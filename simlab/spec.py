@@ -14,21 +14,20 @@ from typing import Any
 import numpy as np
 
 from . import functions
+from .columns import TRACE_COLUMNS, WORLD_COLUMNS
 from .kernels import KERNELS
 from .policies import POLICIES
 
 __all__ = [
     "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec", "Study",
-    "load_study", "parse_study", "dump_study",
+    "load_study", "parse_study", "dump_study", "advice", "MAX_REPLICATES", "NAME_LENGTH",
 ]
 
 GOALS = ("minimize", "maximize")
 DESIGNS = ("sobol", "lhs", "random")
 WORLD_METHODS = ("features", "grid")
-# Columns of traces.parquet that an input name must not shadow.
-RESERVED = ("policy", "replicate", "trial", "y", "f", "regret", "regret_seen", "initial",
-            "history", "round", "rec_trial", "lost",
-            "best_value", "optimum_gap", "reference", "reference_from_trial")   # and of worlds.csv
+# Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
+RESERVED = TRACE_COLUMNS + WORLD_COLUMNS[1:]
 _SECTION_KEYS = {
     "study": ("name", "goal", "replicates", "seed"),
     "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",
@@ -39,6 +38,11 @@ _SECTION_KEYS = {
     "history": ("file", "response"),
 }
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
+# A study name becomes a folder name: most file systems allow 255 bytes, and the folder's
+# own files add their names below it; 100 leaves room and is plenty for a person to read.
+NAME_LENGTH = 100
+# The most replicates a study may ask for, in the study file and with --replicates alike.
+MAX_REPLICATES = 10_000_000
 
 
 class StudyError(ValueError):
@@ -185,8 +189,10 @@ class Study:
         return tuple(p.label for p in self.policies)
 
     def with_replicates(self, replicates: int) -> "Study":
-        if isinstance(replicates, bool) or not isinstance(replicates, int) or replicates < 1:
-            raise StudyError(self.source, "--replicates", f"must be a whole number >= 1; got {replicates!r}")
+        """The study with another replicate count (``--replicates``), capped as in the study file."""
+        if (isinstance(replicates, bool) or not isinstance(replicates, int)
+                or not 1 <= replicates <= MAX_REPLICATES):
+            raise StudyError(self.source, "--replicates", f"must be between 1 and {MAX_REPLICATES}; got {replicates!r}")
         return dataclasses.replace(self, replicates=replicates)
 
 
@@ -237,8 +243,11 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     name = r.string(st, "study.name", default=default_name)
     if not _NAME.match(name):
         r.fail("study.name", f"must be a folder-safe name (letters, digits, _ . -); got {name!r}")
+    if len(name) > NAME_LENGTH:
+        r.fail("study.name", f"must be at most {NAME_LENGTH} characters (it names the results folder); "
+               f"got {len(name)}")
     goal = r.choice(st, "study.goal", GOALS, default="minimize")
-    replicates = r.integer(st, "study.replicates", low=1, high=10_000_000, default=100)
+    replicates = r.integer(st, "study.replicates", low=1, high=MAX_REPLICATES, default=100)
     seed = r.integer(st, "study.seed", low=0, high=2**63 - 1, default=0)
 
     wt = r.table(data, "world")
@@ -247,7 +256,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         function = r.choice(wt, "world.function", tuple(functions.FUNCTIONS), default=None)
         fn = functions.FUNCTIONS[function]
         r.keys(wt, "world", ("function", "noise", *_NOISE_KEYS),
-               hint="a published function takes only noise settings; drop the prior keys")
+               hint="a published function is the world itself and takes only noise settings: drop the "
+                    "prior keys here (the campaigns' model goes in [belief])", here=_SECTION_KEYS["world"])
         if goal != "minimize":
             r.fail("study.goal", f"published test functions are minimised; use goal = \"minimize\" with function = \"{function}\"")
         space = _read_space(r, data, fn=fn)
@@ -282,7 +292,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     ct = r.table(data, "campaign")
     r.keys(ct, "campaign", _SECTION_KEYS["campaign"])
     initial = r.integer(ct, "campaign.initial", low=0 if history else 1, high=100_000,
-                        default=0 if history else 2 * space.dim)
+                        default=0 if history else 2 * space.dim,
+                        why="" if history else " (0 only with a [history] of past trials)")
     design = r.choice(ct, "campaign.design", DESIGNS, default="sobol")
     budgets = r.int_list(ct, "campaign.budgets", low=1, high=100_000)
     if len(set(budgets)) != len(budgets):
@@ -292,7 +303,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
                f"(the initial design counts toward the budget); got {min(budgets)}")
     pool = r.integer(ct, "campaign.pool", low=16, high=1_000_000, default=2048)
     batch = r.integer(ct, "campaign.batch", low=1, high=10_000, default=1)
-    campaign = CampaignSpec(initial=initial, design=design, budgets=tuple(sorted(budgets)), pool=pool,
+    campaign = CampaignSpec(initial=initial, design=design, budgets=budgets, pool=pool,
                             batch=batch)
 
     tt = r.table(data, "target")
@@ -308,7 +319,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     sweep = SweepSpec(
         lengthscale=r.factor_list(sw, "sweep.lengthscale", SweepSpec.lengthscale),
         amplitude=r.factor_list(sw, "sweep.amplitude", SweepSpec.amplitude),
-        replicates=r.integer(sw, "sweep.replicates", low=1, high=10_000_000, default=min(replicates, 50)),
+        replicates=r.integer(sw, "sweep.replicates", low=1, high=MAX_REPLICATES, default=min(replicates, 50)),
     )
     return Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                  belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
@@ -472,13 +483,16 @@ class _Reader:
     def fail(self, field: str, message: str):
         raise StudyError(self.source, field, message)
 
-    def keys(self, t: dict, section: str, allowed: tuple[str, ...], hint: str = ""):
+    def keys(self, t: dict, section: str, allowed: tuple[str, ...], hint: str = "", here: tuple[str, ...] = ()):
+        """Refuse keys outside ``allowed``; ``here`` lists keys valid in this section in another
+        setting (they get ``hint``, never a pointer to another section)."""
         for key in t:
             if key not in allowed:
                 where = f"{section}.{key}" if section else key
                 close = difflib.get_close_matches(key, allowed, n=1)
                 msg = "unknown key"
-                home = [sec for sec, keys in _SECTION_KEYS.items() if key in keys and sec != section]
+                home = [sec for sec, keys in _SECTION_KEYS.items() if key in keys and sec != section
+                        and key not in here]
                 if home and not close:
                     msg += f"; it belongs in [{home[0]}] (is that section header missing?)"
                 else:
@@ -518,7 +532,7 @@ class _Reader:
             self.fail(field, f"must be <= {high:g}; got {v:g}")
         return v
 
-    def integer(self, t: dict, field: str, *, low=None, high=None, default=...) -> int:
+    def integer(self, t: dict, field: str, *, low=None, high=None, default=..., why: str = "") -> int:
         key = field.rsplit(".", 1)[-1]
         if key not in t:
             if default is ...:
@@ -529,7 +543,7 @@ class _Reader:
             self.fail(field, f"must be a whole number; got {v!r}")
         if (low is not None and v < low) or (high is not None and v > high):
             rng = f"between {low} and {high}" if high is not None else f">= {low}"
-            self.fail(field, f"must be {rng}; got {v}")
+            self.fail(field, f"must be {rng}{why}; got {v}")
         return v
 
     def int_list(self, t: dict, field: str, *, low, high) -> tuple[int, ...]:
@@ -538,12 +552,14 @@ class _Reader:
             self.fail(field, "is required: a list of whole numbers, e.g. [10, 20, 30]")
         v = t[key]
         if isinstance(v, int) and not isinstance(v, bool):
-            v = [v]
+            self.fail(field, f"must be a list of whole numbers, even for one budget: write a list like [{v}]")
         if not isinstance(v, list) or not v:
             self.fail(field, f"must be a non-empty list of whole numbers; got {v!r}")
         for item in v:
             if isinstance(item, bool) or not isinstance(item, int) or not low <= item <= high:
                 self.fail(field, f"every entry must be a whole number between {low} and {high}; got {item!r}")
+        if len(set(v)) == len(v) and v != sorted(v):
+            self.fail(field, f"must list budgets in increasing order, e.g. {sorted(v)}; got {v}")
         return tuple(v)
 
     def factor_list(self, t: dict, field: str, default: tuple[float, ...]) -> tuple[float, ...]:
@@ -596,6 +612,27 @@ class _Reader:
         if len(out) == 1:
             out = out * space.dim
         return tuple(out)
+
+
+def advice(study: Study) -> list[str]:
+    """Settings that are allowed but probably not what was meant, one line each (file: field: why).
+
+    The command line prints them as warnings on standard error; nothing is changed.
+    """
+    out, c = [], study.campaign
+    first = min(c.budgets)
+    if c.batch > first:
+        out.append(f"campaign.batch: {c.batch} trials per round is more than the budget {first}: that budget "
+                   "ends inside the first round, before any result of the round is back")
+    for i, p in enumerate(study.policies):
+        k = p.options.get("exploit_last", 0)
+        if k and k > first - c.initial:
+            out.append(f"policy[{i}].exploit_last: {k} is more than the {first - c.initial} trials budget {first} "
+                       "leaves after the initial design: at that budget the policy only exploits")
+    if study.target == 0:
+        out.append("target.regret: 0 asks for the exact optimum; with noise and continuous inputs almost no "
+                   "campaign gets there, so failure risk will be near 100 % (give the tolerance that matters)")
+    return [f"{study.source}: {line}" for line in out]
 
 
 # --------------------------------------------------------------------------- writing

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import errno
+import fcntl
 import hashlib
 import json
 import os
@@ -15,8 +17,9 @@ import pandas as pd
 
 from .spec import Study, StudyError, dump_study, load_study
 
-__all__ = ["TRACES", "STUDY", "HISTORY", "MANIFEST", "PARTIAL", "WORLDS", "results_dir", "write_results",
-           "read_results", "read_worlds", "atomic_write", "study_hash", "RunFolder", "FolderBusy"]
+__all__ = ["TRACES", "STUDY", "HISTORY", "MANIFEST", "PARTIAL", "WORLDS", "OWN_FILES", "results_dir", "write_results",
+           "read_results", "read_worlds", "atomic_write", "study_hash", "RunFolder", "FolderBusy", "make_folder",
+           "foreign_entries"]
 
 TRACES = "traces.parquet"
 WORLDS = "worlds.csv"       # one row per replicate: the world's searched optimum and optimum_gap
@@ -25,10 +28,115 @@ HISTORY = "history.csv"
 MANIFEST = "manifest.json"
 PARTIAL = ".partial"        # finished chunks of a run still under way
 LOCK = ".lock"
+# Files a run writes at the top of its folder besides the report's (names from page.py, read
+# in _own_names): --fresh deletes only these, and only in a folder holding a simlab manifest.
+# A new file written by simlab belongs here (tests/integration/test_safety_files.py checks a full run).
+OWN_FILES = (TRACES, WORLDS, STUDY, HISTORY, MANIFEST, LOCK)
+SWEEP = "sweep"
+_SWEEP_FILES = ("sweep.csv", "ranking.csv", "heatmap.png", "heatmap.svg")
 
 
 class FolderBusy(StudyError):
-    """The results folder cannot be used as asked (busy, unfinished, or holding another study)."""
+    """The results folder cannot be used as asked (busy, unfinished, or holding another study).
+
+    ``kind`` says why (busy, foreign, foreign-fresh, other-study, unfinished, version, chunks)
+    and ``fresh_ok`` whether ``--fresh`` would be allowed, so callers can word their own advice.
+    """
+
+    def __init__(self, file: str, field: str, message: str, *, kind: str = "busy", fresh_ok: bool = False):
+        super().__init__(file, field, message)
+        self.kind, self.fresh_ok = kind, fresh_ok
+
+
+def _own_names() -> tuple[set[str], dict[str, object]]:
+    """Top-level files and sub-folders (with a test for their entries) that simlab writes."""
+    from . import page
+    files = set(OWN_FILES) | {page.SUMMARY, page.TRIALS_TO_TARGET, page.TRIALS_TO_TARGET_SUMMARY, page.PAIRWISE,
+                              page.CHOICE, page.BUDGET_PLAN, page.REPORT}
+    figures = {f"{stem}.{ext}" for stem in page._FIGURE_STEMS for ext in ("png", "svg")}
+    folders = {
+        PARTIAL: lambda n: n.startswith("chunk-") and n.endswith(".parquet"),
+        page.FIGURES: lambda n: n in figures,
+        SWEEP: lambda n: n in _SWEEP_FILES,
+    }
+    return files, folders
+
+
+def _tmp_target(name: str) -> str | None:
+    """The file a temporary of :func:`atomic_write` (``.NAME.xxxx.tmp``) was for, or None."""
+    if not (name.startswith(".") and name.endswith(".tmp")):
+        return None
+    target = name[1:-4].rsplit(".", 1)[0]
+    return target or None
+
+
+def foreign_entries(path: Path, *, manifest: bool) -> list[str]:
+    """Entries of ``path`` that simlab did not write (``name/`` for folders), sorted.
+
+    Without a simlab manifest only a sweep folder (``sweep/``, which ``simlab sweep`` may
+    write before the study runs) and the lock count as simlab's.
+    """
+    files, folders = _own_names()
+    if not manifest:
+        files, folders = {LOCK}, {SWEEP: folders[SWEEP]}
+
+    def own_file(p: Path, ok) -> bool:
+        return p.is_file() and not p.is_symlink() and (ok(p.name) or ok(_tmp_target(p.name) or ""))
+
+    out = []
+    for p in path.iterdir():
+        if p.is_dir() and not p.is_symlink():
+            ok = folders.get(p.name)
+            if ok is None or not all(own_file(q, ok) for q in p.iterdir()):
+                out.append(p.name + "/")
+        elif not own_file(p, files.__contains__):
+            out.append(p.name)
+    return sorted(out)
+
+
+def _listing(names: list[str], limit: int = 4) -> str:
+    shown = ", ".join(names[:limit])
+    return shown + (f" and {len(names) - limit} more" if len(names) > limit else "")
+
+
+def make_folder(path: Path) -> list[Path]:
+    """Create ``path`` (and missing parents) or raise a one-line :class:`StudyError`.
+
+    Returns the folders created, outermost first, so a caller can remove them again; on
+    failure the ones made so far are removed before raising.
+    """
+    path = Path(path)
+    if path.exists() and not path.is_dir():
+        raise StudyError(str(path), "", "is a file, not a folder; give --out a folder (new or a results folder)")
+    missing = []
+    for p in [path, *path.parents]:
+        if p.exists():
+            if not p.is_dir():
+                raise StudyError(str(path), "", f"cannot be created: {p} is a file, not a folder")
+            break
+        missing.append(p)
+    made = []
+    try:
+        for p in reversed(missing):
+            try:
+                p.mkdir()
+            except FileExistsError:
+                if not p.is_dir():
+                    raise
+                continue          # made meanwhile by another process (two runs starting together)
+            made.append(p)
+    except OSError as exc:
+        _remove_made(made)
+        raise StudyError(str(path), "", f"cannot be created ({exc.strerror or exc}); choose another --out") from None
+    return made
+
+
+def _remove_made(made: list[Path]) -> None:
+    for p in reversed(made):
+        try:
+            p.rmdir()
+        except OSError:
+            pass
 
 
 def results_dir(study: Study, out: str | os.PathLike | None = None) -> Path:
@@ -104,15 +212,26 @@ def _write_manifest(path: Path, study: Study, version: str, *, chunks, complete:
 
 
 def _read_manifest(path: Path) -> dict | None:
+    """The folder's simlab manifest, or None (no file, or a file simlab did not write)."""
     try:
-        return json.loads((path / MANIFEST).read_text(encoding="utf-8"))
-    except (FileNotFoundError, json.JSONDecodeError):
+        data = json.loads((path / MANIFEST).read_text(encoding="utf-8"))
+    except (FileNotFoundError, NotADirectoryError, UnicodeDecodeError, json.JSONDecodeError):
         return None
+    if not isinstance(data, dict) or not {"study_hash", "simlab_version", "complete"} <= data.keys():
+        return None
+    return data
 
 
 def read_results(path: str | os.PathLike) -> tuple[Study, pd.DataFrame]:
     """Read a finished results folder."""
     path = Path(path)
+    if not path.exists():
+        raise StudyError(str(path), "", "no such folder")
+    if not path.is_dir():
+        what = ("is a study file, not a results folder; run it with `simlab run` and give its results folder "
+                "(results/<study name> unless --out)" if path.suffix == ".toml" else
+                "is a file, not a results folder (the folder holding traces.parquet and study.toml)")
+        raise StudyError(str(path), "", what)
     manifest = _read_manifest(path)
     if manifest is not None and not manifest.get("complete", False):
         raise StudyError(str(path), "", "holds an unfinished run (finish it with `simlab run STUDY.toml --resume`)")
@@ -120,7 +239,17 @@ def read_results(path: str | os.PathLike) -> tuple[Study, pd.DataFrame]:
         if not (path / name).is_file():
             raise StudyError(str(path), "", f"is not a finished results folder (no {name})")
     study = load_study(path / STUDY)
-    traces = pd.read_parquet(path / TRACES)
+    try:
+        traces = pd.read_parquet(path / TRACES)
+    except (OSError, ValueError) as exc:   # pyarrow's ArrowInvalid is a ValueError
+        reason = " ".join(str(exc).split())[:160]
+        raise StudyError(str(path / TRACES), "", f"cannot be read ({reason}); replay the study into this folder "
+                         "with `simlab run STUDY.toml --fresh`") from None
+    need = ["policy", "replicate", "trial", "regret", *study.space.names]
+    missing = [c for c in need if c not in traces.columns]
+    if missing:
+        raise StudyError(str(path / TRACES), "", f"lacks the column(s) {', '.join(missing)}; it was not written "
+                         "for this study.toml (replay it with `simlab run STUDY.toml --fresh`)")
     traces["policy"] = pd.Categorical(traces["policy"].astype(str), categories=list(study.labels))
     return study, traces
 
@@ -146,26 +275,16 @@ class RunFolder:
     chunks: int
 
     def __enter__(self):
-        self.path.mkdir(parents=True, exist_ok=True)
-        lock = self.path / LOCK
-        me = f"{socket.gethostname()} {os.getpid()}"
-        for _ in range(2):
-            try:
-                fd = os.open(lock, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-            except FileExistsError:
-                owner = lock.read_text(encoding="utf-8", errors="replace").strip() if lock.exists() else ""
-                if _alive(owner):
-                    raise FolderBusy(str(self.path), "", f"another simlab run ({owner or 'unknown'}) is writing "
-                                     "here; wait for it to finish or choose another --out") from None
-                lock.unlink(missing_ok=True)   # stale: its process is gone
-                continue
-            with os.fdopen(fd, "w") as f:
-                f.write(me)
-            return self
-        raise FolderBusy(str(self.path), "", "could not take the folder's lock file (.lock)")
+        self._made = make_folder(self.path)
+        try:
+            self._lock = _take_lock(self.path)
+        except BaseException:
+            _remove_made(self._made)
+            raise
+        return self
 
     def __exit__(self, *exc):
-        (self.path / LOCK).unlink(missing_ok=True)
+        _release_lock(self.path, self._lock)
         return False
 
     # ------------------------------------------------------------------ states
@@ -176,43 +295,62 @@ class RunFolder:
         ------
         FolderBusy
             When the folder holds an unfinished run and neither ``resume`` nor ``fresh``
-            was asked, or holds a different study (``fresh`` overrides that too).
+            was asked, or holds a different study (``fresh`` overrides that too), or holds
+            anything simlab did not write (``fresh`` never deletes that).
         """
+        if resume and fresh:
+            raise ValueError("`resume` and `fresh` exclude each other; got both")
         manifest = _read_manifest(self.path)
         mine = study_hash(self.study)
-        # a sweep of the study may be run before the study itself: its folder is no obstacle
-        others = [p.name for p in self.path.iterdir() if p.name not in (LOCK, "sweep")]
+        foreign = foreign_entries(self.path, manifest=manifest is not None)
+        where = str(self.path)
         if fresh:
+            if foreign:
+                raise FolderBusy(where, "", f"--fresh deletes only what simlab wrote, and this folder also holds "
+                                 f"{_listing(foreign)}; move that away or choose another --out", kind="foreign-fresh")
             self._clear()
             return set()
         if manifest is None:
-            if others:
-                raise FolderBusy(str(self.path), "", "is not empty and holds no simlab run; "
-                                 "choose another --out (or --fresh to overwrite it)")
+            if foreign:
+                raise FolderBusy(where, "", f"is not empty and holds no simlab run ({_listing(foreign)}); "
+                                 "choose another --out", kind="foreign")
             return set()
+        fresh_ok = not foreign
+        or_fresh = (" or --fresh to replace them" if fresh_ok else
+                    f" (--fresh cannot: the folder also holds {_listing(foreign)}, which simlab did not write)")
         if manifest.get("study_hash") != mine:
-            raise FolderBusy(str(self.path), "", f"holds results of a different study (\"{manifest.get('study')}\" or "
-                             "other settings); use --out for a new folder or --fresh to replace them")
+            raise FolderBusy(where, "", f"holds results of a different study (\"{manifest.get('study')}\" or "
+                             f"other settings); use --out for a new folder{or_fresh}", kind="other-study",
+                             fresh_ok=fresh_ok)
         if manifest.get("complete"):
             return None
         if not resume:
-            raise FolderBusy(str(self.path), "", "holds an unfinished run of this study; add --resume to "
-                             "continue it or --fresh to start over")
+            raise FolderBusy(where, "", "holds an unfinished run of this study; add --resume to continue it"
+                             + (" or --fresh to start over" if fresh_ok else ""), kind="unfinished", fresh_ok=fresh_ok)
+        start_over = "use --fresh to start over" if fresh_ok else "use another --out to start over"
         if manifest.get("simlab_version") != self.version:
             # campaigns replayed by another version may differ in the last digits (or more):
             # never mix them in one traces file
-            raise FolderBusy(str(self.path), "", f"holds an unfinished run made by simlab "
-                             f"{manifest.get('simlab_version')}, not {self.version}; use --fresh to start over")
+            raise FolderBusy(where, "", f"holds an unfinished run made by simlab "
+                             f"{manifest.get('simlab_version')}, not {self.version}; {start_over}", kind="version",
+                             fresh_ok=fresh_ok)
         if manifest.get("chunks") != self.chunks:
-            raise FolderBusy(str(self.path), "", "holds an unfinished run cut into different chunks "
-                             "(another simlab version?); use --fresh to start over")
+            raise FolderBusy(where, "", "holds an unfinished run cut into different chunks "
+                             f"(another simlab version?); {start_over}", kind="chunks", fresh_ok=fresh_ok)
         return self.done()
 
     def _clear(self) -> None:
-        for p in self.path.iterdir():
-            if p.name == LOCK:
+        """Delete what an earlier simlab run wrote here (callers have checked nothing else is)."""
+        if _read_manifest(self.path) is None:
+            keep = {LOCK}
+            own = [p for p in self.path.iterdir() if p.name == SWEEP]
+        else:
+            keep = {LOCK}
+            own = list(self.path.iterdir())
+        for p in own:
+            if p.name in keep:
                 continue
-            if p.is_dir():
+            if p.is_dir() and not p.is_symlink():
                 shutil.rmtree(p)
             else:
                 p.unlink()
@@ -269,6 +407,68 @@ class RunFolder:
         atomic_write(self.path / TRACES, write)
         _write_manifest(self.path, self.study, self.version, chunks=self.chunks, complete=True)
         shutil.rmtree(self.path / PARTIAL, ignore_errors=True)
+
+
+def _take_lock(folder: Path) -> int:
+    """Take the folder's lock; return its open descriptor (keep it open while writing).
+
+    The lock is an OS file lock (``flock``) on ``.lock``, so taking it is atomic and it dies
+    with its process (``kill -9`` included); the file names the holder ("host pid") for the
+    refusal message. A lock file naming a live process is honoured even when no flock is
+    held (a run on another host over a shared file system, or an older simlab).
+    """
+    lock = folder / LOCK
+    me = f"{socket.gethostname()} {os.getpid()}"
+    for _ in range(100):
+        try:
+            fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise StudyError(str(folder), "", f"cannot be written ({exc.strerror or exc}); choose another --out") from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError as exc:
+            owner = _owner(fd)
+            os.close(fd)
+            if exc.errno not in (errno.EAGAIN, errno.EACCES, errno.EWOULDBLOCK):
+                raise
+            raise FolderBusy(str(folder), "", f"another simlab run ({owner or 'starting up'}) is writing here; "
+                             "wait for it to finish or choose another --out") from None
+        # Its last holder may have removed the file between our open and flock (then we
+        # hold a lock on a file nobody else can see): try again on the current file.
+        try:
+            current = os.path.samestat(os.fstat(fd), os.stat(lock))
+        except FileNotFoundError:
+            current = False
+        if not current:
+            os.close(fd)
+            continue
+        owner = _owner(fd)
+        if owner and _alive(owner):
+            os.close(fd)
+            raise FolderBusy(str(folder), "", f"another simlab run ({owner}) is writing here; "
+                             "wait for it to finish or choose another --out")
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, me.encode(), 0)
+        return fd
+    raise FolderBusy(str(folder), "", "could not take the folder's lock file (.lock)")
+
+
+def _owner(fd: int) -> str:
+    try:
+        return os.pread(fd, 512, 0).decode("utf-8", errors="replace").strip()
+    except OSError:
+        return ""
+
+
+def _release_lock(folder: Path, fd: int) -> None:
+    """Remove the lock file (while still holding it), then let go. If the folder can no
+    longer be written the file stays, naming a finished process: the next run takes it over."""
+    try:
+        (folder / LOCK).unlink(missing_ok=True)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
 
 
 def _alive(owner: str) -> bool:

@@ -1,0 +1,11 @@
+"""The traces' own column names: the runner writes them, the study and calibrate refuse them as inputs."""
+
+__all__ = ["TRACE_COLUMNS", "WORLD_COLUMNS"]
+
+# Every column of traces.parquet other than the inputs. Add a new trace column here and
+# runner._frame, spec (input names) and calibrate (column names) all follow; a test checks
+# that the columns a replay builds are exactly these plus the inputs.
+TRACE_COLUMNS = ("policy", "replicate", "trial", "round", "initial", "history", "y", "f", "lost", "regret",
+                 "regret_seen", "rec_trial", "horizon")
+# worlds.csv, one row per replicate (the input columns, named as in [space], follow "replicate").
+WORLD_COLUMNS = ("replicate", "best_value", "optimum_gap", "reference", "reference_from_trial")

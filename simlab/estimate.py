@@ -1,0 +1,114 @@
+"""What a study will cost before it runs: real pieces timed here (a chunk, the report) and the run's shape."""
+
+from __future__ import annotations
+
+import os
+import tempfile
+import time
+from dataclasses import dataclass
+
+from .runner import _workers, chunk_plan
+from .spec import Study
+
+__all__ = ["Estimate", "measure", "process_age"]
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """Timed pieces of a study, and the wall time of ``simlab run`` and ``simlab sweep`` built from them.
+
+    Attributes
+    ----------
+    per_replicate : float
+        Seconds per replicate of the first chunk, replayed as a worker replays it: world,
+        world optimum, design and every policy's campaigns, as one lockstep block.
+    timed : int
+        Replicates timed.
+    startup : float
+        Seconds from the interpreter's start to simlab ready to replay (imports); paid once by
+        the command and once more by its worker processes, which start together.
+    report : float
+        Seconds to write the decision CSVs, figures and report.html (mostly figures: nearly
+        independent of the number of replicates).
+    """
+
+    per_replicate: float
+    timed: int
+    startup: float
+    report: float
+
+    def run(self, study: Study, jobs: int) -> float:
+        """Wall seconds of ``simlab run STUDY --jobs jobs`` (report included)."""
+        return self.startup + self._replay(study, jobs) + self.report
+
+    def sweep(self, study: Study, jobs: int) -> float:
+        """Wall seconds of ``simlab sweep STUDY --jobs jobs``: every cell replays ``[sweep] replicates``
+        (their world optima included) with the same workers."""
+        sw = study.sweep
+        cells = len(sw.lengthscale) * len(sw.amplitude)
+        cell = study.with_replicates(sw.replicates)
+        return self.startup + cells * self._replay(cell, jobs, start=False) + self._start_workers(cell, jobs)
+
+    def _replay(self, study: Study, jobs: int, *, start: bool = True) -> float:
+        plan = chunk_plan(study)
+        workers = min(_workers(jobs), len(plan))
+        costs = [self.per_replicate * len(c) for c in plan]
+        span = _makespan(costs, workers)
+        return span + (self._start_workers(study, jobs) if start else 0.0)
+
+    def _start_workers(self, study: Study, jobs: int) -> float:
+        # worker processes start together, each importing simlab as the command did
+        return self.startup if min(_workers(jobs), len(chunk_plan(study))) > 1 else 0.0
+
+
+def _makespan(costs: list[float], workers: int) -> float:
+    """Finish time of tasks handed out in order to whichever worker is free first (as joblib does)."""
+    free = [0.0] * max(workers, 1)
+    for c in costs:
+        i = min(range(len(free)), key=free.__getitem__)
+        free[i] += c
+    return max(free)
+
+
+def process_age() -> float:
+    """Seconds since this interpreter started (from Linux's /proc; 0 where there is none)."""
+    try:
+        with open("/proc/self/stat", encoding="ascii") as f:
+            fields = f.read().rsplit(")", 1)[1].split()
+        with open("/proc/uptime", encoding="ascii") as f:
+            uptime = float(f.read().split()[0])
+        return max(uptime - int(fields[19]) / os.sysconf("SC_CLK_TCK"), 0.0)
+    except (OSError, ValueError, IndexError):   # not Linux: start-up is left out of the estimate
+        return 0.0
+
+
+def measure(study: Study, *, replicates: int = 4) -> Estimate:
+    """Time whole chunks (the first ones, as workers replay them) until ``replicates``
+    replicates are timed (a prefix of the first chunk if it is larger), then the report on
+    their traces, in a temporary folder. Costs about that many replicates plus one report.
+    """
+    import pandas as pd
+    import pyarrow.parquet  # noqa: F401  (imported by every run: part of its start-up)
+
+    from . import api  # noqa: F401
+    from .runner import _replay_chunk
+    startup = process_age()
+    blocks, n = [], 0
+    for chunk in chunk_plan(study):
+        blocks.append(chunk[: replicates - n] if not blocks else chunk)
+        n += len(blocks[-1])
+        if n >= replicates:
+            break
+    frames = []
+    t0 = time.perf_counter()
+    for block in blocks:
+        frames.append(_replay_chunk(study, block))
+    per = (time.perf_counter() - t0) / n
+    traces = pd.concat(frames, ignore_index=True)
+    traces["policy"] = pd.Categorical(traces["policy"], categories=list(study.labels))
+    from .report import write_outputs
+    t0 = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="simlab-check-") as tmp:
+        write_outputs(tmp, study, traces)
+    report = time.perf_counter() - t0
+    return Estimate(per_replicate=per, timed=n, startup=startup, report=report)
