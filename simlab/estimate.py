@@ -102,7 +102,9 @@ def measure(study: Study, *, replicates: int = 4) -> Estimate:
     frames = []
     t0 = time.perf_counter()
     for block in blocks:
-        frames.append(_replay_chunk(study, block))
+        frame = _replay_chunk(study, block)
+        frame.attrs.clear()   # the chunk's worlds rows and warnings; pandas cannot concat frames in attrs
+        frames.append(frame)
     per = (time.perf_counter() - t0) / n
     traces = pd.concat(frames, ignore_index=True)
     traces["policy"] = pd.Categorical(traces["policy"], categories=list(study.labels))

@@ -52,10 +52,10 @@ def _own_names() -> tuple[set[str], dict[str, object]]:
     """Top-level files and sub-folders (with a test for their entries) that simlab writes."""
     from . import page
     files = set(OWN_FILES) | {page.SUMMARY, page.TRIALS_TO_TARGET, page.TRIALS_TO_TARGET_SUMMARY, page.PAIRWISE,
-                              page.CHOICE, page.BUDGET_PLAN, page.REPORT}
+                              page.CHOICE, page.BUDGET_PLAN, page.WITHIN_TARGET, page.REPORT}
     figures = {f"{stem}.{ext}" for stem in page._FIGURE_STEMS for ext in ("png", "svg")}
     folders = {
-        PARTIAL: lambda n: n.startswith("chunk-") and n.endswith(".parquet"),
+        PARTIAL: lambda n: n.startswith(("chunk-", "worlds-")) and n.endswith(".parquet"),
         page.FIGURES: lambda n: n in figures,
         SWEEP: lambda n: n in _SWEEP_FILES,
     }

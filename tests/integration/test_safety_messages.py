@@ -65,13 +65,15 @@ def small(tmp_path):
 
 # --------------------------------------------------------------------------- 3. reserved names
 def test_trace_columns_are_exactly_the_reserved_names_plus_inputs():
-    """Every column the runner writes is refused as an input name (columns.TRACE_COLUMNS)."""
+    """Every column the runner writes (traces and worlds.csv) is refused as an input name (columns.py)."""
+    from simlab.columns import TRACE_COLUMNS, WORLD_COLUMNS
     from simlab.runner import replay
     from simlab.spec import RESERVED, load_study
     study = load_study(ROOT / "configs" / "quick-1d.toml").with_replicates(1)
     traces = replay(study)
-    assert set(traces.columns) == set(RESERVED) | set(study.space.names)
-    assert "horizon" in RESERVED
+    assert set(traces.columns) == set(TRACE_COLUMNS) | set(study.space.names)
+    assert set(RESERVED) == set(TRACE_COLUMNS) | set(WORLD_COLUMNS)
+    assert "horizon" in RESERVED and "optimum_gap" in RESERVED
 
 
 def test_calibrate_refuses_a_column_named_horizon(tmp_path):

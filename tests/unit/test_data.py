@@ -81,14 +81,15 @@ def test_bad_cells_named_with_column_and_row(tmp_path, cell, why):
     assert 'column "titre", row 4 (the header is row 1): ' in msg and why in msg
 
 
-def test_short_row_is_a_blank_cell(tmp_path):
+def test_short_row_is_refused_with_its_row(tmp_path):
+    # a row with too few fields is an error naming the row, never a silent blank (issue 12, defect 2)
     err, msg = refusal(tmp_path, "feed_rate,titre\n0.5,6.1\n1.5\n")
-    assert (err.column, err.row) == ("titre", 3) and "is blank" in msg
+    assert err.row == 3 and "has 1 fields but the header has 2 columns" in msg
 
 
 def test_long_row_is_refused_with_its_row(tmp_path):
     err, msg = refusal(tmp_path, "feed_rate,titre\n0.5,6.1\n1,5,9.4\n")
-    assert err.row == 3 and "more fields than the header's 2 columns" in msg
+    assert err.row == 3 and "has 3 fields but the header has 2 columns" in msg
 
 
 def test_semicolon_file_with_decimal_commas_is_refused_not_guessed(tmp_path):
