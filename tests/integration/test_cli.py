@@ -1,11 +1,10 @@
 """The command line as a user meets it: exit codes, one-line errors, nothing written on bad input."""
 
-import subprocess
-import sys
 from pathlib import Path
 
 import pandas as pd
 import pytest
+from command_line import simlab
 
 ROOT = Path(__file__).resolve().parents[2]
 SMALL = """
@@ -30,11 +29,6 @@ rule = "ei"
 [[policy]]
 rule = "random"
 """
-
-
-def simlab(*args, cwd):
-    return subprocess.run([sys.executable, "-m", "simlab", *map(str, args)], cwd=cwd,
-                          capture_output=True, text=True, timeout=300)
 
 
 @pytest.mark.parametrize("command", [[], ["run"], ["check"], ["report"]])

@@ -8,52 +8,10 @@ number after a signal) and the project's own RULES.md.
 """
 
 import os
-import subprocess
-import sys
 from pathlib import Path
 
 import pytest
-
-SMALL = """
-[study]
-name = "safe-small"
-replicates = 2
-seed = 1
-[space]
-dose = [0.0, 1.0]
-[world]
-lengthscale = 0.2
-amplitude = 1.0
-noise = 0.05
-[campaign]
-initial = 2
-budgets = [4, 6]
-pool = 128
-[target]
-regret = 0.1
-[sweep]
-lengthscale = [1.0]
-amplitude = [1.0, 2.0]
-replicates = 2
-[[policy]]
-rule = "ei"
-[[policy]]
-rule = "random"
-"""
-
-
-def simlab(*args, cwd, timeout=300):
-    return subprocess.run([sys.executable, "-m", "simlab", *map(str, args)], cwd=cwd, capture_output=True,
-                          text=True, timeout=timeout)
-
-
-def one_line(out, code=2):
-    """The run ended with ``code`` and exactly one line on standard error, no traceback."""
-    lines = [line for line in out.stderr.splitlines() if line.strip()]
-    assert out.returncode == code, out.stderr
-    assert len(lines) == 1 and "Traceback" not in out.stderr, out.stderr
-    return lines[0]
-
+from command_line import SMALL, one_line, simlab
 
 def tree(folder: Path) -> dict:
     return {str(p.relative_to(folder)): p.read_bytes() if p.is_file() else None for p in sorted(folder.rglob("*"))}

@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from command_line import simlab
 
 # Long enough to be stopped part-way with --jobs 2 (8 chunks of 6 replicates).
 SLOW = """
@@ -39,11 +40,6 @@ features = 128
 [[policy]]
 rule = "random"
 """
-
-
-def simlab(*args, cwd, timeout=300):
-    return subprocess.run([sys.executable, "-m", "simlab", *map(str, args)], cwd=cwd, capture_output=True,
-                          text=True, timeout=timeout)
 
 
 def _session_alive(pgid: int) -> list[int]:
