@@ -21,7 +21,7 @@ from .noise import Observer
 from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
-           "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan", "time_replicate",
+           "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan",
            "history_arrays", "world_optimum", "TRACE_COLUMNS", "WORLD_COLUMNS", "connect"]
 
 
@@ -291,17 +291,6 @@ def _replay_chunk(study: Study, replicates: list[int], lockstep: bool = True) ->
     out.attrs["warnings"] = sorted({str(w.message) for w in caught})
     out.attrs["worlds"] = worlds
     return out
-
-
-def time_replicate(study: Study, *, replicates: int = 6) -> float:
-    """Seconds per replicate, timed on the first few replicates replayed as a worker would:
-    as one lockstep block (a whole chunk is usually larger, and a little faster per replicate)."""
-    import time
-
-    reps = chunk_plan(study)[0][:replicates]
-    t0 = time.perf_counter()
-    _replay_chunk(study, reps)
-    return (time.perf_counter() - t0) / len(reps)
 
 
 def chunk_plan(study: Study, chunk: int | None = None) -> list[list[int]]:
