@@ -22,13 +22,13 @@ import numpy as np
 from scipy.stats import norm, qmc
 from threadpoolctl import threadpool_limits
 
-from simlab.campaign import Belief, run_campaign
-from simlab.kernels import Matern52
-from simlab.lockstep import run_block
-from simlab.noise import Observer
+from simlab.replay.campaign import Belief, run_campaign
+from simlab.model.kernels import Matern52
+from simlab.replay.lockstep import run_block
+from simlab.worlds.noise import Observer
 from simlab.policies import ExpectedImprovement
-from simlab.runner import Replicate
-from simlab.worlds import FeatureWorld
+from simlab.replay.runner import Replicate
+from simlab.worlds.draws import FeatureWorld
 
 D, POOL, BUDGET, INITIAL, NOISE, LS, AMP = 2, 2048, 30, 5, 0.1, 0.2, 1.0
 

@@ -10,7 +10,7 @@ Worlds are random-feature draws (1024 frequencies, amplitude 1, mean 0) on the u
 deliberately short lengthscales, drawn per input log-uniformly in the ranges of ``HARD``
 (the study configs use 0.13-0.6 of the range). For every world:
 
-reference  an independent thorough search, sharing no code with ``simlab.worlds.find_minimum``:
+reference  an independent thorough search, sharing no code with ``simlab.worlds.draws.find_minimum``:
            a dense set (1-D: a regular grid of 2^18; 2-D: 2^20 Sobol' points; 4-D and 6-D:
            2^19 uniform points), ranked in float32; scipy.optimize.differential_evolution
            (population 40 per input, up to 1000 generations, float32 values); L-BFGS-B
@@ -40,9 +40,9 @@ from scipy.optimize import differential_evolution, minimize
 from scipy.stats import qmc
 from threadpoolctl import threadpool_limits
 
-from simlab.kernels import KERNELS
-from simlab.optimize import distinct_best, polish
-from simlab.worlds import FeatureWorld
+from simlab.model.kernels import KERNELS
+from simlab.model.optimize import distinct_best, polish
+from simlab.worlds.draws import FeatureWorld
 
 HARD = {1: (0.03, 0.1), 2: (0.05, 0.15), 4: (0.1, 0.2), 6: (0.15, 0.25)}
 KERNEL_NAMES = ("sqexp", "matern12", "matern32", "matern52")
@@ -135,7 +135,7 @@ def reference(world, d: int, rng) -> tuple[np.ndarray, float]:
 
 # --------------------------------------------------------------------------- the previous search
 def previous_find_minimum(f, fg, dim, rng, *, n_search=None, n_polish=8, extra=None, zoom=6, zoom_points=64):
-    """simlab.worlds.find_minimum as it was before issue 11 (verbatim)."""
+    """simlab.worlds.draws.find_minimum as it was before issue 11 (verbatim)."""
     if n_search is None:
         n_search = 2 ** min(10 + dim, 14)
     U = qmc.Sobol(dim, seed=rng).random_base2(int(np.ceil(np.log2(n_search))))

@@ -19,10 +19,10 @@ from pyinstrument import Profiler
 from scipy.stats import qmc
 from threadpoolctl import threadpool_limits
 
-from simlab.campaign import Belief, run_campaign
-from simlab.kernels import Matern52
+from simlab.replay.campaign import Belief, run_campaign
+from simlab.model.kernels import Matern52
 from simlab.policies import ExpectedImprovement
-from simlab.worlds import FeatureWorld
+from simlab.worlds.draws import FeatureWorld
 
 
 class PoolOnlyEI(ExpectedImprovement):
@@ -53,9 +53,9 @@ def main():
                          rng=np.random.default_rng(0))
 
     def lockstep():
-        from simlab.lockstep import run_block
-        from simlab.noise import Observer
-        from simlab.runner import Replicate
+        from simlab.replay.lockstep import run_block
+        from simlab.worlds.noise import Observer
+        from simlab.replay.runner import Replicate
 
         block = [Replicate(index=r, world=w, optimum=(np.zeros(2), 0.0), design=seq[:5], sequence=seq,
                            shocks=s, lost=np.zeros(30, bool), pool=pool) for r, (w, seq, s, pool) in enumerate(reps)]

@@ -10,9 +10,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .runner import replay_study
-from .spec import Study, load_study
-from .store import read_results, read_worlds, results_dir
+from .replay.runner import replay_study
+from .study.spec import Study, load_study
+from .replay.store import read_results, read_worlds, results_dir
 
 __all__ = ["StudyResult", "SweepResult", "WorldView", "run_study", "run_sweep_study", "load_results", "world"]
 
@@ -35,8 +35,8 @@ class StudyResult:
     def summary(self, *, seed: int = 0) -> pd.DataFrame:
         """One row per policy and budget: median regret (order-statistic interval), quartiles,
         within-target share and failure risk (Clopper-Pearson intervals) and CVaR-90 (with a
-        lower bound); see :func:`simlab.metrics.budget_summary`."""
-        from .metrics import budget_summary
+        lower bound); see :func:`simlab.evidence.metrics.budget_summary`."""
+        from .evidence.metrics import budget_summary
         return budget_summary(self.traces, budgets=list(self.study.campaign.budgets),
                               target=self.study.target, seed=seed)
 
@@ -75,11 +75,11 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
 
     Raises
     ------
-    simlab.store.FolderBusy
+    simlab.replay.store.FolderBusy
         When ``out`` holds an unfinished run (and neither ``resume`` nor ``fresh``), a
         different study, or another run is writing to it.
     """
-    from .runner import connect
+    from .replay.runner import connect
 
     if resume and fresh:
         raise ValueError("`resume` and `fresh` exclude each other; got both")
@@ -101,8 +101,8 @@ def run_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str | os.
 
 
 def _run_study(study: Study, *, jobs, out, write, progress, resume, fresh, cluster, version) -> StudyResult:
-    from .runner import chunk_plan, replay_chunks
-    from .store import RunFolder
+    from .replay.runner import chunk_plan, replay_chunks
+    from .replay.store import RunFolder
 
     if not write:
         with _progress_bar(study, progress) as bar:
@@ -184,8 +184,8 @@ def run_sweep_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str
     Writes ``sweep/sweep.csv`` (one row per policy, budget and cell) and
     ``sweep/ranking.csv`` under the results folder.
     """
-    from .store import atomic_write
-    from .sweep import run_sweep, safest_policy, summarize_sweep
+    from .replay.store import atomic_write
+    from .replay.sweep import run_sweep, safest_policy, summarize_sweep
 
     if not isinstance(study, Study):
         study = load_study(study)
@@ -208,7 +208,7 @@ def run_sweep_study(study: Study | str | os.PathLike, *, jobs: int = 1, out: str
     ranking = safest_policy(summary, budget=study.campaign.horizon)
     path = None
     if write:
-        from .plots import policy_colors, save_figure, sweep_figure
+        from .report.plots import policy_colors, save_figure, sweep_figure
 
         path = results_dir(study, out) / "sweep"
         atomic_write(path / "sweep.csv", lambda p: summary.to_csv(p, index=False))
@@ -275,7 +275,7 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
         ``goal = "maximize"`` larger is better, as in the traces' ``f`` column). Attributes:
 
         - ``best_x`` (d,), ``best_value``: the world's optimum as simlab's search found it,
-          the better of two independent searches (:func:`simlab.runner.world_optimum`);
+          the better of two independent searches (:func:`simlab.replay.runner.world_optimum`);
           the maximum for a ``maximize`` study.
         - ``optimum_gap``: how far the two searches disagreed (>= 0, objective units).
 
@@ -304,7 +304,7 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
     """
     from threadpoolctl import threadpool_limits
 
-    from .runner import make_world, world_optimum
+    from .replay.runner import make_world, world_optimum
 
     if not isinstance(study, Study):
         path = Path(study)

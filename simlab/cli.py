@@ -71,7 +71,7 @@ _positive_int = _option(int, lambda v: v >= 1, "a whole number >= 1")
 
 def _replicates(text: str) -> int:
     """--replicates: the same rule and words as ``[study] replicates`` in a study file."""
-    from .spec import MAX_REPLICATES
+    from .study.spec import MAX_REPLICATES
     try:
         value = int(text)
     except ValueError:
@@ -177,7 +177,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _kernel_names():
-    from .kernels import KERNELS
+    from .model.kernels import KERNELS
     return list(KERNELS)
 
 
@@ -200,7 +200,7 @@ def main(argv=None) -> int:
     """Run the command line; the exit code is 0, 2 (a mistake in the input, one line on
     standard error), 130 after Ctrl-C or 143 after SIGTERM (128 + the signal number)."""
     args = build_parser().parse_args(argv)
-    from .spec import StudyError
+    from .study.spec import StudyError
     try:
         previous = signal.signal(signal.SIGTERM, _on_sigterm)
     except ValueError:   # not the main thread (main() called from a thread): leave signals alone
@@ -234,7 +234,7 @@ def _stopped(exc: KeyboardInterrupt, hint: str) -> KeyboardInterrupt:
 
 
 def _resume_command(args, study) -> str:
-    from .store import results_dir
+    from .replay.store import results_dir
     folder = results_dir(study, args.out)
     out = f" --out {args.out}" if args.out is not None else ""
     return (f"finished chunks are kept in {folder}; continue with "
@@ -257,7 +257,7 @@ def _cores() -> int:
 
 
 def _load(args):
-    from .spec import load_study
+    from .study.spec import load_study
     study = load_study(args.study)
     if getattr(args, "replicates", None):
         study = study.with_replicates(args.replicates)
@@ -268,7 +268,7 @@ def _load(args):
 
 
 def _advise(study) -> None:
-    from .spec import advice
+    from .study.spec import advice
     for line in advice(study):
         print(f"simlab: warning: {line}", file=sys.stderr)
 
@@ -307,7 +307,7 @@ def _write_report(result, *, success: float, quiet: bool):
     """Write the decision files, figures and report.html; return the summary table."""
     import pandas as pd
 
-    from .report import report_steps, write_outputs
+    from .report.outputs import report_steps, write_outputs
     bar = None
     if not quiet:
         from tqdm.auto import tqdm
@@ -322,7 +322,7 @@ def _write_report(result, *, success: float, quiet: bool):
 
 
 def _check(args) -> int:
-    from .spec import dump_study
+    from .study.spec import dump_study
     study = _load(args)
     print(dump_study(study), end="")
     c = study.campaign
@@ -330,7 +330,7 @@ def _check(args) -> int:
     print(f"\n# work: {study.replicates} replicates x {len(study.policies)} policies = {campaigns} campaigns "
           f"of {c.horizon} trials ({campaigns * c.horizon:,} trials; {c.initial} initial per campaign)")
     if not args.no_timing:
-        from .estimate import measure
+        from .replay.estimate import measure
         est = measure(study)
         workers = args.jobs if args.jobs > 0 else _cores()
         print(f"# timing: simlab run needs about {_duration(est.run(study, args.jobs))} with --jobs {workers} "
@@ -357,7 +357,7 @@ def _sweep(args) -> int:
     import dataclasses
 
     from .api import run_sweep_study
-    from .spec import load_study
+    from .study.spec import load_study
     study = load_study(args.study)
     if args.replicates:
         study = dataclasses.replace(study, sweep=dataclasses.replace(study.sweep, replicates=args.replicates))
@@ -405,8 +405,8 @@ def _sweep(args) -> int:
 
 
 def _calibrate(args) -> int:
-    from .calibrate import calibrate
-    from .data import DataError
+    from .study.calibrate import calibrate
+    from .study.data import DataError
     inputs = [s.strip() for s in args.inputs.split(",")] if args.inputs else None
     try:
         cal = calibrate(args.data, response=args.response, inputs=inputs, kernel=args.kernel,
@@ -432,8 +432,8 @@ def _plan(args) -> int:
     import pandas as pd
 
     from .api import load_results, run_study
-    from .metrics import budget_plan
-    from .store import STUDY, TRACES, results_dir
+    from .evidence.metrics import budget_plan
+    from .replay.store import STUDY, TRACES, results_dir
     study = _load(args)
     folder = results_dir(study, args.out)
     result = None
@@ -444,8 +444,8 @@ def _plan(args) -> int:
             print(f"using stored results in {folder}", file=sys.stderr)
     if result is None:
         from . import __version__
-        from .runner import chunk_plan
-        from .store import FolderBusy, RunFolder
+        from .replay.runner import chunk_plan
+        from .replay.store import FolderBusy, RunFolder
         if folder.is_dir():   # refuse before saying it will run (prepare only reads the folder)
             try:
                 RunFolder(folder, study, __version__, chunks=len(chunk_plan(study))).prepare(resume=False, fresh=False)
@@ -493,13 +493,13 @@ def _plan(args) -> int:
 
 def _pct_interval(value, low, high) -> str:
     """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
-    from .page import _fmt_pct
+    from .report.page import _fmt_pct
     return f"{_fmt_pct(value)} % [{_fmt_pct(low)}-{_fmt_pct(high)} %]"
 
 
 def _plan_refusal(exc, args):
     """A folder refusal in the words of `plan`, which has no --resume or --fresh of its own."""
-    from .store import FolderBusy
+    from .replay.store import FolderBusy
     out = f" --out {args.out}" if args.out is not None else ""
     if exc.kind == "unfinished":
         what = (f"holds an unfinished run of this study; finish it with `simlab run {args.study}{out} --resume`, "

@@ -1,6 +1,6 @@
 """Small studies for tests: a base study as a dictionary, with per-test overrides."""
 
-from simlab.spec import parse_study
+from simlab.study.spec import parse_study
 
 
 def study_with(base: dict, source: str = "test", **over):

@@ -9,8 +9,8 @@ import numpy as np
 
 from scipy.special import log_ndtr
 
-from ..gp import Posterior, Stack
-from ..optimize import distinct_best, polish, polish_block
+from ..model.gp import Posterior, Stack
+from ..model.optimize import distinct_best, polish, polish_block
 
 __all__ = ["Option", "Context", "Block", "Policy", "Acquisition"]
 
@@ -53,7 +53,7 @@ class Policy:
     ``options`` declared on a class are merged with those of its bases, so a rule lists
     only its own settings. A rule that sets ``lockstep = True`` also implements
     :meth:`choose_block`, and its campaigns on a block of replicates then advance together
-    (``simlab.lockstep``) with results identical to replaying them one at a time.
+    (``simlab.replay.lockstep``) with results identical to replaying them one at a time.
     """
 
     rule: ClassVar[str] = ""
@@ -341,7 +341,7 @@ def _candidates(n_starts: int, m: int) -> int:
 def top_distinct(pools, values, k: int, *, min_dist: float = 1e-6) -> np.ndarray:
     """Indices (B, k) of each replicate's k best pool points by ``values`` whose inputs differ.
 
-    The same choice as :func:`simlab.optimize.distinct_best` made row by row, without
+    The same choice as :func:`simlab.model.optimize.distinct_best` made row by row, without
     sorting whole rows: candidates are the 4k best (``np.argpartition``), ordered by value
     and then index. A row with fewer than k distinct candidates repeats its best one.
     """

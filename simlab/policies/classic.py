@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.special import log_ndtr
 
-from ..worlds import FeatureSample
+from ..worlds.draws import FeatureSample
 from .base import Acquisition, Option, Policy
 from .logei import dlog_h, log_h
 

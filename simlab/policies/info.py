@@ -8,8 +8,8 @@ from scipy.linalg import solve_triangular
 from scipy.optimize import brentq
 from scipy.special import erfcx, log_ndtr, ndtr
 
-from ..optimize import polish
-from ..worlds import FeatureSample
+from ..model.optimize import polish
+from ..worlds.draws import FeatureSample
 from .base import Acquisition, Option
 
 __all__ = ["ProbabilityOfMinimum", "MaxValueEntropySearch", "KnowledgeGradient", "PathwiseDraws",

@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 
 from simlab import load_study
-from simlab.calibrate import calibrate
-from simlab.data import DataError
-from simlab.fit import loo_log_predictive
-from simlab.runner import replay
-from simlab.spec import parse_study
+from simlab.study.calibrate import calibrate
+from simlab.study.data import DataError
+from simlab.model.fit import loo_log_predictive
+from simlab.replay.runner import replay
+from simlab.study.spec import parse_study
 
 ROOT = Path(__file__).resolve().parents[2]
 RUNS = ROOT / "configs" / "fermentation-runs.csv"   # invented past runs (simulated, seed 20261203)

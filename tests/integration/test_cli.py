@@ -102,7 +102,7 @@ def test_plan_and_printed_table_show_the_shares_of_the_files(tmp_path):
     assert "using stored results" in out.stderr
     traces = pd.read_parquet(folder / "traces.parquet")
 
-    def pct(v):  # the report's percentage format (simlab.page._fmt_pct), written out again
+    def pct(v):  # the report's percentage format (simlab.report.page._fmt_pct), written out again
         v = 100 * float(v)
         return f"{v:.1f}" if (0 < v < 1 or 99 < v < 100) else f"{v:.0f}"
 

@@ -4,8 +4,8 @@ import pandas as pd
 import pytest
 from scipy.stats import wilcoxon
 
-from simlab.runner import replay
-from simlab.spec import parse_study
+from simlab.replay.runner import replay
+from simlab.study.spec import parse_study
 
 BUDGET = 15
 

@@ -1,8 +1,8 @@
 """Positive control on a real study: expected improvement against random search is a clear lead."""
 
-from simlab import compare
-from simlab.runner import replay
-from simlab.spec import parse_study
+from simlab.evidence import compare
+from simlab.replay.runner import replay
+from simlab.study.spec import parse_study
 
 
 def test_ei_against_random_is_clear_on_a_real_study():

@@ -12,9 +12,9 @@ import pandas as pd
 import pytest
 
 import simlab
-from simlab.report import report_steps, write_outputs
-from simlab.runner import replay
-from simlab.spec import parse_study
+from simlab.report.outputs import report_steps, write_outputs
+from simlab.replay.runner import replay
+from simlab.study.spec import parse_study
 
 TRICKY = 'EI <fast> & "bold" $x$'   # a label that must be escaped in HTML and drawn literally
 TARGET = 0.05
@@ -280,8 +280,8 @@ def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
     # rounds of trials get a regret-against-round figure: its medians are the regrets at the
     # last trial of each round, recomputed here directly from the traces
     assert (tmp_path / "figures" / "regret_rounds.png").is_file() and "round of 2 trials" in text
-    from simlab.report import _rounds_figure
-    from simlab.plots import policy_colors
+    from simlab.report.outputs import _rounds_figure
+    from simlab.report.plots import policy_colors
     fig = _rounds_figure(study, traces, policy_colors(study.labels), 0)
     line = next(l for l in fig.axes[0].get_lines() if l.get_label() == "ei")
     ends = traces[(traces.policy == "ei") & traces.trial.isin([2, 4, 6])]
@@ -361,7 +361,7 @@ def test_sweep_section_numbers_equal_the_sweep_files(tmp_path):
     import dataclasses
 
     from simlab.api import run_sweep_study
-    from simlab.spec import SweepSpec
+    from simlab.study.spec import SweepSpec
 
     study = dataclasses.replace(_study(), sweep=SweepSpec(lengthscale=(0.5, 2.0), amplitude=(1.0,), replicates=4))
     traces = replay(study)

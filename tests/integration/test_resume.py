@@ -12,9 +12,9 @@ import pandas as pd
 import pytest
 
 from simlab import run_study
-from simlab.runner import chunk_plan
-from simlab.spec import parse_study
-from simlab.store import FolderBusy
+from simlab.replay.runner import chunk_plan
+from simlab.study.spec import parse_study
+from simlab.replay.store import FolderBusy
 
 STUDY = """
 [study]

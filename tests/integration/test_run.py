@@ -6,8 +6,8 @@ import pytest
 from scipy.stats import wilcoxon
 
 from simlab import load_study, run_study
-from simlab.runner import replay, replay_replicate
-from simlab.spec import parse_study
+from simlab.replay.runner import replay, replay_replicate
+from simlab.study.spec import parse_study
 from studies import study_with
 
 

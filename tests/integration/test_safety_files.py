@@ -60,7 +60,7 @@ def test_fresh_replaces_a_simlab_run_but_not_a_file_added_to_it(small):
 def test_every_file_a_run_report_and_sweep_write_is_known_to_fresh(small):
     """A new output file must be added to store.OWN_FILES (or page's names), or --fresh
     would refuse simlab's own folders."""
-    from simlab.store import foreign_entries
+    from simlab.replay.store import foreign_entries
     assert simlab("sweep", "s.toml", "--out", "r", "--quiet", cwd=small).returncode == 0
     assert simlab("run", "s.toml", "--out", "r", "--quiet", cwd=small).returncode == 0
     assert (small / "r" / "sweep" / "sweep.csv").is_file() and (small / "r" / "figures").is_dir()
@@ -144,7 +144,7 @@ def test_permission_refused_on_creating_the_folder(small, monkeypatch, capsys):
 
 
 def test_write_permission_lost_part_way_is_one_line_and_removes_the_lock(small, monkeypatch, capsys):
-    from simlab import store
+    from simlab.replay import store
     from simlab.cli import main
     (small / "s.toml").write_text(SMALL.replace("replicates = 2\nseed", "replicates = 16\nseed"))
     real = store.RunFolder.write_chunk

@@ -25,8 +25,8 @@ def small(tmp_path):
 def test_trace_columns_are_exactly_the_reserved_names_plus_inputs():
     """Every column the runner writes (traces and worlds.csv) is refused as an input name (columns.py)."""
     from simlab.columns import TRACE_COLUMNS, WORLD_COLUMNS
-    from simlab.runner import replay
-    from simlab.spec import RESERVED, load_study
+    from simlab.replay.runner import replay
+    from simlab.study.spec import RESERVED, load_study
     study = load_study(ROOT / "configs" / "quick-1d.toml").with_replicates(1)
     traces = replay(study)
     assert set(traces.columns) == set(TRACE_COLUMNS) | set(study.space.names)
@@ -72,8 +72,8 @@ def test_jobs_above_the_cores_warns_in_one_line(small):
 def test_jobs_is_capped_at_the_number_of_chunks(monkeypatch):
     import joblib
 
-    from simlab.runner import chunk_plan, replay
-    from simlab.spec import load_study
+    from simlab.replay.runner import chunk_plan, replay
+    from simlab.study.spec import load_study
     study = load_study(ROOT / "configs" / "quick-1d.toml").with_replicates(3)
     asked = []
     real = joblib.Parallel

@@ -7,8 +7,8 @@ import pytest
 from scipy.optimize import differential_evolution
 
 import simlab
-from simlab.spec import parse_study
-from simlab.store import read_worlds
+from simlab.study.spec import parse_study
+from simlab.replay.store import read_worlds
 
 AMP = 1.5
 BASE = {"study": {"name": "world-look", "goal": "maximize", "replicates": 4, "seed": 21},
@@ -104,7 +104,7 @@ def test_world_accepts_a_path_and_refuses_bad_input(run, tmp_path):
 
 def test_worlds_csv_is_rebuilt_identically_on_resume(run, tmp_path, monkeypatch):
     study, result = run
-    import simlab.runner as runner
+    import simlab.replay.runner as runner
 
     real = runner.replay_chunks
 

@@ -6,8 +6,8 @@ from scipy.stats import norm
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Matern
 
-from simlab.gp import NUGGET, Posterior
-from simlab.kernels import KERNELS
+from simlab.model.gp import NUGGET, Posterior
+from simlab.model.kernels import KERNELS
 from simlab.policies import (ConfidenceBound, Context, ExpectedImprovement, PosteriorMean,
                              ProbabilityOfImprovement, ThompsonSampling, dlog_h, log_h)
 

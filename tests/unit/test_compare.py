@@ -1,4 +1,4 @@
-"""Tests of simlab.compare: Holm adjustment, paired statistics and the choice table."""
+"""Tests of simlab.evidence.compare: Holm adjustment, paired statistics and the choice table."""
 
 import math
 import statistics
@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from simlab import compare, metrics
+from simlab.evidence import compare, metrics
 
 
 # ---------------------------------------------------------------------------

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from scipy import integrate, stats
 
-from simlab import metrics
+from simlab.evidence import metrics
 
 N = 50          # replicates per simulated study: the size the issue asks about
 STUDIES = 2000  # repeated studies per check

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from simlab.data import DataError, read_table
+from simlab.study.data import DataError, read_table
 
 GOOD = "feed_rate,temperature,titre\n0.5,30.0,6.1\n1.5,32.5,9.4\n2.5,35.0,7.2\n"
 

@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-import simlab.gp
-from simlab.runner import replay
+import simlab.model.gp
+from simlab.replay.runner import replay
 from studies import study_with
 
 
@@ -49,7 +49,7 @@ def test_zero_noise_repeats_and_forced_jitter_warn_once_per_study(monkeypatch):
     """Pure exploitation with zero noise proposes inputs it has already evaluated. With the
     nugget removed the Gram matrix becomes singular; jitter steps in, the run completes, and
     the study carries one warning, not one per trial."""
-    monkeypatch.setattr(simlab.gp, "NUGGET", 0.0)
+    monkeypatch.setattr(simlab.model.gp, "NUGGET", 0.0)
     s = _study(policy=[{"rule": "mean"}], campaign={"budgets": [14]}, study={"replicates": 3})
     t = replay(s)
     _sane(t)

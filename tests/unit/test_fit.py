@@ -6,15 +6,15 @@ from scipy.optimize import minimize_scalar
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern, WhiteKernel
 
-from simlab.fit import (
+from simlab.model.fit import (
     FitResult,
     default_bounds,
     fit_hyperparameters,
     log_marginal_likelihood,
     loo_log_predictive,
 )
-from simlab.gp import NUGGET
-from simlab.kernels import KERNELS, make_kernel
+from simlab.model.gp import NUGGET
+from simlab.model.kernels import KERNELS, make_kernel
 
 KERNEL_NAMES = ("sqexp", "matern12", "matern32", "matern52")
 

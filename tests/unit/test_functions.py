@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize
 
-from simlab.functions import FUNCTIONS
-from simlab.worlds import FunctionWorld
+from simlab.worlds.functions import FUNCTIONS
+from simlab.worlds.draws import FunctionWorld
 
 # Source for every value below: REFERENCES.md (Surjanovic & Bingham, Virtual Library of
 # Simulation Experiments; Forrester, Sobester & Keane 2008; Dixon & Szego 1978).

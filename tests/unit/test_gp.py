@@ -7,9 +7,9 @@ import pytest
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
 
-import simlab.gp
-from simlab.gp import NUGGET, Posterior
-from simlab.kernels import KERNELS, SquaredExponential
+import simlab.model.gp
+from simlab.model.gp import NUGGET, Posterior
+from simlab.model.kernels import KERNELS, SquaredExponential
 
 NAMES = ["sqexp", "matern12", "matern32", "matern52"]
 LS = np.array([0.3, 0.5])
@@ -242,7 +242,7 @@ def test_duplicate_noise_free_inputs_are_absorbed_by_the_nugget(name):
 def test_jitter_warning_when_the_gram_matrix_is_singular(name, how, monkeypatch):
     """Without the nugget, noise-free duplicates make K singular: the posterior must raise a
     RuntimeWarning naming the jitter it added, and stay finite."""
-    monkeypatch.setattr(simlab.gp, "NUGGET", 0.0)
+    monkeypatch.setattr(simlab.model.gp, "NUGGET", 0.0)
     X, _ = data(5, 215)
     Xd = np.vstack([X, X])
     f = MEAN + np.sin(4 * Xd[:, 0])

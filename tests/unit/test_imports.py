@@ -15,7 +15,7 @@ MODULES = sorted(m.name for m in pkgutil.walk_packages(simlab.__path__, prefix="
 
 def test_modules_are_discovered():
     # negative control for the discovery itself: the module that once failed is among them
-    assert "simlab.reach" in MODULES and "simlab.metrics" in MODULES and "simlab.policies.base" in MODULES
+    assert "simlab.evidence.reach" in MODULES and "simlab.evidence.metrics" in MODULES and "simlab.policies.base" in MODULES
 
 
 def test_every_module_imports_alone_in_a_fresh_interpreter():

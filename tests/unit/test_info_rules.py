@@ -8,12 +8,12 @@ from scipy import integrate
 from scipy.optimize import brentq
 from scipy.stats import norm, truncnorm
 
-from simlab.gp import Posterior
-from simlab.kernels import Matern52
+from simlab.model.gp import Posterior
+from simlab.model.kernels import Matern52
 from simlab.policies import (GPUCB, Context, ExpectedImprovement, GPHedge, KnowledgeGradient,
                              MaxValueEntropySearch, ProbabilityOfMinimum)
 from simlab.policies.info import expected_min_drop, knowledge_gradient, max_value_information
-from simlab.spec import StudyError, parse_study
+from simlab.study.spec import StudyError, parse_study
 
 Z_MAX = 4.5  # Monte Carlo acceptance: |estimate - exact| < 4.5 sd (two-sided p = 7e-6 per comparison)
 

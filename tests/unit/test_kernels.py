@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
 
-from simlab.kernels import KERNELS, make_kernel
+from simlab.model.kernels import KERNELS, make_kernel
 
 NAMES = ["sqexp", "matern12", "matern32", "matern52"]
 LENGTHSCALE = np.array([0.3, 0.7, 1.5])

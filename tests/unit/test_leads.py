@@ -7,9 +7,10 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from simlab import compare, metrics, page, plots
-from simlab.spec import StudyError, dump_study, parse_study
-from simlab.sweep import safest_policy
+from simlab.evidence import compare, metrics
+from simlab.report import page, plots
+from simlab.study.spec import StudyError, dump_study, parse_study
+from simlab.replay.sweep import safest_policy
 
 
 # ---------------------------------------------------------------------------

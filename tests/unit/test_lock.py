@@ -6,8 +6,8 @@ import socket
 
 import pytest
 
-from simlab.spec import parse_study
-from simlab.store import FolderBusy, RunFolder
+from simlab.study.spec import parse_study
+from simlab.replay.store import FolderBusy, RunFolder
 
 STUDY = parse_study({"space": {"a": [0.0, 1.0]}, "world": {"lengthscale": 0.2, "amplitude": 1.0, "noise": 0.1},
                      "campaign": {"initial": 2, "budgets": [4]}, "target": {"regret": 0.1},

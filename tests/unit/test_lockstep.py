@@ -11,14 +11,14 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import simlab.gp
-from simlab.campaign import Belief
-from simlab.gp import Posterior, Stack, matvec, rowdot, vecmat
-from simlab.kernels import KERNELS, Matern52
-from simlab.lockstep import fits_lockstep
+import simlab.model.gp
+from simlab.replay.campaign import Belief
+from simlab.model.gp import Posterior, Stack, matvec, rowdot, vecmat
+from simlab.model.kernels import KERNELS, Matern52
+from simlab.replay.lockstep import fits_lockstep
 from simlab.policies import POLICIES
-from simlab.runner import replay
-from simlab.worlds import ConditionedWorld, FeatureWorld, GridWorld, WorldBlock
+from simlab.replay.runner import replay
+from simlab.worlds.draws import ConditionedWorld, FeatureWorld, GridWorld, WorldBlock
 from studies import study_with
 
 
@@ -114,7 +114,7 @@ def test_stack_moments_match_a_dense_solve():
 def test_repeated_input_raises_jitter_for_that_replicate_only(monkeypatch):
     """Without the nugget a noise-free repeat makes one replicate's Gram matrix singular:
     that replicate alone is refactored with jitter, and it equals a Posterior doing the same."""
-    monkeypatch.setattr(simlab.gp, "NUGGET", 0.0)
+    monkeypatch.setattr(simlab.model.gp, "NUGGET", 0.0)
     rng = np.random.default_rng(5)
     kernel = Matern52([0.3], 1.0)
     st = Stack(kernel, 0.0, 0.0, pools=rng.random((3, 20, 1)))
@@ -207,7 +207,7 @@ def test_identity_holds_with_past_trials():
     import dataclasses
     from pathlib import Path
 
-    from simlab.spec import load_study
+    from simlab.study.spec import load_study
 
     s = load_study(Path(__file__).resolve().parents[2] / "configs" / "fermentation-continue.toml")
     s = dataclasses.replace(s, replicates=5)

@@ -1,4 +1,4 @@
-"""Tests of simlab.metrics against published values and naive recomputations."""
+"""Tests of simlab.evidence.metrics against published values and naive recomputations."""
 
 import math
 import statistics
@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from simlab import metrics
+from simlab.evidence import metrics
 
 Z95 = 1.959963984540054  # standard normal 97.5% quantile (common practice)
 

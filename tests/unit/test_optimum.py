@@ -4,11 +4,11 @@ import numpy as np
 import pytest
 from scipy.optimize import differential_evolution, minimize
 
-from simlab.kernels import KERNELS
-from simlab.optimize import separated_best
+from simlab.model.kernels import KERNELS
+from simlab.model.optimize import separated_best
 from simlab.rng import stream
-from simlab.runner import world_optimum
-from simlab.worlds import FeatureWorld, SearchPlan, World, find_minimum, search_plan
+from simlab.replay.runner import world_optimum
+from simlab.worlds.draws import FeatureWorld, SearchPlan, World, find_minimum, search_plan
 
 # The bar: a miss below 1e-3 x amplitude (worlds here have amplitude 1).
 MISS = 1e-3
@@ -99,7 +99,7 @@ class _Coin(World):
 
 
 def test_two_searches_keep_the_better_value_and_report_the_gap():
-    from simlab.spec import parse_study
+    from simlab.study.spec import parse_study
 
     study = parse_study({"study": {"replicates": 3, "seed": 5}, "space": {"a": [0.0, 1.0]},
                          "world": {"lengthscale": 0.3, "amplitude": 1.0, "noise": 0.0},
@@ -116,8 +116,8 @@ def test_two_searches_keep_the_better_value_and_report_the_gap():
 def test_report_warns_when_a_gap_exceeds_one_percent_of_the_target():
     import pandas as pd
 
-    from simlab.page import _optimum_warning
-    from simlab.spec import parse_study
+    from simlab.report.page import _optimum_warning
+    from simlab.study.spec import parse_study
 
     study = parse_study({"study": {"replicates": 3, "seed": 5}, "space": {"a": [0.0, 1.0]},
                          "world": {"lengthscale": 0.3, "amplitude": 1.0, "noise": 0.0},

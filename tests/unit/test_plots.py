@@ -6,10 +6,11 @@ import pytest
 from matplotlib.colors import to_hex
 from scipy.stats import norm
 
-from simlab import compare, metrics, plots
-from simlab.gp import Posterior
-from simlab.runner import make_belief, make_world, replay
-from simlab.snapshot import snapshot_figure
+from simlab.evidence import compare, metrics
+from simlab.report import plots
+from simlab.model.gp import Posterior
+from simlab.replay.runner import make_belief, make_world, replay
+from simlab.report.snapshot import snapshot_figure
 from studies import study_with
 
 LABELS = ("EI", "Thompson", "Random")

@@ -5,8 +5,8 @@ import pytest
 from scipy.optimize import check_grad, minimize
 from threadpoolctl import threadpool_limits
 
-from simlab.functions import FUNCTIONS
-from simlab.optimize import polish_block
+from simlab.worlds.functions import FUNCTIONS
+from simlab.model.optimize import polish_block
 
 # ---------------------------------------------------------------------------------------------
 # Test functions on the unit cube, with analytic gradients. Every one works on U of any shape
@@ -20,7 +20,7 @@ def _box(lo, hi):
 
 
 def _branin(U):
-    # Branin on [-5, 10] x [0, 15] (Dixon & Szego 1978); values checked against simlab.functions.
+    # Branin on [-5, 10] x [0, 15] (Dixon & Szego 1978); values checked against simlab.worlds.functions.
     lo, w = _box([-5.0, 0.0], [10.0, 15.0])
     X = lo + w * U
     x1, x2 = X[..., 0], X[..., 1]
@@ -131,7 +131,7 @@ QUAD20, QUAD20_X = _bound_quadratic(20, seed=12)
 
 
 def test_the_test_functions_are_right():
-    # Values against simlab.functions (published definitions; test_functions.py checks those
+    # Values against simlab.worlds.functions (published definitions; test_functions.py checks those
     # against the literature) and gradients against finite differences (scipy.optimize.check_grad).
     rng = np.random.default_rng(2024)
     for name, fg, d in [("branin", _branin, 2), ("six-hump-camel", _camel, 2), ("forrester", _forrester, 1)]:
@@ -398,7 +398,7 @@ def test_non_finite_values_and_gradients():
 
 
 def test_one_dimension():
-    # Forrester, Sobester & Keane (2008), as recorded in simlab.functions (REFERENCES.md):
+    # Forrester, Sobester & Keane (2008), as recorded in simlab.worlds.functions (REFERENCES.md):
     # minimum -6.0207400558 at x = 0.7572487562 (10 printed digits).
     # Starts in [0.6, 0.95] lie in that minimiser's basin (the function rises monotonically
     # away from it over that interval: sign of the derivative checked below).

@@ -5,14 +5,14 @@ import pytest
 from scipy import stats
 from scipy.stats import qmc
 
-from simlab.campaign import Belief, run_campaign
-from simlab.gp import Posterior
-from simlab.kernels import Matern52
-from simlab.noise import Observer
+from simlab.replay.campaign import Belief, run_campaign
+from simlab.model.gp import Posterior
+from simlab.model.kernels import Matern52
+from simlab.worlds.noise import Observer
 from simlab.policies import Context, ExpectedImprovement, RandomSearch
-from simlab.runner import replay
-from simlab.spec import parse_study
-from simlab.worlds import FeatureWorld
+from simlab.replay.runner import replay
+from simlab.study.spec import parse_study
+from simlab.worlds.draws import FeatureWorld
 
 KERNEL = Matern52([0.25, 0.25], 1.0)
 BELIEF = Belief(KERNEL, 0.0, 0.05)

@@ -4,7 +4,7 @@ import math
 
 import pytest
 
-from simlab.spec import StudyError, dump_study, load_study, parse_study
+from simlab.study.spec import StudyError, dump_study, load_study, parse_study
 
 BASE = """
 [study]

@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
 
-from simlab.kernels import KERNELS
+from simlab.model.kernels import KERNELS
 from simlab.rng import stream
-from simlab.worlds import FeatureSample, FeatureWorld, GridWorld
+from simlab.worlds.draws import FeatureSample, FeatureWorld, GridWorld
 
 NAMES = ["sqexp", "matern12", "matern32", "matern52"]
 AMP = 1.2

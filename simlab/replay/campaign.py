@@ -8,10 +8,10 @@ from typing import Callable
 
 import numpy as np
 
-from .gp import Posterior
-from .kernels import Kernel
-from .policies import Context, Policy
-from .worlds import World
+from ..model.gp import Posterior
+from ..model.kernels import Kernel
+from ..policies import Context, Policy
+from ..worlds.draws import World
 
 __all__ = ["Belief", "Trace", "run_campaign"]
 
@@ -117,7 +117,7 @@ def _refit(post: Posterior, rng: np.random.Generator) -> None:
     Two starts: the current hyperparameters and one random point. With too little data
     (fewer than d + 2 observations) or a constant response the belief is left as it is.
     """
-    from .fit import fit_hyperparameters
+    from ..model.fit import fit_hyperparameters
 
     kernel = post.kernel
     if post.n < kernel.dim + 2 or np.ptp(post.y) == 0:

@@ -103,7 +103,7 @@ class Kernel:
         Every entry is computed by the same elementwise steps (scaled differences summed
         over the inputs one at a time), so an entry's bits do not depend on how many
         replicates are stacked or how many points sit beside it. Lockstep replicates
-        (``simlab.lockstep``) and the one-at-a-time posterior share this function, which is
+        (``simlab.replay.lockstep``) and the one-at-a-time posterior share this function, which is
         what keeps their results bit-identical.
         """
         r = np.sqrt(self._stacked_sq(A, C))

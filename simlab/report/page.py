@@ -12,7 +12,7 @@ import re
 import numpy as np
 import pandas as pd
 
-from . import compare
+from ..evidence import compare
 
 SUMMARY = "summary.csv"
 WITHIN_TARGET = "within_target.csv"
@@ -199,7 +199,7 @@ footer { margin-top: 3rem; color: var(--muted); font-size: .85rem; border-top: 1
 
 def render(study, tables, images, *, success):
     """The whole report.html text from the decision tables and the PNG bytes of the figures."""
-    from . import __version__
+    from .. import __version__
 
     summary = _Cells(SUMMARY, tables[SUMMARY])
     plan = _Cells(BUDGET_PLAN, tables[BUDGET_PLAN])
@@ -369,7 +369,7 @@ def _noise_words(w):
 def _world_section(study):
     w = study.world
     if w.function is not None:
-        from .functions import FUNCTIONS
+        from ..worlds.functions import FUNCTIONS
 
         fn = FUNCTIONS[w.function]
         return (f"<p>Every replicate uses the published test function <b>{_e(fn.name)}</b> "
@@ -442,7 +442,7 @@ def _assumptions(study, version):
 
 def _settings(spec):
     """A policy's settings that differ from the rule's defaults, e.g. ``width = 3``."""
-    from .policies import POLICIES
+    from ..policies import POLICIES
 
     options = getattr(POLICIES.get(spec.rule), "options", {})
     shown = []

@@ -10,9 +10,9 @@ from pathlib import Path
 import numpy as np
 
 from .data import DataError, read_table
-from .fit import FitResult, fit_hyperparameters, loo_log_predictive
-from .kernels import KERNELS
-from .rng import label_key
+from ..model.fit import FitResult, fit_hyperparameters, loo_log_predictive
+from ..model.kernels import KERNELS
+from ..rng import label_key
 from .spec import _NAME, GOALS, RESERVED, Prior, Space, _toml_key, _toml_value
 
 __all__ = ["Calibration", "KernelFit", "calibrate"]
@@ -196,7 +196,7 @@ def calibrate(path, *, response: str, inputs: Sequence[str] | None = None, kerne
     Raises
     ------
     DataError
-        One line naming the file, column and row: anything :func:`simlab.data.read_table`
+        One line naming the file, column and row: anything :func:`simlab.study.data.read_table`
         refuses, plus fewer rows than inputs + 2, too few distinct input settings, a constant
         response or input, and column names a study cannot use. Repeated input settings with
         different responses are fine: they are what tells the noise.

@@ -8,7 +8,7 @@ import time
 from dataclasses import dataclass
 
 from .runner import _workers, chunk_plan
-from .spec import Study
+from ..study.spec import Study
 
 __all__ = ["Estimate", "measure", "process_age"]
 
@@ -90,7 +90,7 @@ def measure(study: Study, *, replicates: int = 4) -> Estimate:
     import pandas as pd
     import pyarrow.parquet  # noqa: F401  (imported by every run: part of its start-up)
 
-    from . import api  # noqa: F401
+    from .. import api  # noqa: F401
     from .runner import _replay_chunk
     startup = process_age()
     blocks, n = [], 0
@@ -108,7 +108,7 @@ def measure(study: Study, *, replicates: int = 4) -> Estimate:
     per = (time.perf_counter() - t0) / n
     traces = pd.concat(frames, ignore_index=True)
     traces["policy"] = pd.Categorical(traces["policy"], categories=list(study.labels))
-    from .report import write_outputs
+    from ..report.outputs import write_outputs
     t0 = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="simlab-check-") as tmp:
         write_outputs(tmp, study, traces)

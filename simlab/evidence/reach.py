@@ -68,7 +68,7 @@ def _km_by_policy(frame, target, confidence_level, method):
 
     The band at trial t: where no campaign was censored before t, the share is a plain
     binomial share of the n campaigns (first passage <= t), and the band is its
-    Clopper-Pearson exact interval (`simlab.metrics._share_interval`), whose coverage
+    Clopper-Pearson exact interval (`simlab.evidence.metrics._share_interval`), whose coverage
     is at least the nominal level for every true share; every simlab campaign runs to
     the study's horizon, so this is the case at every trial of a study. Past a campaign
     censored earlier, the band is scipy's Greenwood band on the `method` scale; where
@@ -135,7 +135,7 @@ def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):
     Descriptive only: "the first trial at which the recommendation was within target"
     is not something a real campaign can observe (it does not know its regret), and a
     recommendation can get worse afterwards. Budgets are planned on the share within
-    target *after* each trial (`simlab.metrics.within_target_curves`, `budget_plan`).
+    target *after* each trial (`simlab.evidence.metrics.within_target_curves`, `budget_plan`).
 
     Parameters
     ----------
@@ -281,7 +281,7 @@ def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0
     ----------
     traces : DataFrame
         Traces with columns ``policy, replicate, trial, regret`` (and optionally
-        ``horizon``, see `simlab.metrics.within_target_curves`).
+        ``horizon``, see `simlab.evidence.metrics.within_target_curves`).
     target : float
         Regret tolerance.
     success : float, default 0.9

@@ -10,15 +10,15 @@ import numpy as np
 import pandas as pd
 from scipy.stats import qmc
 
-from . import functions
+from ..worlds import functions
 from .campaign import Belief, Trace, run_campaign
-from .columns import TRACE_COLUMNS, WORLD_COLUMNS
-from .kernels import make_kernel
-from .policies import POLICIES, Policy
-from .rng import stream
-from .spec import Prior, Study
-from .noise import Observer
-from .worlds import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
+from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
+from ..model.kernels import make_kernel
+from ..policies import POLICIES, Policy
+from ..rng import stream
+from ..study.spec import Prior, Study
+from ..worlds.noise import Observer
+from ..worlds.draws import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
            "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan",
@@ -167,7 +167,7 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     """Every policy's campaigns on each replicate: per replicate, ``[(label, [(budget, trace)])]``.
 
     Campaigns of a rule that can advance in lockstep run as one block over ``reps``
-    (:func:`simlab.lockstep.run_block`); the others run one at a time. Both give the same
+    (:func:`simlab.replay.lockstep.run_block`); the others run one at a time. Both give the same
     traces, so ``lockstep=False`` (every campaign alone) is the reference the tests use.
     """
     from .lockstep import fits_lockstep, run_block
@@ -386,7 +386,7 @@ def connect(cluster: str, *, timeout: float = 10.0):
         One line for a malformed address, a missing dask installation or a scheduler that
         cannot be reached within ``timeout`` seconds.
     """
-    from .spec import StudyError
+    from ..study.spec import StudyError
     m = _CLUSTER_ADDRESS.match(cluster or "")
     if m is None or not 0 < int(m.group(3)) < 65536:
         raise StudyError("--cluster", "", f"must be a scheduler address like tcp://HOST:8786 (tcp:// or tls://, "

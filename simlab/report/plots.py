@@ -183,7 +183,7 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     Parameters
     ----------
     curves : DataFrame
-        `simlab.metrics.regret_curves` output (``policy, trial, regret_median,
+        `simlab.evidence.metrics.regret_curves` output (``policy, trial, regret_median,
         regret_q25, regret_q75``).
     target : float
         Regret tolerance, drawn as a horizontal line.
@@ -257,7 +257,7 @@ def failure_figure(summary, *, colors=None, ax=None):
     Parameters
     ----------
     summary : DataFrame
-        `simlab.metrics.budget_summary` output (``policy, budget, failure_risk,
+        `simlab.evidence.metrics.budget_summary` output (``policy, budget, failure_risk,
         failure_low, failure_high``).
     colors : dict, optional
         `policy_colors` mapping.
@@ -327,7 +327,7 @@ def within_target_figure(within, *, success=0.9, budgets=(), colors=None, ax=Non
     Parameters
     ----------
     within : DataFrame
-        `simlab.metrics.within_target_curves` output (``policy, trial, within_target,
+        `simlab.evidence.metrics.within_target_curves` output (``policy, trial, within_target,
         within_low, within_high``).
     success : float, default 0.9
         Requested success level, drawn as a horizontal line.
@@ -365,7 +365,7 @@ def reach_figure(reach, *, success=0.9, colors=None, ax=None):
     Parameters
     ----------
     reach : DataFrame
-        `simlab.metrics.reach_curves` output (``policy, trial, reached, reached_low,
+        `simlab.evidence.metrics.reach_curves` output (``policy, trial, reached, reached_low,
         reached_high``).
     success : float, default 0.9
         Requested success level, drawn as a horizontal line.
@@ -396,7 +396,7 @@ def final_regret_figure(final, *, target, budget=None, colors=None, ax=None):
     Parameters
     ----------
     final : DataFrame
-        `simlab.metrics.regret_at_budget` output (``policy, replicate, regret``).
+        `simlab.evidence.metrics.regret_at_budget` output (``policy, replicate, regret``).
     target : float
         Regret tolerance, drawn as a vertical line.
     budget : int, optional
@@ -451,7 +451,7 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
     Parameters
     ----------
     pairs : DataFrame
-        `simlab.compare.pairwise` output (``policy_a, policy_b, budget, win_rate,
+        `simlab.evidence.compare.pairwise` output (``policy_a, policy_b, budget, win_rate,
         sign_p_holm``).
     alpha : float, default 0.05
         Cells whose Holm-adjusted sign-test p-value is below it get a star.
@@ -512,7 +512,7 @@ def sweep_figure(summary, *, budget, colors=None):
     Parameters
     ----------
     summary : DataFrame
-        `simlab.sweep.summarize_sweep` output (``policy, budget, lengthscale_factor,
+        `simlab.replay.sweep.summarize_sweep` output (``policy, budget, lengthscale_factor,
         amplitude_factor, failure_risk``).
     budget : int
         The budget to show.
@@ -581,7 +581,7 @@ def save_figure(fig, folder, stem):
     -------
     png, svg : pathlib.Path
     """
-    from .store import atomic_write
+    from ..replay.store import atomic_write
 
     if not isinstance(stem, str) or not stem or "/" in stem or "\\" in stem or stem.startswith("."):
         raise ValueError(f"`stem` must be a plain file name without folders; got {stem!r}")

@@ -85,7 +85,7 @@ def _check_snapshot_args(study, replicate, policy, trial, along, samples, points
 def _trials_so_far(study, traces, replicate, policy, trial):
     """Trace rows of one campaign up to `trial` (past trials included), from the runner's record."""
     if traces is None:
-        from .runner import replay_replicate
+        from ..replay.runner import replay_replicate
 
         traces = replay_replicate(study, replicate)
     else:
@@ -99,11 +99,11 @@ def _trials_so_far(study, traces, replicate, policy, trial):
 
 
 def _snapshot_data(study, traces, replicate, policy, trial, along, samples, points):
-    from .gp import Posterior
-    from .policies import Acquisition, Context
-    from .rng import stream
-    from .runner import make_belief, make_policy, make_replicate
-    from .worlds import FeatureSample
+    from ..model.gp import Posterior
+    from ..policies import Acquisition, Context
+    from ..rng import stream
+    from ..replay.runner import make_belief, make_policy, make_replicate
+    from ..worlds.draws import FeatureSample
 
     trial, j = _check_snapshot_args(study, replicate, policy, trial, along, samples, points)
     space, sign, horizon = study.space, study.sign, study.campaign.horizon
@@ -192,10 +192,10 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     ----------
     study : Study
         The study; the replicate's world and candidate pool are rebuilt from its keyed
-        streams (`simlab.runner.make_replicate`).
+        streams (`simlab.replay.runner.make_replicate`).
     traces : DataFrame, optional
         The study's traces; the trials so far are read from them. Default: the replicate
-        is replayed (`simlab.runner.replay_replicate`).
+        is replayed (`simlab.replay.runner.replay_replicate`).
     replicate : int, default 0
     policy : str, optional
         Label of the policy whose trials are shown; default: only the initial design
@@ -225,7 +225,7 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
 
     Notes
     -----
-    The belief is the study's stated one (``simlab.runner.make_belief``), not refitted.
+    The belief is the study's stated one (``simlab.replay.runner.make_belief``), not refitted.
     The next inputs come from each policy started afresh on its keyed stream and given
     this belief; after the initial design (with one trial per round and no refit at that
     point) they are the choices the campaigns made. Acquisitions scored in log space (PI, EI) are

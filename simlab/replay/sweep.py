@@ -7,9 +7,9 @@ import dataclasses
 import numpy as np
 import pandas as pd
 
-from .metrics import budget_summary
+from ..evidence.metrics import budget_summary
 from .runner import replay
-from .spec import Study
+from ..study.spec import Study
 
 __all__ = ["sweep_cells", "run_sweep", "summarize_sweep", "safest_policy"]
 

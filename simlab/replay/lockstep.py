@@ -10,8 +10,8 @@ The one-screen loop, for a block of B replicates sharing a policy and a budget::
         record   argmin of the posterior mean at the data, per replicate
 
 Python's overhead (a few hundred function calls per trial) is paid once per block rather
-than once per campaign. Every operation works slice by slice (``simlab.gp.matvec`` and
-friends), so each campaign's trace has the same bits as :func:`simlab.campaign.run_campaign`
+than once per campaign. Every operation works slice by slice (``simlab.model.gp.matvec`` and
+friends), so each campaign's trace has the same bits as :func:`simlab.replay.campaign.run_campaign`
 gives it alone; ``tests/unit/test_lockstep.py`` compares them.
 
 Campaigns run in lockstep when the rule declares ``lockstep = True`` and every campaign of
@@ -24,11 +24,11 @@ from __future__ import annotations
 import numpy as np
 
 from .campaign import Belief, Trace
-from .gp import Stack
-from .noise import Observer
-from .policies import Policy
-from .policies.base import Block
-from .worlds import WorldBlock
+from ..model.gp import Stack
+from ..worlds.noise import Observer
+from ..policies import Policy
+from ..policies.base import Block
+from ..worlds.draws import WorldBlock
 
 __all__ = ["run_block", "fits_lockstep"]
 
@@ -46,7 +46,7 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     ----------
     policy : Policy
         A fresh policy whose class sets ``lockstep = True``.
-    reps : list of simlab.runner.Replicate
+    reps : list of simlab.replay.runner.Replicate
         The block's replicates (world, design, Sobol' sequence, noise draws, pool).
     observer : Observer
         The study's observation model.

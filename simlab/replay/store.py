@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from .spec import Study, StudyError, dump_study, load_study
+from ..study.spec import Study, StudyError, dump_study, load_study
 
 __all__ = ["TRACES", "STUDY", "HISTORY", "MANIFEST", "PARTIAL", "WORLDS", "OWN_FILES", "results_dir", "write_results",
            "read_results", "read_worlds", "atomic_write", "study_hash", "RunFolder", "FolderBusy", "make_folder",
@@ -50,7 +50,7 @@ class FolderBusy(StudyError):
 
 def _own_names() -> tuple[set[str], dict[str, object]]:
     """Top-level files and sub-folders (with a test for their entries) that simlab writes."""
-    from . import page
+    from ..report import page
     files = set(OWN_FILES) | {page.SUMMARY, page.TRIALS_TO_TARGET, page.TRIALS_TO_TARGET_SUMMARY, page.PAIRWISE,
                               page.CHOICE, page.BUDGET_PLAN, page.WITHIN_TARGET, page.REPORT}
     figures = {f"{stem}.{ext}" for stem in page._FIGURE_STEMS for ext in ("png", "svg")}

@@ -36,7 +36,7 @@ class FitResult:
     Attributes
     ----------
     kernel : str
-        Kernel name (a key of :data:`simlab.kernels.KERNELS`).
+        Kernel name (a key of :data:`simlab.model.kernels.KERNELS`).
     lengthscale : tuple of float, length d
         Per-input lengthscales on the unit cube the inputs were given on.
     amplitude, mean, noise : float
@@ -74,7 +74,7 @@ class FitResult:
                 "mean": self.mean, "noise": self.noise}
 
     def make_kernel(self) -> Kernel:
-        """The fitted covariance as a :class:`simlab.kernels.Kernel` (unit-cube inputs)."""
+        """The fitted covariance as a :class:`simlab.model.kernels.Kernel` (unit-cube inputs)."""
         return make_kernel(self.kernel, np.asarray(self.lengthscale), self.amplitude)
 
 
@@ -129,7 +129,7 @@ class _Objective:
         r = np.sqrt(self.D2 @ inv_ls2).reshape(n, n)
         rho = self.profile._rho(r)
         K = var * rho
-        # Same diagonal convention as simlab.gp.Posterior.s2: noise variance plus a relative nugget.
+        # Same diagonal convention as simlab.model.gp.Posterior.s2: noise variance plus a relative nugget.
         K[np.diag_indices(n)] += float(noise) ** 2 + NUGGET * var
         return inv_ls2, r, rho, K
 
@@ -209,7 +209,7 @@ def log_marginal_likelihood(kernel_name: str, X, y, *, lengthscale, amplitude: f
     Parameters
     ----------
     kernel_name : str
-        One of :data:`simlab.kernels.KERNELS`.
+        One of :data:`simlab.model.kernels.KERNELS`.
     X : ndarray of shape (n, d)
         Inputs (simlab passes the unit cube).
     y : ndarray of shape (n,)
@@ -234,7 +234,7 @@ def log_marginal_likelihood(kernel_name: str, X, y, *, lengthscale, amplitude: f
     Notes
     -----
     ``K = amplitude^2 rho(r) + (noise^2 + NUGGET amplitude^2) I`` as in
-    :class:`simlab.gp.Posterior`, and
+    :class:`simlab.model.gp.Posterior`, and
 
     ``log p(y) = -1/2 (y - m)' K^-1 (y - m) - 1/2 log|K| - n/2 log 2 pi``,
 
@@ -320,7 +320,7 @@ def fit_hyperparameters(kernel_name: str, X, y, *, restarts: int = 8, rng: np.ra
     Parameters
     ----------
     kernel_name : str
-        One of :data:`simlab.kernels.KERNELS`.
+        One of :data:`simlab.model.kernels.KERNELS`.
     X : ndarray of shape (n, d)
         Inputs on the unit cube.
     y : ndarray of shape (n,)

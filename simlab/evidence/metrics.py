@@ -619,7 +619,7 @@ def within_target_curves(traces, *, target, confidence_level=0.95):
     The share need not rise with t: a recommendation can get worse again when new
     trials move the model's best mean to a worse input. For a horizon-aware policy the
     runner keeps, for trials in (previous budget, budget], the rows of the campaign
-    planned for that budget (`simlab.runner.replay_replicate`): at each of the study's
+    planned for that budget (`simlab.replay.runner.replay_replicate`): at each of the study's
     budgets the share comes from the campaign planned for exactly that budget; at other
     trials from the campaign planned for the next larger budget, stopped early.
     """
@@ -680,9 +680,9 @@ def _within_curves(frame, horizons, target, confidence_level):
 
 
 # The trials-to-target functions live in reach.py; they are re-exported here so that
-# `simlab.metrics` stays the one place to find every summary of the traces. The import is
+# `simlab.evidence.metrics` stays the one place to find every summary of the traces. The import is
 # lazy (PEP 562 module __getattr__): reach.py imports this module's validation helpers, so
-# importing reach at the bottom made `import simlab.reach` in a fresh interpreter circular.
+# importing reach at the bottom made `import simlab.evidence.reach` in a fresh interpreter circular.
 _FROM_REACH = ("budget_plan", "first_reach", "reach_curves", "trials_to_target_summary")
 
 

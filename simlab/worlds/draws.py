@@ -8,8 +8,8 @@ import numpy as np
 from scipy.stats import qmc
 
 from .functions import TestFunction
-from .kernels import Kernel
-from .optimize import polish, separated_best
+from ..model.kernels import Kernel
+from ..model.optimize import polish, separated_best
 
 __all__ = ["World", "FeatureWorld", "GridWorld", "FunctionWorld", "ConditionedWorld", "FeatureSample",
            "WorldBlock", "feature_values", "find_minimum", "search_plan", "SearchPlan"]
@@ -135,7 +135,7 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     Notes
     -----
     1. ``plan.n_search`` scrambled Sobol' points, plus any ``extra`` points, are ranked.
-    2. The ``2 n_polish`` best in distinct basins (:func:`simlab.optimize.separated_best`)
+    2. The ``2 n_polish`` best in distinct basins (:func:`simlab.model.optimize.separated_best`)
        start ``plan.zoom`` rounds of ``plan.zoom_points`` uniform points in a box around each
        start that halves every round: a derivative-free local search for rough worlds
        (Matern 1/2) where gradients say little, each start moving to the best point found.
@@ -264,7 +264,7 @@ def feature_values(omega, amp, phase, scale, mean, U) -> np.ndarray:
     are scalars or shaped (B, 1). One function serves a single sample (B = 1) and a block
     of worlds advancing in lockstep, so both give the same bits.
     """
-    from .gp import matvec
+    from ..model.gp import matvec
 
     P = np.matmul(U, omega.transpose(0, 2, 1))                 # (B, q, F)
     P -= phase[:, None, :]
@@ -403,7 +403,7 @@ class ConditionedWorld(World):
     """
 
     def __init__(self, base: World, kernel: Kernel, H, yH, noise: float, rng: np.random.Generator):
-        from .gp import NUGGET
+        from ..model.gp import NUGGET
 
         self.base, self.kernel, self.dim = base, kernel, base.dim
         self.H = np.atleast_2d(np.asarray(H, dtype=float))

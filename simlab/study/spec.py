@@ -13,10 +13,10 @@ from typing import Any
 
 import numpy as np
 
-from . import functions
-from .columns import TRACE_COLUMNS, WORLD_COLUMNS
-from .kernels import KERNELS
-from .policies import POLICIES
+from ..worlds import functions
+from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
+from ..model.kernels import KERNELS
+from ..policies import POLICIES
 
 __all__ = [
     "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec", "Study",

@@ -9,10 +9,10 @@ from pathlib import Path
 
 import pandas as pd
 
-from . import compare, metrics
+from ..evidence import compare, metrics
 from .page import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS, _FIGURE_STEMS, render)
-from .store import atomic_write
+from ..replay.store import atomic_write
 
 @dataclass(frozen=True)
 class ReportFiles:
@@ -69,7 +69,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     Returns
     -------
     ReportFiles
-        Paths of ``summary.csv`` (`simlab.metrics.budget_summary` over the study's
+        Paths of ``summary.csv`` (`simlab.evidence.metrics.budget_summary` over the study's
         budgets), ``within_target.csv`` (`within_target_curves`: the share of campaigns
         whose recommendation after each trial is within target, which budgets are
         planned on), ``budget_plan.csv`` (`budget_plan`), the secondary first-passage

@@ -1,0 +1,1 @@
+"""Traces in; the statistics a decision rests on out: regret, reach, comparisons, budgets."""

@@ -1,0 +1,1 @@
+"""The mathematics of belief: kernels, the stacked Gaussian-process posterior, fitting, optimisers."""

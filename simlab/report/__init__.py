@@ -1,0 +1,1 @@
+"""Traces and evidence in; the decision tables, figures and the self-contained report page out."""

@@ -1,0 +1,1 @@
+"""Study files and data files in; a validated, frozen `Study` out (and back to TOML)."""
