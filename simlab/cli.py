@@ -432,7 +432,7 @@ def _plan(args) -> int:
     import pandas as pd
 
     from .api import load_results, run_study
-    from .evidence.metrics import budget_plan
+    from .evidence.reach import budget_plan
     from .replay.store import STUDY, TRACES, results_dir
     study = _load(args)
     folder = results_dir(study, args.out)

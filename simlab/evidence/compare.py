@@ -8,18 +8,10 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-# Private helpers shared with the metrics module (same package, same conventions).
-from .metrics import (
-    _TABLE_RESAMPLES,
-    _check_budgets,
-    _check_probability,
-    _check_resamples,
-    _check_target,
-    _check_traces,
-    _regret_at,
-    budget_plan,
-    budget_summary,
-)
+from .frame import TABLE_RESAMPLES, check_budgets, check_probability, check_resamples, check_target, check_traces, regret_at
+from .intervals import exact_bounds, median_rows
+from .metrics import budget_summary
+from .reach import budget_plan
 
 _ATTITUDES = (
     "lowest median regret",
@@ -73,21 +65,6 @@ def format_p(p):
     return "< 0.001" if p < 0.001 else f"{p:.2g}"
 
 
-def _exact_bounds(k, n, confidence_level):
-    """Clopper-Pearson bounds of k successes in n, elementwise.
-
-    The beta-quantile form (lower ``B(a/2; k, n-k+1)``, upper ``B(1-a/2; k+1, n-k)``,
-    0 and 1 at the ends) is what scipy.stats.binomtest(...).proportion_ci(method="exact")
-    computes one table at a time; written out here to do every pair in one call
-    (tests/unit/test_leads.py checks the two agree).
-    """
-    tail = (1.0 - confidence_level) / 2.0
-    with np.errstate(invalid="ignore"):
-        low = np.where(k > 0, stats.beta.ppf(tail, np.maximum(k, 1), n - k + 1), 0.0)
-        high = np.where(k < n, stats.beta.ppf(1.0 - tail, k + 1, np.maximum(n - k, 1)), 1.0)
-    return low, high
-
-
 def paired_difference_interval(only_a, only_b, n, *, confidence_level=0.95):
     """Interval for the difference of two proportions measured on the same units.
 
@@ -122,8 +99,8 @@ def paired_difference_interval(only_a, only_b, n, *, confidence_level=0.95):
     case when an adaptive rule meets random search.
     """
     only_a, only_b, n = (np.asarray(v, dtype=float) for v in np.broadcast_arrays(only_a, only_b, n))
-    low_a, high_a = _exact_bounds(only_a, n, confidence_level)
-    low_ab, high_ab = _exact_bounds(n - only_b, n, confidence_level)
+    low_a, high_a = exact_bounds(only_a, n, confidence_level)
+    low_ab, high_ab = exact_bounds(n - only_b, n, confidence_level)
     return low_a + low_ab - 1.0, high_a + high_ab - 1.0
 
 
@@ -141,8 +118,8 @@ def median_interval(d, *, confidence_level=0.95):
     d = np.asarray(d, dtype=float)
     if d.size == 0:
         return np.nan, np.nan
-    ci = stats.quantile_test(d, q=0.0, p=0.5).confidence_interval(confidence_level)
-    return float(ci.low), float(ci.high)
+    low, high = median_rows(d[None, :], confidence_level)   # the ranks of scipy.stats.quantile_test's interval
+    return float(low[0]), float(high[0])
 
 
 def _signed_rank_sum(d):
@@ -243,14 +220,14 @@ def pairwise(traces, *, budget, target, confidence_level=0.95):
     - ``*_p_holm`` are Holm-adjusted over all pairs, separately for the sign-test, the
       regret and the failure family.
     """
-    frame = _check_traces(traces)
-    (budget,) = _check_budgets(budget, name="budget")
-    target = _check_target(target)
-    confidence_level = _check_probability("confidence_level", confidence_level)
+    frame = check_traces(traces)
+    (budget,) = check_budgets(budget, name="budget")
+    target = check_target(target)
+    confidence_level = check_probability("confidence_level", confidence_level)
     policies = list(frame["policy"].cat.categories)
     if len(policies) < 2:
         raise ValueError(f"pairwise comparison needs at least two policies; got {policies}")
-    wide = _regret_at(frame, budget).pivot(index="replicate", columns="policy", values="regret")
+    wide = regret_at(frame, budget).pivot(index="replicate", columns="policy", values="regret")
     rows = []
     for a, b in combinations(policies, 2):
         both = wide[[a, b]].dropna()
@@ -391,7 +368,7 @@ def choice_table(
     failure_difference=None,
     alpha=0.05,
     confidence_level=0.95,
-    n_resamples=_TABLE_RESAMPLES,
+    n_resamples=TABLE_RESAMPLES,
     seed=0,
 ):
     """The policy to pick under each risk attitude, and whether its lead is clear.
@@ -470,16 +447,16 @@ def choice_table(
       apart by at least one whole trial, the unit a team pays for, so no further
       margin is applied.
     """
-    frame = _check_traces(traces)
-    (budget,) = _check_budgets(budget, name="budget")
-    target = _check_target(target)
+    frame = check_traces(traces)
+    (budget,) = check_budgets(budget, name="budget")
+    target = check_target(target)
     difference = target / 10.0 if difference is None else _check_margin("difference", difference)
-    success = _check_probability("success", success, closed_high=True)
+    success = check_probability("success", success, closed_high=True)
     failure_difference = ((1.0 - success) / 10.0 if failure_difference is None
                           else _check_margin("failure_difference", failure_difference))
-    alpha = _check_probability("alpha", alpha)
-    confidence_level = _check_probability("confidence_level", confidence_level)
-    n_resamples = _check_resamples(n_resamples)
+    alpha = check_probability("alpha", alpha)
+    confidence_level = check_probability("confidence_level", confidence_level)
+    n_resamples = check_resamples(n_resamples)
     policies = list(frame["policy"].cat.categories)
     if len(policies) < 2:
         raise ValueError(f"a choice needs at least two policies; got {policies}")
@@ -494,7 +471,7 @@ def choice_table(
     plan = plan.set_index("policy").loc[policies]
     wide = budget_plan(frame, target=target, success=success, confidence_level=1.0 - level)
     wide = wide.set_index("policy").loc[policies]
-    mean_regret = _regret_at(frame, budget).groupby("policy", observed=True)["regret"].mean()
+    mean_regret = regret_at(frame, budget).groupby("policy", observed=True)["regret"].mean()
     position = {p: i for i, p in enumerate(policies)}
     rows = []
 

@@ -1,6 +1,8 @@
-"""The budget plan (from the within-target share) and first passage: Kaplan-Meier curves of first meeting the target."""
+"""Trials to target: the share of campaigns within target after each trial (what a team ships), the
+budget plan read from it, and first passage (Kaplan-Meier curves of first meeting the target;
+descriptive)."""
 
-__all__ = ["first_reach", "reach_curves", "trials_to_target_summary", "budget_plan"]
+__all__ = ["within_target_curves", "budget_plan", "first_reach", "reach_curves", "trials_to_target_summary"]
 
 import warnings
 
@@ -8,17 +10,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .metrics import (  # shared validation and conventions of the statistics layer
-    _SHARE_TOLERANCE,
-    _check_budgets,
-    _check_method,
-    _check_probability,
-    _check_target,
-    _check_traces,
-    _horizons,
-    _share_interval,
-    _within_curves,
-)
+from .frame import SHARE_TOLERANCE, check_budgets, check_method, check_probability, check_target, check_traces, horizons
+from .intervals import share_interval
 
 _NOT_REACHED_PLAN = "not reached within the simulated budget"
 
@@ -41,8 +34,8 @@ def first_reach(traces, *, target):
         otherwise the campaign's last trial (right-censored). A campaign that already
         meets the target after its history alone has ``trials == 0``.
     """
-    frame = _check_traces(traces)
-    target = _check_target(target)
+    frame = check_traces(traces)
+    target = check_target(target)
     return _first_reach(frame, target)
 
 
@@ -111,7 +104,7 @@ def _km_by_policy(frame, target, confidence_level, method):
         low = np.where(all_met, tail ** (1.0 / np.maximum(events, 1)), low)
         high = np.where(all_met, 1.0, high)
         # No censoring before t: the exact binomial interval.
-        exact_low, exact_high = _share_interval(events, n, confidence_level)
+        exact_low, exact_high = share_interval(events, n, confidence_level)
         plain = censored_before == 0
         low = np.clip(np.where(plain, exact_low, low), 0.0, 1.0)
         high = np.clip(np.where(plain, exact_high, high), 0.0, 1.0)
@@ -135,7 +128,7 @@ def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):
     Descriptive only: "the first trial at which the recommendation was within target"
     is not something a real campaign can observe (it does not know its regret), and a
     recommendation can get worse afterwards. Budgets are planned on the share within
-    target *after* each trial (`simlab.evidence.metrics.within_target_curves`, `budget_plan`).
+    target *after* each trial (`simlab.evidence.reach.within_target_curves`, `budget_plan`).
 
     Parameters
     ----------
@@ -172,10 +165,10 @@ def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):
     end is 0.025^(1/n)). Otherwise see `method`; at 0 or 1 there an exact one-sided
     bound on the campaigns still at risk replaces the undefined Greenwood band.
     """
-    frame = _check_traces(traces)
-    target = _check_target(target)
-    confidence_level = _check_probability("confidence_level", confidence_level)
-    method = _check_method(method)
+    frame = check_traces(traces)
+    target = check_target(target)
+    confidence_level = check_probability("confidence_level", confidence_level)
+    method = check_method(method)
     curves = _km_by_policy(frame, target, confidence_level, method)
     out = pd.concat(curves.values(), ignore_index=True)
     out["policy"] = out["policy"].astype(object)
@@ -184,7 +177,7 @@ def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):
 
 def _first_trial_at(trials, share, level):
     """Smallest trial with share >= level, or None."""
-    hit = np.flatnonzero(share >= level - _SHARE_TOLERANCE)
+    hit = np.flatnonzero(share >= level - SHARE_TOLERANCE)
     return int(trials[hit[0]]) if hit.size else None
 
 
@@ -239,12 +232,12 @@ def trials_to_target_summary(traces, *, target, levels=(0.5, 0.9), confidence_le
     the interval off the pointwise band is the band-crossing construction of
     Brookmeyer & Crowley (1982, Biometrics 38:29) in its simplest form.
     """
-    frame = _check_traces(traces)
-    target = _check_target(target)
-    confidence_level = _check_probability("confidence_level", confidence_level)
-    method = _check_method(method)
+    frame = check_traces(traces)
+    target = check_target(target)
+    confidence_level = check_probability("confidence_level", confidence_level)
+    method = check_method(method)
     try:
-        levels = [_check_probability("levels", lv, closed_high=True) for lv in levels]
+        levels = [check_probability("levels", lv, closed_high=True) for lv in levels]
     except TypeError:
         raise ValueError(f"`levels` must be a sequence of shares; got {levels!r}") from None
     if not levels:
@@ -281,7 +274,7 @@ def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0
     ----------
     traces : DataFrame
         Traces with columns ``policy, replicate, trial, regret`` (and optionally
-        ``horizon``, see `simlab.evidence.metrics.within_target_curves`).
+        ``horizon``, see `simlab.evidence.reach.within_target_curves`).
     target : float
         Regret tolerance.
     success : float, default 0.9
@@ -328,13 +321,13 @@ def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0
     (`reach_curves`) counts a campaign as soon as its recommendation was within target
     once and is never below this share.
     """
-    frame = _check_traces(traces)
-    target = _check_target(target)
-    success = _check_probability("success", success, closed_high=True)
-    confidence_level = _check_probability("confidence_level", confidence_level)
+    frame = check_traces(traces)
+    target = check_target(target)
+    success = check_probability("success", success, closed_high=True)
+    confidence_level = check_probability("confidence_level", confidence_level)
     candidates = None
     if budgets is not None:
-        candidates = _check_budgets(budgets)
+        candidates = check_budgets(budgets)
         for policy, trials in frame.groupby("policy", observed=True)["trial"]:
             outside = [b for b in candidates if b < trials.min() or b > trials.max()]
             if outside:
@@ -342,7 +335,7 @@ def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0
                     f"`budgets` {outside} lie outside the simulated trials "
                     f"{trials.min()}..{trials.max()} of policy {policy!r}"
                 )
-    curves = _within_curves(frame, _horizons(traces), target, confidence_level)
+    curves = _within_curves(frame, horizons(traces), target, confidence_level)
     rows = []
     for policy in frame["policy"].cat.categories:
         curve = curves[curves["policy"] == policy]
@@ -384,8 +377,80 @@ def budget_plan(traces, *, target, success=0.9, budgets=None, confidence_level=0
 
 def _sustained_from(trials, share, level):
     """First trial from which share >= level holds at every later trial, or None."""
-    ok = share >= level - _SHARE_TOLERANCE
+    ok = share >= level - SHARE_TOLERANCE
     if not ok.size or not ok[-1]:
         return None
     misses = np.flatnonzero(~ok)
     return int(trials[misses[-1] + 1]) if misses.size else int(trials[0])
+
+
+def within_target_curves(traces, *, target, confidence_level=0.95):
+    """Share of campaigns whose recommendation after each trial is within the target.
+
+    What a team that stops after trial t ships: the recommendation it holds then.
+    Budgets are planned on this share (`budget_plan`).
+
+    Parameters
+    ----------
+    traces : DataFrame
+        Traces with columns ``policy, replicate, trial, regret``, and optionally
+        ``horizon`` (the budget the row's campaign was planned for, as the runner writes it).
+    target : float
+        Regret tolerance: a campaign is within target after trial t if ``regret(t) <= target``.
+    confidence_level : float, default 0.95
+        Level of the interval.
+
+    Returns
+    -------
+    DataFrame
+        The ``within_target.csv`` table: one row per policy and trial, columns
+        ``policy, trial, replicates, campaigns_within, within_target, within_low,
+        within_high, horizon, horizon_aware``. ``within_target`` is
+        ``campaigns_within / replicates`` with its Clopper-Pearson interval (the same
+        numbers as `budget_summary` at the study's budgets). ``horizon`` (nullable
+        integer, <NA> without that column) is the budget the campaign behind the row
+        was planned for; ``horizon_aware`` is True for a policy replayed once per budget.
+
+    Notes
+    -----
+    The share need not rise with t: a recommendation can get worse again when new
+    trials move the model's best mean to a worse input. For a horizon-aware policy the
+    runner keeps, for trials in (previous budget, budget], the rows of the campaign
+    planned for that budget (`simlab.replay.runner.replay_replicate`): at each of the study's
+    budgets the share comes from the campaign planned for exactly that budget; at other
+    trials from the campaign planned for the next larger budget, stopped early.
+    """
+    frame = check_traces(traces)
+    target = check_target(target)
+    confidence_level = check_probability("confidence_level", confidence_level)
+    return _within_curves(frame, horizons(traces), target, confidence_level)
+
+
+
+def _within_curves(frame, horizons, target, confidence_level):
+    """The `within_target_curves` table from a checked frame."""
+    frame = frame.assign(within=frame["regret"] <= target)
+    grouped = frame.groupby(["policy", "trial"], observed=True, sort=True)["within"]
+    counts = grouped.sum().astype(np.int64)
+    sizes = grouped.size().astype(np.int64)
+    low, high = share_interval(counts.to_numpy(), sizes.to_numpy(), confidence_level)
+    out = pd.DataFrame(
+        {
+            "policy": counts.index.get_level_values("policy").astype(object),
+            "trial": counts.index.get_level_values("trial").to_numpy(),
+            "replicates": sizes.to_numpy(),
+            "campaigns_within": counts.to_numpy(),
+            "within_target": counts.to_numpy() / sizes.to_numpy(),
+            "within_low": low,
+            "within_high": high,
+        }
+    )
+    if horizons is None:
+        out["horizon"] = pd.array([pd.NA] * len(out), dtype="Int64")
+        out["horizon_aware"] = False
+    else:
+        index = pd.MultiIndex.from_arrays([out["policy"], out["trial"]])
+        out["horizon"] = pd.array(horizons.reindex(index).to_numpy(dtype=float), dtype="Int64")
+        varies = out.groupby("policy", sort=False)["horizon"].transform(lambda h: h.nunique(dropna=True) > 1)
+        out["horizon_aware"] = varies.astype(bool).to_numpy()
+    return out

@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from ..evidence import compare, metrics
+from ..evidence import compare, frame, metrics, reach
 from .page import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS, _FIGURE_STEMS, render)
 from ..replay.store import atomic_write
@@ -85,7 +85,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     (``data-src``, ``data-row``, ``data-col``), so the report can be checked against
     the files.
     """
-    success = metrics._check_probability("success", success, closed_high=True)
+    success = frame.check_probability("success", success, closed_high=True)
     folder = Path(folder)
     step = progress if progress is not None else (lambda n: None)
     target, budgets, horizon = study.target, list(study.campaign.budgets), study.campaign.horizon
@@ -100,17 +100,17 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     tables[SUMMARY] = metrics.budget_summary(traces, budgets=budgets, target=target, seed=seed)
     paths = {SUMMARY: _write_csv(tables[SUMMARY], SUMMARY)}
     step(1)
-    tables[WITHIN_TARGET] = metrics.within_target_curves(traces, target=target)
+    tables[WITHIN_TARGET] = reach.within_target_curves(traces, target=target)
     paths[WITHIN_TARGET] = _write_csv(tables[WITHIN_TARGET], WITHIN_TARGET)
     step(1)
-    tables[TRIALS_TO_TARGET] = metrics.reach_curves(traces, target=target)
+    tables[TRIALS_TO_TARGET] = reach.reach_curves(traces, target=target)
     paths[TRIALS_TO_TARGET] = _write_csv(tables[TRIALS_TO_TARGET], TRIALS_TO_TARGET)
     step(1)
-    tables[TRIALS_TO_TARGET_SUMMARY] = metrics.trials_to_target_summary(traces, target=target,
+    tables[TRIALS_TO_TARGET_SUMMARY] = reach.trials_to_target_summary(traces, target=target,
                                                                         levels=_levels(success))
     paths[TRIALS_TO_TARGET_SUMMARY] = _write_csv(tables[TRIALS_TO_TARGET_SUMMARY], TRIALS_TO_TARGET_SUMMARY)
     step(1)
-    tables[BUDGET_PLAN] = metrics.budget_plan(traces, target=target, success=success)
+    tables[BUDGET_PLAN] = reach.budget_plan(traces, target=target, success=success)
     paths[BUDGET_PLAN] = _write_csv(tables[BUDGET_PLAN], BUDGET_PLAN)
     step(1)
     if several:

@@ -327,7 +327,7 @@ def within_target_figure(within, *, success=0.9, budgets=(), colors=None, ax=Non
     Parameters
     ----------
     within : DataFrame
-        `simlab.evidence.metrics.within_target_curves` output (``policy, trial, within_target,
+        `simlab.evidence.reach.within_target_curves` output (``policy, trial, within_target,
         within_low, within_high``).
     success : float, default 0.9
         Requested success level, drawn as a horizontal line.
@@ -365,7 +365,7 @@ def reach_figure(reach, *, success=0.9, colors=None, ax=None):
     Parameters
     ----------
     reach : DataFrame
-        `simlab.evidence.metrics.reach_curves` output (``policy, trial, reached, reached_low,
+        `simlab.evidence.reach.reach_curves` output (``policy, trial, reached, reached_low,
         reached_high``).
     success : float, default 0.9
         Requested success level, drawn as a horizontal line.

@@ -5,9 +5,8 @@ import pandas as pd
 import pytest
 from scipy.stats import wilcoxon
 
-from simlab import load_study
 from simlab.model.gp import Posterior
-from simlab.replay.runner import _uncertain, make_world, replay, replay_replicate
+from simlab.replay.runner import _uncertain, make_world, replay
 from simlab.study.spec import StudyError, WorldSpec, parse_study
 from simlab.model.kernels import Matern52
 from simlab.replay.sweep import run_sweep, safest_policy, summarize_sweep

@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 from scipy.stats import wilcoxon
 
-from simlab import load_study, run_study
+from simlab import run_study
 from simlab.replay.runner import replay, replay_replicate
 from simlab.study.spec import parse_study
 from studies import study_with

@@ -10,6 +10,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
+from simlab.evidence import reach
 from simlab.evidence import compare, metrics
 
 
@@ -266,7 +267,7 @@ def test_choice_table_values_match_metrics_tables():
     traces = _paired_traces(13, factors={"x": 0.8, "y": 1.0, "z": 0.9}, replicates=50)
     table = compare.choice_table(traces, budget=4, target=0.3, success=0.7, n_resamples=300, seed=9)
     summary = metrics.budget_summary(traces, budgets=[4], target=0.3).set_index("policy")
-    plan = metrics.budget_plan(traces, target=0.3, success=0.7).set_index("policy")
+    plan = reach.budget_plan(traces, target=0.3, success=0.7).set_index("policy")
     regret_row, failure_row, trials_row = (table.iloc[i] for i in range(3))
     assert regret_row["leader_value"] == summary.loc[regret_row["leader"], "regret_median"]
     assert failure_row["leader_value"] == summary.loc[failure_row["leader"], "failure_risk"]

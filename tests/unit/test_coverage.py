@@ -7,6 +7,7 @@ import pandas as pd
 import pytest
 from scipy import integrate, stats
 
+from simlab.evidence import intervals, reach
 from simlab.evidence import metrics
 
 N = 50          # replicates per simulated study: the size the issue asks about
@@ -77,7 +78,7 @@ def test_median_ranks_match_scipy_quantile_test():
     rng = np.random.default_rng(7)
     for n in (5, 6, 10, 37, 50, 60, 200):
         x = rng.exponential(size=(1, n))
-        low, high = metrics._median_interval(x, 0.95)
+        low, high = intervals.median_rows(x, 0.95)
         ci = stats.quantile_test(x[0], q=float(np.median(x)), p=0.5).confidence_interval(0.95)
         if np.isnan(ci.low):
             assert np.isnan(low[0]) and np.isnan(high[0]) and n < 6
@@ -121,13 +122,13 @@ def test_share_interval_exact_coverage_at_50():
     # repeated-study coverage with no Monte Carlo error at all.
     shares = np.linspace(0.0002, 0.9998, 5000)
     k = np.arange(N + 1)
-    low, high = metrics._share_interval(k, N, 0.95)
+    low, high = intervals.share_interval(k, N, 0.95)
     coverage = _exact_coverage(low, high, N, shares)
     assert coverage.min() >= 0.95 - 1e-9  # Clopper & Pearson (1934): never below nominal
     # Negative control: the Wilson score interval (Newcombe 1998, method 3) dips to 0.84
     # near a share of 0.35 % (Brown, Cai & DasGupta 2001, Stat. Sci. 16:101, Fig. 5, describe
     # the same dips near 0 and 1).
-    wilson = np.array([metrics._wilson(i, N, 0.95) for i in k])
+    wilson = np.array([intervals.wilson_interval(i, N, 0.95) for i in k])
     wilson_coverage = _exact_coverage(wilson[:, 0], wilson[:, 1], N, shares)
     assert wilson_coverage.min() < FLOOR
 
@@ -144,7 +145,7 @@ def test_failure_risk_interval_covers_in_repeated_studies(risk):
     if risk == 0.0035:
         # Negative control on the same studies: Wilson (exact coverage 0.84 here).
         failures = np.sum(values > target, axis=1)
-        wilson = np.array([metrics._wilson(f, N, 0.95) for f in failures])
+        wilson = np.array([intervals.wilson_interval(f, N, 0.95) for f in failures])
         assert _covered(wilson[:, 0], wilson[:, 1], risk) < FLOOR
 
 
@@ -163,7 +164,7 @@ def test_within_target_share_covers_at_every_trial():
             "regret": regret.ravel(),
         }
     )
-    curves = metrics.within_target_curves(traces, target=target)
+    curves = reach.within_target_curves(traces, target=target)
     truth = 1 - np.exp(-target * np.exp(0.4 * curves["trial"].to_numpy()))
     inside = (curves["within_low"] <= truth) & (truth <= curves["within_high"])
     by_trial = inside.groupby(curves["trial"]).mean()
@@ -200,7 +201,7 @@ def test_old_bca_cvar_interval_fails_the_same_test():
     rng = np.random.default_rng(303)
     values = sampler(rng, (500, N))
     with np.errstate(all="ignore"):
-        result = stats.bootstrap((values,), metrics._cvar90, method="BCa", n_resamples=999, axis=-1,
+        result = stats.bootstrap((values,), intervals.cvar90, method="BCa", n_resamples=999, axis=-1,
                                  vectorized=True, rng=np.random.default_rng(1))
     ci = result.confidence_interval
     coverage = _covered(ci.low, ci.high, truth)
@@ -233,7 +234,7 @@ def _first_passage_traces(rng, studies):
 
 def test_kaplan_meier_band_covers_at_every_trial_including_0_and_1():
     studies = 1000  # Monte Carlo se 0.0069 per trial
-    curves = metrics.reach_curves(_first_passage_traces(np.random.default_rng(9), studies), target=0.5)
+    curves = reach.reach_curves(_first_passage_traces(np.random.default_rng(9), studies), target=0.5)
     truth = FIRST_PASSAGE_CDF[curves["trial"].to_numpy() - 1]
     inside = (curves["reached_low"] <= truth) & (truth <= curves["reached_high"])
     by_trial = inside.groupby(curves["trial"]).mean()

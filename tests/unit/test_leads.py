@@ -7,7 +7,8 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from simlab.evidence import compare, metrics
+from simlab.evidence import intervals, reach
+from simlab.evidence import compare
 from simlab.report import page, plots
 from simlab.study.spec import StudyError, dump_study, parse_study
 from simlab.replay.sweep import safest_policy
@@ -56,7 +57,7 @@ def _old_rule_clear(traces, *, budget, target, success):
     at = traces[traces["trial"] == budget]
     medians = at.groupby("policy")["regret"].median()
     failures = at.assign(f=at["regret"] > target).groupby("policy")["f"].mean()
-    plan = metrics.budget_plan(traces, target=target, success=success).set_index("policy")
+    plan = reach.budget_plan(traces, target=target, success=success).set_index("policy")
     verdicts = []
     for ranking, favours, p_col in ((medians, "regret_favours", "regret_p_holm"),
                                     (failures, "failure_favours", "failure_p_holm")):
@@ -83,10 +84,10 @@ def test_exact_bounds_are_scipy_clopper_pearson():
     for n in (1, 7, 50, 60):
         for k in range(n + 1):
             ci = stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method="exact")
-            low, high = compare._exact_bounds(np.float64(k), float(n), 0.95)
+            low, high = intervals.exact_bounds(np.float64(k), float(n), 0.95)
             assert (float(low), float(high)) == pytest.approx((ci.low, ci.high), abs=1e-12)
-    assert compare._exact_bounds(0.0, 50.0, 0.95)[1] == pytest.approx(0.0711217365, abs=1e-10)
-    assert compare._exact_bounds(50.0, 50.0, 0.95)[0] == pytest.approx(0.9288782635, abs=1e-10)
+    assert intervals.exact_bounds(0.0, 50.0, 0.95)[1] == pytest.approx(0.0711217365, abs=1e-10)
+    assert intervals.exact_bounds(50.0, 50.0, 0.95)[0] == pytest.approx(0.9288782635, abs=1e-10)
 
 
 def _tables(n):

@@ -9,6 +9,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
+from simlab.evidence import intervals, reach
 from simlab.evidence import metrics
 
 Z95 = 1.959963984540054  # standard normal 97.5% quantile (common practice)
@@ -165,13 +166,13 @@ def _freireich_traces():
 
 
 def test_freireich_first_reach_reproduces_weeks():
-    reach = metrics.first_reach(_freireich_traces(), target=0.5)
-    assert list(reach["trials"]) == [w for w, _ in FREIREICH]
-    assert list(reach["reached"]) == [e for _, e in FREIREICH]
+    first = reach.first_reach(_freireich_traces(), target=0.5)
+    assert list(first["trials"]) == [w for w, _ in FREIREICH]
+    assert list(first["reached"]) == [e for _, e in FREIREICH]
 
 
 def test_freireich_kaplan_meier_matches_kleinbaum_klein():
-    curve = metrics.reach_curves(_freireich_traces(), target=0.5).set_index("trial")
+    curve = reach.reach_curves(_freireich_traces(), target=0.5).set_index("trial")
     survival = 1.0 - curve["reached"]
     for week, published in KLEINBAUM_S.items():
         # Published to 4 decimals: half a unit in the last place is 5e-5.
@@ -187,7 +188,7 @@ def test_freireich_kaplan_meier_matches_kleinbaum_klein():
 
 def test_freireich_median_is_23_weeks():
     # Source: Kleinbaum & Klein p. 18, median survival 23 weeks (REFERENCES.md).
-    summary = metrics.trials_to_target_summary(_freireich_traces(), target=0.5, levels=[0.5, 0.9])
+    summary = reach.trials_to_target_summary(_freireich_traces(), target=0.5, levels=[0.5, 0.9])
     median = summary[summary["level"] == 0.5].iloc[0]
     assert median["trials"] == 23 and median["status"] == "reached"
     # Only 55% ever reach in 35 weeks: the 90% level is not reached, and says so.
@@ -197,7 +198,7 @@ def test_freireich_median_is_23_weeks():
 
 
 def test_freireich_band_matches_greenwood_by_hand():
-    curve = metrics.reach_curves(_freireich_traces(), target=0.5).set_index("trial")
+    curve = reach.reach_curves(_freireich_traces(), target=0.5).set_index("trial")
     for t, share, low, high in _naive_km(FREIREICH, range(1, 36)):
         assert curve.at[t, "reached"] == pytest.approx(share, abs=1e-12)
         # float64 rounding only: formula and data are the same.
@@ -228,7 +229,7 @@ NEWCOMBE_EXACT = {(81, 263): (0.2527, 0.3676), (15, 148): (0.0578, 0.1617), (0, 
 
 def test_wilson_helper_matches_newcombe_table_i():
     for (k, n), (low, high) in NEWCOMBE.items():
-        got = metrics._wilson(k, n, 0.95)
+        got = intervals.wilson_interval(k, n, 0.95)
         assert got == pytest.approx((low, high), abs=5e-5)
         assert got == pytest.approx(_naive_wilson(k, n), abs=1e-12)  # closed form (Wilson 1927)
 
@@ -368,10 +369,10 @@ def _censored_traces():
 def test_first_reach_matches_naive():
     traces = _censored_traces()
     naive = _naive_first_reach(traces, 0.3)
-    reach = metrics.first_reach(traces, target=0.3)
-    assert list(reach.columns) == ["policy", "replicate", "trials", "reached"]
-    assert len(reach) == len(naive)
-    for row in reach.itertuples():
+    first = reach.first_reach(traces, target=0.3)
+    assert list(first.columns) == ["policy", "replicate", "trials", "reached"]
+    assert len(first) == len(naive)
+    for row in first.itertuples():
         assert (row.trials, row.reached) == naive[(row.policy, row.replicate)]
 
 
@@ -379,8 +380,8 @@ def test_reach_curves_and_summary_match_naive_km():
     traces = _censored_traces()
     target = 0.3
     naive = _naive_first_reach(traces, target)
-    curves = metrics.reach_curves(traces, target=target)
-    summary = metrics.trials_to_target_summary(traces, target=target, levels=(0.5, 0.9))
+    curves = reach.reach_curves(traces, target=target)
+    summary = reach.trials_to_target_summary(traces, target=target, levels=(0.5, 0.9))
     for policy in ["fast", "slow", "never"]:
         campaigns = [v for (p, _), v in naive.items() if p == policy]
         expected = _naive_km(campaigns, range(1, 16))
@@ -409,7 +410,7 @@ def test_reach_curves_and_summary_match_naive_km():
 def test_budget_plan_matches_naive_and_reports_not_reached():
     traces = _censored_traces()[lambda f: f["trial"] <= 9]  # every campaign to trial 9
     target, success = 0.3, 0.8
-    plan = metrics.budget_plan(traces, target=target, success=success).set_index("policy")
+    plan = reach.budget_plan(traces, target=target, success=success).set_index("policy")
     for policy in ["fast", "slow", "never"]:
         shares = []
         for t in range(1, 10):
@@ -445,15 +446,15 @@ def test_shipped_share_and_first_passage_differ_when_regret_rises_again():
             values[4:7] = [0.9, 0.9, 0.9]
         campaigns.append(values)
     traces = _traces_from({"p": campaigns})
-    within = metrics.within_target_curves(traces, target=0.5).set_index("trial")
-    first = metrics.reach_curves(traces, target=0.5).set_index("trial")
+    within = reach.within_target_curves(traces, target=0.5).set_index("trial")
+    first = reach.reach_curves(traces, target=0.5).set_index("trial")
     assert list(within["within_target"]) == [0, 0, 1, 1, 0.7, 0.7, 0.7, 1, 1]  # counted by hand
     assert list(first["reached"]) == [0, 0, 1, 1, 1, 1, 1, 1, 1]  # first passage never falls
-    plan = metrics.budget_plan(traces, target=0.5, success=0.9).iloc[0]
+    plan = reach.budget_plan(traces, target=0.5, success=0.9).iloc[0]
     assert plan["budget"] == 3 and plan["budget_sustained"] == 8
     assert plan["campaigns_within"] == 10 and plan["share"] == 1.0
     # Budgets 5, 6, 7 ship 7 of 10: a plan restricted to them and 9 says 9.
-    restricted = metrics.budget_plan(traces, target=0.5, success=0.9, budgets=[5, 6, 7, 9]).iloc[0]
+    restricted = reach.budget_plan(traces, target=0.5, success=0.9, budgets=[5, 6, 7, 9]).iloc[0]
     assert restricted["budget"] == 9 and restricted["budget_sustained"] == 9
     # The summary at trial 5 reports the same share and interval, failure risk its complement.
     row = metrics.budget_summary(traces, budgets=[5], target=0.5).iloc[0]
@@ -474,25 +475,25 @@ def test_horizon_column_is_carried_into_the_plan():
                 horizon = (5 if t <= 5 else 10) if policy == "aware" else 10
                 rows.append((policy, r, t, float(rng.exponential() * 0.7**t), horizon))
     traces = pd.DataFrame(rows, columns=["policy", "replicate", "trial", "regret", "horizon"])
-    curves = metrics.within_target_curves(traces, target=0.2)
+    curves = reach.within_target_curves(traces, target=0.2)
     aware = curves[curves["policy"] == "aware"]
     assert list(aware["horizon"]) == [5] * 5 + [10] * 5 and aware["horizon_aware"].all()
     assert not curves.loc[curves["policy"] == "plain", "horizon_aware"].any()
-    plan = metrics.budget_plan(traces, target=0.2, success=0.5).set_index("policy")
+    plan = reach.budget_plan(traces, target=0.2, success=0.5).set_index("policy")
     b = int(plan.loc["aware", "budget"])
     assert plan.loc["aware", "horizon"] == (5 if b <= 5 else 10) and plan.loc["aware", "horizon_aware"]
     with pytest.raises(ValueError, match="horizon"):
-        metrics.within_target_curves(traces.assign(horizon=traces["replicate"]), target=0.2)
+        reach.within_target_curves(traces.assign(horizon=traces["replicate"]), target=0.2)
 
 
 def test_budget_plan_restricted_to_candidate_budgets():
     traces = _censored_traces()
-    full = metrics.budget_plan(traces, target=0.3, success=0.8).set_index("policy")
-    plan = metrics.budget_plan(traces, target=0.3, success=0.8, budgets=[5, 10, 15]).set_index("policy")
+    full = reach.budget_plan(traces, target=0.3, success=0.8).set_index("policy")
+    plan = reach.budget_plan(traces, target=0.3, success=0.8, budgets=[5, 10, 15]).set_index("policy")
     b = full.loc["fast", "budget"]
     assert plan.loc["fast", "budget"] == min(c for c in (5, 10, 15) if c >= b)
     with pytest.raises(ValueError, match="outside the simulated trials"):
-        metrics.budget_plan(traces, target=0.3, budgets=[16])
+        reach.budget_plan(traces, target=0.3, budgets=[16])
 
 
 def test_trial_zero_counts_as_after_history():
@@ -500,10 +501,10 @@ def test_trial_zero_counts_as_after_history():
         {"policy": "p", "replicate": [0, 0, 0, 1, 1, 1], "trial": [-1, 0, 1, -1, 0, 1],
          "regret": [0.0, 0.1, 0.5, 0.0, 2.0, 0.1]}
     )  # fmt: skip
-    reach = metrics.first_reach(traces, target=0.2)
+    first = reach.first_reach(traces, target=0.2)
     # replicate 0 meets the target on its history alone (trial 0); trial -1 is ignored.
-    assert list(reach["trials"]) == [0, 1] and reach["reached"].all()
-    curve = metrics.reach_curves(traces, target=0.2)
+    assert list(first["trials"]) == [0, 1] and first["reached"].all()
+    curve = reach.reach_curves(traces, target=0.2)
     assert list(curve["trial"]) == [0, 1] and list(curve["reached"]) == [0.5, 1.0]
 
 
@@ -515,19 +516,19 @@ def test_bad_input_raises_value_error():
     with pytest.raises(ValueError, match="lacks required column"):
         metrics.regret_curves(good.drop(columns="regret"))
     with pytest.raises(ValueError, match=">= 0"):
-        metrics.first_reach(good.assign(regret=-good["regret"]), target=0.1)
+        reach.first_reach(good.assign(regret=-good["regret"]), target=0.1)
     with pytest.raises(ValueError, match="one row per"):
-        metrics.first_reach(pd.concat([good, good.iloc[:1]]), target=0.1)
+        reach.first_reach(pd.concat([good, good.iloc[:1]]), target=0.1)
     with pytest.raises(ValueError, match="confidence_level"):
         metrics.regret_curves(good, confidence_level=1.5)
     with pytest.raises(ValueError, match="target"):
-        metrics.first_reach(good, target=-1.0)
+        reach.first_reach(good, target=-1.0)
     with pytest.raises(ValueError, match="not available for every campaign"):
         metrics.budget_summary(good, budgets=[4], target=0.1)
     with pytest.raises(ValueError, match="method"):
-        metrics.reach_curves(good, target=0.1, method="plain")
+        reach.reach_curves(good, target=0.1, method="plain")
     with pytest.raises(ValueError, match="success"):
-        metrics.budget_plan(good, target=0.1, success=0.0)
+        reach.budget_plan(good, target=0.1, success=0.0)
 
 
 def test_constant_regret_gives_zero_width_intervals_without_warnings():

@@ -6,6 +6,7 @@ import pytest
 from matplotlib.colors import to_hex
 from scipy.stats import norm
 
+from simlab.evidence import reach
 from simlab.evidence import compare, metrics
 from simlab.report import plots
 from simlab.model.gp import Posterior
@@ -53,8 +54,8 @@ def figures(run, colors):
                                       budgets=study.campaign.budgets, initial=study.campaign.initial,
                                       colors=colors),
         "failure": plots.failure_figure(summary, colors=colors),
-        "reach": plots.reach_figure(metrics.reach_curves(traces, target=study.target), colors=colors),
-        "within": plots.within_target_figure(metrics.within_target_curves(traces, target=study.target),
+        "reach": plots.reach_figure(reach.reach_curves(traces, target=study.target), colors=colors),
+        "within": plots.within_target_figure(reach.within_target_curves(traces, target=study.target),
                                              budgets=study.campaign.budgets, colors=colors),
         "final": plots.final_regret_figure(metrics.regret_at_budget(traces, budget=horizon), target=study.target,
                                            budget=horizon, colors=colors),
