@@ -2,11 +2,12 @@
 
 frame.py holds the conventions of the traces frame that every summary shares; intervals.py
 the intervals (each with a coverage test); metrics.py regret and the budget table; reach.py
-the within-target share, the budget plan and first passage; compare.py the paired comparisons
-and the choice table. Every summary a caller needs is importable from here.
+the within-target share, the budget plan and first passage; compare.py the paired comparisons;
+choice.py the choice table. Every summary a caller needs is importable from here.
 """
 
-from .compare import choice_table, format_p, holm_adjust, pairwise
+from .choice import choice_table
+from .compare import format_p, holm_adjust, pairwise
 from .metrics import budget_summary, regret_at_budget, regret_curves
 from .reach import budget_plan, first_reach, reach_curves, trials_to_target_summary, within_target_curves
 

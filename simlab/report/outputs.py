@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from ..evidence import compare, frame, metrics, reach
+from ..evidence import choice, compare, frame, metrics, reach
 from .page import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS, _FIGURE_STEMS, render)
 from ..replay.store import atomic_write
@@ -117,7 +117,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         tables[PAIRWISE] = compare.pairwise(traces, budget=horizon, target=target)
         paths[PAIRWISE] = _write_csv(tables[PAIRWISE], PAIRWISE)
         step(1)
-        tables[CHOICE] = compare.choice_table(traces, budget=horizon, target=target, success=success, seed=seed,
+        tables[CHOICE] = choice.choice_table(traces, budget=horizon, target=target, success=success, seed=seed,
                                               difference=study.lead_difference)
         paths[CHOICE] = _write_csv(tables[CHOICE], CHOICE)
         step(1)

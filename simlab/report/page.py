@@ -12,7 +12,7 @@ import re
 import numpy as np
 import pandas as pd
 
-from ..evidence import compare
+from ..evidence import choice, compare
 
 SUMMARY = "summary.csv"
 WITHIN_TARGET = "within_target.csv"
@@ -51,7 +51,7 @@ _RULES = {
     "gp-ucb": "confidence bound with the GP-UCB width schedule",
     "hedge": "portfolio of EI, PI and the confidence bound, weighted by past gains",
 }
-_ATTITUDE_REGRET, _ATTITUDE_FAILURE, _ATTITUDE_TRIALS = compare._ATTITUDES
+_ATTITUDE_REGRET, _ATTITUDE_FAILURE, _ATTITUDE_TRIALS = choice.ATTITUDES
 
 
 
@@ -693,7 +693,7 @@ def _choice_section(study, summary, choice, success):
 
 def _clear_rule(study, success):
     """What "clear" means in the choice table, with the study's own thresholds."""
-    level = 0.05 / len(compare._ATTITUDES)
+    level = 0.05 / len(choice.ATTITUDES)
     return (
         "<p>“Clear” needs the leader to beat every other policy on the paired replicates, by a margin that "
         "matters. The three attitudes read the same campaigns, so they share one 5 % error budget "

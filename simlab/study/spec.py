@@ -309,7 +309,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     tt = r.table(data, "target")
     r.keys(tt, "target", _SECTION_KEYS["target"])
     target = r.number(tt, "target.regret", low=0.0)
-    # smallest median paired regret difference that matters for a "clear" lead (compare.choice_table)
+    # smallest median paired regret difference that matters for a "clear" lead (choice.choice_table)
     difference = r.number(tt, "target.difference", low=0.0, default=target / 10.0)
 
     policies = _read_policies(r, data)

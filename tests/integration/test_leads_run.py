@@ -1,6 +1,6 @@
 """Positive control on a real study: expected improvement against random search is a clear lead."""
 
-from simlab.evidence import compare
+from simlab.evidence import choice, compare
 from simlab.replay.runner import replay
 from simlab.study.spec import parse_study
 
@@ -22,7 +22,7 @@ def test_ei_against_random_is_clear_on_a_real_study():
         "policy": [{"rule": "ei", "label": "EI"}, {"rule": "random", "label": "Random"}],
     }, source="test")
     traces = replay(study)
-    table = compare.choice_table(traces, budget=20, target=study.target, difference=study.lead_difference)
+    table = choice.choice_table(traces, budget=20, target=study.target, difference=study.lead_difference)
     assert list(table["leader"]) == ["EI"] * 3
     assert list(table["lead"]) == ["clear"] * 3, table["evidence"].tolist()
     pairs = compare.pairwise(traces, budget=20, target=study.target).iloc[0]

@@ -10,8 +10,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from simlab.evidence import reach
-from simlab.evidence import compare, metrics
+from simlab.evidence import choice, compare, metrics, reach
 
 
 # ---------------------------------------------------------------------------
@@ -189,7 +188,7 @@ def test_pairwise_needs_two_policies_and_a_reachable_budget():
 def test_choice_table_clear_leader_agrees_with_naive_choice():
     traces = _paired_traces(11, factors={"bold": 0.35, "middle": 0.7, "cautious": 1.0}, replicates=80)
     budget, target, success = 6, 0.15, 0.8
-    table = compare.choice_table(traces, budget=budget, target=target, success=success, n_resamples=500)
+    table = choice.choice_table(traces, budget=budget, target=target, success=success, n_resamples=500)
     assert list(table["attitude"]) == [
         "lowest median regret", "lowest failure risk", "fewest trials for the requested success level",
     ]  # fmt: skip
@@ -235,7 +234,7 @@ def test_choice_table_false_clear_rate_is_controlled():
     clear = np.zeros(3)
     for seed in range(studies):
         traces = _paired_traces(1000 + seed, factors={"one": 1.0, "two": 1.0}, replicates=50, trials=6)
-        table = compare.choice_table(traces, budget=5, target=0.2, success=0.8, n_resamples=100)
+        table = choice.choice_table(traces, budget=5, target=0.2, success=0.8, n_resamples=100)
         clear += (table["lead"] == "clear").to_numpy()
     assert np.all(clear / studies <= 0.15), clear
     # Negative control for the check itself: with a real difference that matters (half
@@ -243,7 +242,7 @@ def test_choice_table_false_clear_rate_is_controlled():
     found = np.zeros(3)
     for seed in range(10):
         traces = _paired_traces(2000 + seed, factors={"one": 0.5, "two": 1.0}, replicates=50, trials=6)
-        table = compare.choice_table(traces, budget=5, target=0.2, success=0.8, n_resamples=100)
+        table = choice.choice_table(traces, budget=5, target=0.2, success=0.8, n_resamples=100)
         found += (table["lead"] == "clear").to_numpy()
     assert np.all(found[:2] / 10 > 0.15), found
 
@@ -253,11 +252,11 @@ def test_choice_table_not_reached_is_not_a_number():
     # "never" last and, when nobody reaches, say so rather than invent a budget.
     traces = _paired_traces(5, factors={"slow": 1.0, "never": 1.0}, replicates=40)
     traces.loc[traces["policy"] == "never", "regret"] += 5.0
-    table = compare.choice_table(traces, budget=8, target=0.2, success=0.6, n_resamples=200).set_index("attitude")
+    table = choice.choice_table(traces, budget=8, target=0.2, success=0.6, n_resamples=200).set_index("attitude")
     trials_row = table.loc["fewest trials for the requested success level"]
     assert trials_row["leader"] == "slow" and trials_row["runner_up"] == "never"
     assert math.isnan(trials_row["runner_up_value"])
-    nobody = compare.choice_table(traces, budget=8, target=1e-6, success=0.6, n_resamples=200)
+    nobody = choice.choice_table(traces, budget=8, target=1e-6, success=0.6, n_resamples=200)
     nobody = nobody.set_index("attitude").loc["fewest trials for the requested success level"]
     assert nobody["lead"] == "not reached" and pd.isna(nobody["leader"])
     assert math.isnan(nobody["leader_value"])
@@ -265,7 +264,7 @@ def test_choice_table_not_reached_is_not_a_number():
 
 def test_choice_table_values_match_metrics_tables():
     traces = _paired_traces(13, factors={"x": 0.8, "y": 1.0, "z": 0.9}, replicates=50)
-    table = compare.choice_table(traces, budget=4, target=0.3, success=0.7, n_resamples=300, seed=9)
+    table = choice.choice_table(traces, budget=4, target=0.3, success=0.7, n_resamples=300, seed=9)
     summary = metrics.budget_summary(traces, budgets=[4], target=0.3).set_index("policy")
     plan = reach.budget_plan(traces, target=0.3, success=0.7).set_index("policy")
     regret_row, failure_row, trials_row = (table.iloc[i] for i in range(3))

@@ -7,8 +7,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from simlab.evidence import intervals, reach
-from simlab.evidence import compare
+from simlab.evidence import choice, compare, intervals, reach
 from simlab.report import page, plots
 from simlab.study.spec import StudyError, dump_study, parse_study
 from simlab.replay.sweep import safest_policy
@@ -250,7 +249,7 @@ def test_aa_studies_declare_a_clear_lead_at_most_five_percent_of_the_time():
     new = old = 0
     for seed in seeds:
         traces = _campaigns(10_000 + seed, factors={"twin": 1.0, "twin copy": 1.0, "worse": 2.0})
-        table = compare.choice_table(traces, budget=8, target=0.2, success=0.8, n_resamples=100)
+        table = choice.choice_table(traces, budget=8, target=0.2, success=0.8, n_resamples=100)
         assert set(table["leader"].dropna()) <= {"twin", "twin copy"}
         new += bool((table["lead"] == "clear").any())
         old += any(_old_rule_clear(traces, budget=8, target=0.2, success=0.8))
@@ -267,7 +266,7 @@ def test_a_clearly_better_policy_is_clear_under_every_attitude():
     # (campaigns run to 12 trials, so the plan sees the A/A pair reach the level too).
     for seed in range(10):
         traces = _campaigns(500 + seed, factors={"strong": 0.25, "twin": 1.0, "twin copy": 1.0}, trials=12)
-        table = compare.choice_table(traces, budget=8, target=0.1, success=0.8, n_resamples=100)
+        table = choice.choice_table(traces, budget=8, target=0.1, success=0.8, n_resamples=100)
         assert list(table["leader"]) == ["strong"] * 3
         assert list(table["lead"]) == ["clear"] * 3, table["evidence"].tolist()
         assert table.loc[0, "evidence"].startswith("better than every other policy")
@@ -279,15 +278,15 @@ def test_a_tiny_difference_is_a_tie_with_its_reason():
     # difference that matters (0.02). The old rule calls it clear; the new one a tie.
     traces = _campaigns(77, factors={"slightly": 0.93, "plain": 1.0}, replicates=4000, trials=8)
     assert _old_rule_clear(traces, budget=8, target=0.2, success=0.8)[0]
-    table = compare.choice_table(traces, budget=8, target=0.2, success=0.8, n_resamples=100)
+    table = choice.choice_table(traces, budget=8, target=0.2, success=0.8, n_resamples=100)
     row = table.iloc[0]
     assert row["leader"] == "slightly" and row["lead"] == "tie" and row["p_value"] < 0.05 / 3
     assert "too little to matter" in row["evidence"] and "0.02 objective units" in row["evidence"]
     # With a smaller difference that matters the same lead is clear: the margin decides.
-    relaxed = compare.choice_table(traces, budget=8, target=0.2, success=0.8, n_resamples=100, difference=0.0)
+    relaxed = choice.choice_table(traces, budget=8, target=0.2, success=0.8, n_resamples=100, difference=0.0)
     assert relaxed.iloc[0]["lead"] == "clear"
     with pytest.raises(ValueError, match="`difference` must be a finite number >= 0"):
-        compare.choice_table(traces, budget=8, target=0.2, difference=-1.0)
+        choice.choice_table(traces, budget=8, target=0.2, difference=-1.0)
 
 
 def test_p_values_below_a_thousandth_print_as_such():
