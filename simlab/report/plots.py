@@ -14,164 +14,12 @@ __all__ = [
     "save_figure",
 ]
 
-import warnings
-from contextlib import contextmanager
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 
-# Okabe & Ito (2008), "Color Universal Design": eight colours distinguishable under the
-# common colour-vision deficiencies. Yellow comes last because it is faint on white.
-_OKABE_ITO = (
-    "#0072B2",  # blue
-    "#E69F00",  # orange
-    "#009E73",  # bluish green
-    "#D55E00",  # vermillion
-    "#CC79A7",  # reddish purple
-    "#56B4E9",  # sky blue
-    "#000000",  # black
-    "#F0E442",  # yellow
-)
-# Beyond eight policies colours repeat; the repeat gets another line style.
-_LINESTYLES = ("-", "--", "-.", ":")
-
-_GREY = "#6b6b6b"
-_DPI = 150
-_Z95 = 1.959963984540054  # standard normal 97.5% quantile (common practice)
-
-# Regret is clipped at a floor on log axes (exact zeros are common: a policy that
-# evaluated the best point any policy found has regret 0). The floor sits three decades
-# below the target: differences that far below the target do not change a decision.
-_FLOOR_BELOW_TARGET = 1e-3
-
-_JITTER_SEED = 7
-_KIND_WIDTH = 7.6  # inches; fits an A4 page with margins at 100 %
-
-
-# ---------------------------------------------------------------------------
-# shared helpers
-# ---------------------------------------------------------------------------
-def policy_colors(labels):
-    """One colour per policy, fixed by the study's policy order.
-
-    Parameters
-    ----------
-    labels : sequence of str
-        Policy labels in study order (``study.labels``).
-
-    Returns
-    -------
-    dict
-        ``{label: "#rrggbb"}`` from the Okabe-Ito palette (colour-blind safe). Pass the
-        same mapping to every figure so that a policy keeps its colour everywhere; with
-        more than eight policies colours repeat and the figures change the line style.
-    """
-    labels = [str(label) for label in labels]
-    if len(set(labels)) != len(labels):
-        raise ValueError(f"`labels` must be distinct; got {labels}")
-    return {label: _OKABE_ITO[i % len(_OKABE_ITO)] for i, label in enumerate(labels)}
-
-
-def _linestyles(labels):
-    return {str(label): _LINESTYLES[(i // len(_OKABE_ITO)) % len(_LINESTYLES)] for i, label in enumerate(labels)}
-
-
-def _shown(label):
-    """A label as matplotlib should draw it: a literal "$" must not start mathematics."""
-    return str(label).replace("$", r"\$")
-
-
-def _policy_ticks(axis, labels, colors, *, offset=0.0, fontsize=None):
-    """Put the policy labels on a categorical axis (positions offset + 0, 1, ...) in their colours."""
-    axis.set_ticks(np.arange(len(labels)) + offset, [_shown(label) for label in labels])
-    for tick, label in zip(axis.get_ticklabels(), labels):
-        tick.set_color(colors[label])
-        if fontsize:
-            tick.set_fontsize(fontsize)
-
-
-@contextmanager
-def _quiet_seaborn():
-    """Silence deprecation notices raised by seaborn's own calls into matplotlib (not ours to fix)."""
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", category=DeprecationWarning, module="seaborn")
-        warnings.filterwarnings("ignore", category=PendingDeprecationWarning, module="seaborn")
-        yield
-
-
-def _band_alpha(labels):
-    """Fainter bands when many overlap, so that the lines stay readable."""
-    return 0.14 if len(labels) <= 4 else 0.08
-
-
-def _policies_in(frame, column="policy"):
-    """Policy labels in order of first appearance (metrics tables keep study order)."""
-    return [str(p) for p in pd.unique(frame[column].astype(str))]
-
-
-def _colors_for(labels, colors):
-    if colors is None:
-        return policy_colors(labels)
-    missing = [label for label in labels if label not in colors]
-    if missing:
-        raise ValueError(f"`colors` has no colour for policies {missing}")
-    return colors
-
-
-def _new_axes(ax, size):
-    """The axes to draw on and its figure; a new figure (no pyplot state) when ax is None."""
-    if ax is not None:
-        get = getattr(ax, "get_figure", None)
-        try:
-            fig = get(root=True)
-        except TypeError:  # matplotlib < 3.10 has no `root`
-            fig = ax.figure
-        return fig, ax
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=size, layout="constrained")
-    return fig, fig.add_subplot()
-
-
-def _regret_floor(values, target):
-    """Positive floor for log-scale regret axes."""
-    if target > 0:
-        return target * _FLOOR_BELOW_TARGET
-    values = np.asarray(values, dtype=float)
-    positive = values[values > 0]
-    if positive.size == 0:
-        return 1e-12
-    return 10.0 ** np.floor(np.log10(positive.min()))
-
-
-def _floor_note(floor, values):
-    """Second line of a regret axis label; says so when values below the floor are drawn at it."""
-    values = np.asarray(values, dtype=float)
-    if np.any(values[np.isfinite(values)] < floor):
-        return f"log scale; below {floor:.2g} (including 0) drawn at {floor:.2g}"
-    return "log scale"
-
-
-def _legend_outside(ax, **kw):
-    handles, labels = ax.get_legend_handles_labels()
-    if handles:
-        ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False,
-                  fontsize=9, **kw)
-
-
-def _check_columns(frame, name, columns):
-    if not isinstance(frame, pd.DataFrame):
-        raise ValueError(f"`{name}` must be a pandas DataFrame; got {type(frame).__name__}")
-    missing = [c for c in columns if c not in frame.columns]
-    if missing:
-        raise ValueError(f"`{name}` lacks column(s) {missing}; it has {list(frame.columns)}")
-
-
-def _percent_axis(axis):
-    from matplotlib.ticker import PercentFormatter
-
-    axis.set_major_formatter(PercentFormatter(1.0, decimals=0))
+from .style import (GREY, JITTER_SEED, KIND_WIDTH, band_alpha, check_columns, colors_for, display_label, floor_note,
+                    legend_outside, linestyles, new_axes, percent_axis, policies_in, policy_colors, policy_ticks,
+                    quiet_seaborn, regret_floor, save_figure)
 
 
 # ---------------------------------------------------------------------------
@@ -210,29 +58,29 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     """
     if unit not in ("trial", "round"):
         raise ValueError(f"`unit` must be 'trial' or 'round'; got {unit!r}")
-    _check_columns(curves, "curves", ("policy", "trial", "regret_median", "regret_q25", "regret_q75"))
-    labels = _policies_in(curves)
-    colors = _colors_for(labels, colors)
-    styles = _linestyles(labels)
-    fig, ax = _new_axes(ax, (_KIND_WIDTH, 4.2))
+    check_columns(curves, "curves", ("policy", "trial", "regret_median", "regret_q25", "regret_q75"))
+    labels = policies_in(curves)
+    colors = colors_for(labels, colors)
+    styles = linestyles(labels)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 4.2))
     values = curves[["regret_median", "regret_q25", "regret_q75"]].to_numpy(dtype=float)
-    floor = _regret_floor(values, target)
+    floor = regret_floor(values, target)
     if initial:
         ax.axvspan(0.5, initial + 0.5, color="#000000", alpha=0.06, lw=0)
         ax.text(0.5 + initial / 2, 0.01, "initial\ndesign", transform=ax.get_xaxis_transform(), ha="center",
-                va="bottom", fontsize=8, color=_GREY)
+                va="bottom", fontsize=8, color=GREY)
     for label in labels:
         rows = curves[curves["policy"].astype(str) == label].sort_values("trial")
         t = rows["trial"].to_numpy()
         low = np.maximum(rows["regret_q25"].to_numpy(dtype=float), floor)
         high = np.maximum(rows["regret_q75"].to_numpy(dtype=float), floor)
         mid = np.maximum(rows["regret_median"].to_numpy(dtype=float), floor)
-        ax.fill_between(t, low, high, color=colors[label], alpha=_band_alpha(labels), lw=0)
-        ax.plot(t, mid, color=colors[label], ls=styles[label], lw=1.8, label=_shown(label))
+        ax.fill_between(t, low, high, color=colors[label], alpha=band_alpha(labels), lw=0)
+        ax.plot(t, mid, color=colors[label], ls=styles[label], lw=1.8, label=display_label(label))
     for b in budgets:
-        ax.axvline(b, color=_GREY, lw=0.8, ls=":", zorder=0)
+        ax.axvline(b, color=GREY, lw=0.8, ls=":", zorder=0)
         ax.text(b, 0.99, f"budget {b}{' rounds' if unit == 'round' else ''} ", transform=ax.get_xaxis_transform(),
-                fontsize=8, color=_GREY, va="top", ha="right")
+                fontsize=8, color=GREY, va="top", ha="right")
     if target > 0:
         ax.axhline(target, color="#000000", lw=1.0, ls="--", label=f"target ({target:g})")
     ax.set_yscale("log")
@@ -243,11 +91,11 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     trials = curves["trial"].to_numpy()
     ax.set_xlim(min(trials.min(), 1) - 0.5, trials.max() + 0.5)
     ax.set_xlabel("round (trials evaluated together)" if unit == "round" else "trial")
-    ax.set_ylabel(f"simple regret (objective units)\n{_floor_note(floor, values)}", fontsize=9.5)
+    ax.set_ylabel(f"simple regret (objective units)\n{floor_note(floor, values)}", fontsize=9.5)
     ax.set_title("Regret after each round: median (line) and middle 50 % of campaigns (band)" if unit == "round"
                  else "Regret of the recommendation: median (line) and middle 50 % of campaigns (band)",
                  fontsize=10, loc="left")
-    _legend_outside(ax)
+    legend_outside(ax)
     return fig
 
 
@@ -267,11 +115,11 @@ def failure_figure(summary, *, colors=None, ax=None):
     -------
     matplotlib.figure.Figure
     """
-    _check_columns(summary, "summary", ("policy", "budget", "failure_risk", "failure_low", "failure_high"))
-    labels = _policies_in(summary)
-    colors = _colors_for(labels, colors)
-    styles = _linestyles(labels)
-    fig, ax = _new_axes(ax, (_KIND_WIDTH, 4.0))
+    check_columns(summary, "summary", ("policy", "budget", "failure_risk", "failure_low", "failure_high"))
+    labels = policies_in(summary)
+    colors = colors_for(labels, colors)
+    styles = linestyles(labels)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 4.0))
     budgets = np.sort(summary["budget"].unique())
     gap = float(np.min(np.diff(budgets))) if budgets.size > 1 else 1.0
     # Dodge the policies sideways so that error bars do not hide each other.
@@ -283,23 +131,23 @@ def failure_figure(summary, *, colors=None, ax=None):
         err = np.vstack([risk - rows["failure_low"].to_numpy(dtype=float),
                          rows["failure_high"].to_numpy(dtype=float) - risk])
         ax.errorbar(b, risk, yerr=np.maximum(err, 0.0), color=colors[label], ls=styles[label], lw=1.2,
-                    marker="o", ms=5, capsize=3, label=_shown(label))
+                    marker="o", ms=5, capsize=3, label=display_label(label))
     ax.set_xticks(budgets)
     ax.set_xlim(budgets.min() - 0.6 * gap, budgets.max() + 0.6 * gap)
     ax.set_ylim(-0.02, 1.02)
-    _percent_axis(ax.yaxis)
+    percent_axis(ax.yaxis)
     ax.grid(axis="y", color="#dddddd", lw=0.6)
     ax.set_xlabel("budget (trials)")
     ax.set_ylabel("failure risk\n(share of campaigns above the target)")
     ax.set_title("Failure risk at each budget, with exact 95 % intervals (Clopper–Pearson)", fontsize=10, loc="left")
-    _legend_outside(ax)
+    legend_outside(ax)
     return fig
 
 
 def _share_steps(ax, frame, columns, labels, colors):
     """Step curves of a share per policy with its band; a share holds from its trial to the next."""
     value, low, high = columns
-    styles = _linestyles(labels)
+    styles = linestyles(labels)
     for label in labels:
         rows = frame[frame["policy"].astype(str) == label].sort_values("trial")
         t = rows["trial"].to_numpy(dtype=float)
@@ -311,12 +159,12 @@ def _share_steps(ax, frame, columns, labels, colors):
             return np.append(v, v[-1])
 
         ax.fill_between(t_ext, ext(low), ext(high), step="post", color=colors[label],
-                        alpha=_band_alpha(labels), lw=0)
-        ax.step(t_ext, ext(value), where="post", color=colors[label], ls=styles[label], lw=1.8, label=_shown(label))
+                        alpha=band_alpha(labels), lw=0)
+        ax.step(t_ext, ext(value), where="post", color=colors[label], ls=styles[label], lw=1.8, label=display_label(label))
     trials = frame["trial"].to_numpy(dtype=float)
     ax.set_xlim(trials.min() - 0.5, trials.max() + 0.5)
     ax.set_ylim(-0.02, 1.02)
-    _percent_axis(ax.yaxis)
+    percent_axis(ax.yaxis)
     ax.grid(axis="y", color="#dddddd", lw=0.6)
     ax.set_xlabel("trial")
 
@@ -341,10 +189,10 @@ def within_target_figure(within, *, success=0.9, budgets=(), colors=None, ax=Non
     -------
     matplotlib.figure.Figure
     """
-    _check_columns(within, "within", ("policy", "trial", "within_target", "within_low", "within_high"))
-    labels = _policies_in(within)
-    colors = _colors_for(labels, colors)
-    fig, ax = _new_axes(ax, (_KIND_WIDTH, 4.2))
+    check_columns(within, "within", ("policy", "trial", "within_target", "within_low", "within_high"))
+    labels = policies_in(within)
+    colors = colors_for(labels, colors)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 4.2))
     for b in budgets:
         ax.axvline(b, color="#999999", lw=0.8, ls=":")
     _share_steps(ax, within, ("within_target", "within_low", "within_high"), labels, colors)
@@ -352,7 +200,7 @@ def within_target_figure(within, *, success=0.9, budgets=(), colors=None, ax=Non
     ax.set_ylabel("share of campaigns within target\n(recommendation after the trial)")
     ax.set_title("Within target after each trial (what a team stopping there ships; 95 % Clopper-Pearson band)",
                  fontsize=10, loc="left")
-    _legend_outside(ax)
+    legend_outside(ax)
     return fig
 
 
@@ -377,16 +225,16 @@ def reach_figure(reach, *, success=0.9, colors=None, ax=None):
     -------
     matplotlib.figure.Figure
     """
-    _check_columns(reach, "reach", ("policy", "trial", "reached", "reached_low", "reached_high"))
-    labels = _policies_in(reach)
-    colors = _colors_for(labels, colors)
-    fig, ax = _new_axes(ax, (_KIND_WIDTH, 4.2))
+    check_columns(reach, "reach", ("policy", "trial", "reached", "reached_low", "reached_high"))
+    labels = policies_in(reach)
+    colors = colors_for(labels, colors)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 4.2))
     _share_steps(ax, reach, ("reached", "reached_low", "reached_high"), labels, colors)
     ax.axhline(success, color="#000000", lw=1.0, ls="--", label=f"requested success ({success:.0%})")
     ax.set_ylabel("share of campaigns that were\nwithin target at some trial so far")
     ax.set_title("First passage (descriptive: a real campaign cannot observe it; Kaplan-Meier, 95 % band)",
                  fontsize=10, loc="left")
-    _legend_outside(ax)
+    legend_outside(ax)
     return fig
 
 
@@ -411,23 +259,23 @@ def final_regret_figure(final, *, target, budget=None, colors=None, ax=None):
     """
     import seaborn as sns
 
-    _check_columns(final, "final", ("policy", "regret"))
-    labels = _policies_in(final)
-    colors = _colors_for(labels, colors)
-    fig, ax = _new_axes(ax, (_KIND_WIDTH, 0.9 + 0.45 * len(labels)))
-    floor = _regret_floor(final["regret"].to_numpy(dtype=float), target)
+    check_columns(final, "final", ("policy", "regret"))
+    labels = policies_in(final)
+    colors = colors_for(labels, colors)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 0.9 + 0.45 * len(labels)))
+    floor = regret_floor(final["regret"].to_numpy(dtype=float), target)
     data = pd.DataFrame({
         "policy": pd.Categorical(final["policy"].astype(str), categories=labels, ordered=True),
         "regret": np.maximum(final["regret"].to_numpy(dtype=float), floor),
     })
     palette = {label: colors[label] for label in labels}
-    with _quiet_seaborn():
+    with quiet_seaborn():
         sns.boxplot(data=data, x="regret", y="policy", hue="policy", order=labels, hue_order=labels,
                     palette=palette, legend=False, ax=ax, width=0.55, fliersize=0, linewidth=1.0,
                     boxprops={"alpha": 0.35}, log_scale=True)
     # Every campaign as a dot, jittered sideways by a fixed local generator so that
     # redrawing gives the same picture.
-    jitter = np.random.default_rng(_JITTER_SEED)
+    jitter = np.random.default_rng(JITTER_SEED)
     for i, label in enumerate(labels):
         x = data.loc[data["policy"] == label, "regret"].to_numpy()
         ax.scatter(x, i + jitter.uniform(-0.22, 0.22, x.size), s=7, color=colors[label], alpha=0.7, lw=0,
@@ -436,8 +284,8 @@ def final_regret_figure(final, *, target, budget=None, colors=None, ax=None):
         ax.axvline(target, color="#000000", lw=1.0, ls="--")
         ax.text(target, 1.0, f" target {target:g}", transform=ax.get_xaxis_transform(), fontsize=8,
                 va="bottom", ha="left")
-    _policy_ticks(ax.yaxis, labels, colors)
-    ax.set_xlabel(f"simple regret (objective units)\n{_floor_note(floor, final['regret'])}")
+    policy_ticks(ax.yaxis, labels, colors)
+    ax.set_xlabel(f"simple regret (objective units)\n{floor_note(floor, final['regret'])}")
     ax.set_ylabel("policy")
     when = f" after {budget} trials" if budget is not None else ""
     ax.set_title(f"Regret of every campaign{when} (box: quartiles; dots: campaigns)", fontsize=10, loc="left",
@@ -471,15 +319,15 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
     """
     import seaborn as sns
 
-    _check_columns(pairs, "pairs", ("policy_a", "policy_b", "win_rate", "sign_p_holm"))
+    check_columns(pairs, "pairs", ("policy_a", "policy_b", "win_rate", "sign_p_holm"))
     labels = []
     for a, b in zip(pairs["policy_a"].astype(str), pairs["policy_b"].astype(str)):
         for p in (a, b):
             if p not in labels:
                 labels.append(p)
-    colors = _colors_for(labels, colors)
+    colors = colors_for(labels, colors)
     k = len(labels)
-    fig, ax = _new_axes(ax, (min(_KIND_WIDTH, 2.2 + 0.85 * k), 1.6 + 0.6 * k))
+    fig, ax = new_axes(ax, (min(KIND_WIDTH, 2.2 + 0.85 * k), 1.6 + 0.6 * k))
     matrix = pd.DataFrame(np.nan, index=labels, columns=labels)
     text = pd.DataFrame("", index=labels, columns=labels)
     for row in pairs.itertuples(index=False):
@@ -487,12 +335,12 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
         star = "*" if float(row.sign_p_holm) < alpha else ""
         matrix.loc[a, b], matrix.loc[b, a] = w, 1.0 - w
         text.loc[a, b], text.loc[b, a] = f"{w:.0%}{star}", f"{1.0 - w:.0%}{star}"
-    with _quiet_seaborn():
+    with quiet_seaborn():
         sns.heatmap(matrix, annot=text.to_numpy(), fmt="", cmap="vlag_r", center=0.5, vmin=0.0, vmax=1.0,
                     square=True, linewidths=0.5, linecolor="white", ax=ax, annot_kws={"fontsize": 9},
                     cbar_kws={"label": "row policy wins", "format": "{x:.0%}", "shrink": 0.8})
-    _policy_ticks(ax.yaxis, labels, colors, offset=0.5)
-    _policy_ticks(ax.xaxis, labels, colors, offset=0.5)
+    policy_ticks(ax.yaxis, labels, colors, offset=0.5)
+    policy_ticks(ax.xaxis, labels, colors, offset=0.5)
     ax.tick_params(axis="x", labelrotation=35)
     ax.tick_params(axis="y", labelrotation=0)
     for tick in ax.get_xticklabels():
@@ -529,17 +377,17 @@ def sweep_figure(summary, *, budget, colors=None):
     from matplotlib.figure import Figure
     from matplotlib.patches import Rectangle
 
-    _check_columns(summary, "summary", ("policy", "budget", "lengthscale_factor", "amplitude_factor",
+    check_columns(summary, "summary", ("policy", "budget", "lengthscale_factor", "amplitude_factor",
                                         "failure_risk"))
     at = summary[summary["budget"] == budget]
     if at.empty:
         raise ValueError(f"`budget` {budget} is not in the sweep summary; it has {sorted(set(summary['budget']))}")
-    labels = _policies_in(at)
-    colors = _colors_for(labels, colors)
+    labels = policies_in(at)
+    colors = colors_for(labels, colors)
     k = len(labels)
     ncol = min(k, 3)
     nrow = -(-k // ncol)
-    fig = Figure(figsize=(min(_KIND_WIDTH, 2.6 * ncol + 1.2), 2.5 * nrow + 0.9), layout="constrained")
+    fig = Figure(figsize=(min(KIND_WIDTH, 2.6 * ncol + 1.2), 2.5 * nrow + 0.9), layout="constrained")
     axes = np.atleast_1d(fig.subplots(nrow, ncol, squeeze=False)).ravel()
     ls = sorted(at["lengthscale_factor"].unique())
     amp = sorted(at["amplitude_factor"].unique(), reverse=True)
@@ -547,14 +395,14 @@ def sweep_figure(summary, *, budget, colors=None):
         g = at[at["policy"].astype(str) == label]
         grid = g.pivot(index="amplitude_factor", columns="lengthscale_factor", values="failure_risk")
         grid = grid.reindex(index=amp, columns=ls)
-        with _quiet_seaborn():
+        with quiet_seaborn():
             sns.heatmap(grid, annot=grid.map(lambda v: f"{v:.0%}").to_numpy(), fmt="", cmap="rocket_r",
                         vmin=0.0, vmax=1.0, cbar=i == len(labels) - 1, ax=ax, annot_kws={"fontsize": 8},
                         linewidths=0.5, linecolor="white", square=True,
                         cbar_kws={"label": "failure risk", "format": "{x:.0%}"})
         if 1.0 in ls and 1.0 in amp:
             ax.add_patch(Rectangle((ls.index(1.0), amp.index(1.0)), 1, 1, fill=False, lw=2.0, ec="#0072B2"))
-        ax.set_title(_shown(label), color=colors[label], fontsize=10, loc="left")
+        ax.set_title(display_label(label), color=colors[label], fontsize=10, loc="left")
         ax.set_xticklabels([f"{v:g}" for v in ls], rotation=0)
         ax.set_yticklabels([f"{v:g}" for v in amp], rotation=0)
         ax.set_xlabel("belief lengthscale x" if i // ncol == nrow - 1 else "")
@@ -566,34 +414,3 @@ def sweep_figure(summary, *, budget, colors=None):
     return fig
 
 
-def save_figure(fig, folder, stem):
-    """Write ``<stem>.png`` (150 dpi) and ``<stem>.svg`` into `folder`, each atomically.
-
-    Parameters
-    ----------
-    fig : matplotlib Figure
-    folder : path
-        Created if missing.
-    stem : str
-        File name without extension.
-
-    Returns
-    -------
-    png, svg : pathlib.Path
-    """
-    from ..replay.store import atomic_write
-
-    if not isinstance(stem, str) or not stem or "/" in stem or "\\" in stem or stem.startswith("."):
-        raise ValueError(f"`stem` must be a plain file name without folders; got {stem!r}")
-    folder = Path(folder)
-    png, svg = folder / f"{stem}.png", folder / f"{stem}.svg"
-    import matplotlib
-
-    # The temporary file has no telling extension, so the format is named explicitly;
-    # metadata without dates and a fixed hash salt make repeated reports byte-identical.
-    with matplotlib.rc_context({"svg.hashsalt": "simlab", "svg.fonttype": "path"}):
-        atomic_write(png, lambda p: fig.savefig(p, format="png", dpi=_DPI, facecolor="white",
-                                                metadata={"Software": None}))
-        atomic_write(svg, lambda p: fig.savefig(p, format="svg", facecolor="white",
-                                                metadata={"Date": None, "Creator": None}))
-    return png, svg

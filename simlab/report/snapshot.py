@@ -9,7 +9,7 @@ from numbers import Integral
 
 import numpy as np
 
-from .plots import _GREY, _KIND_WIDTH, _Z95, _check_columns, _colors_for, _linestyles, _policy_ticks, _shown
+from .style import GREY, KIND_WIDTH, Z95, check_columns, colors_for, display_label, linestyles, policy_ticks
 
 # The snapshot's Monte Carlo minimiser distribution has its own fixed generator so that
 # redrawing the figure never changes it and never touches the study's keyed streams.
@@ -89,7 +89,7 @@ def _trials_so_far(study, traces, replicate, policy, trial):
 
         traces = replay_replicate(study, replicate)
     else:
-        _check_columns(traces, "traces", ("policy", "replicate", "trial", "y", *study.space.names))
+        check_columns(traces, "traces", ("policy", "replicate", "trial", "y", *study.space.names))
     label = policy if policy is not None else study.labels[0]  # the initial design is shared
     rows = traces[(traces["policy"].astype(str) == label) & (traces["replicate"] == replicate)
                   & (traces["trial"] <= trial)].sort_values("trial")
@@ -129,7 +129,7 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
     line = np.repeat(base[None, :], grid.size, axis=0)
     line[:, j] = grid
     mu, sd = post.moments(line)
-    band = (sign * (mu - _Z95 * sd), sign * (mu + _Z95 * sd))
+    band = (sign * (mu - Z95 * sd), sign * (mu + Z95 * sd))
 
     # What each policy would choose next from this belief. Each starts afresh on its own
     # keyed stream, exactly as a campaign starts it, so after the initial design the
@@ -237,12 +237,12 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     """
     snap = _snapshot_data(study, traces, replicate, policy, trial, along, samples, points)
     labels = list(study.labels)
-    colors = _colors_for(labels, colors)
-    styles = _linestyles(labels)
+    colors = colors_for(labels, colors)
+    styles = linestyles(labels)
     from matplotlib.figure import Figure
 
     rows = 0.45 + 0.17 * len(labels)
-    fig = Figure(figsize=(_KIND_WIDTH, 7.6 + rows), layout="constrained")
+    fig = Figure(figsize=(KIND_WIDTH, 7.6 + rows), layout="constrained")
     top, mid, nxt, low = fig.subplots(4, 1, sharex=True,
                                       gridspec_kw={"height_ratios": [3.0, 1.8, rows, 1.3]})
     goal = "maximised" if study.sign < 0 else "minimised"
@@ -257,7 +257,7 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         top.plot(snap.trials_x[new], snap.trials_y[new], ls="none", marker="o", ms=6, mfc="white",
                  mec="#000000", mew=1.4, label="trials so far (observed)", gid="trials")
     if snap.past.any():
-        top.plot(snap.trials_x[snap.past], snap.trials_y[snap.past], ls="none", marker="s", ms=5, color=_GREY,
+        top.plot(snap.trials_x[snap.past], snap.trials_y[snap.past], ls="none", marker="s", ms=5, color=GREY,
                  label="past trials (history)", gid="past-trials")
     if not snap.fixed:
         top.plot([snap.best_x], [snap.best_y], ls="none", marker="*", ms=13, color="#E69F00", mec="#000000",
@@ -269,7 +269,7 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         curve = snap.scores[label]
         if curve is None:
             continue
-        mid.plot(snap.x, curve, color=colors[label], ls=styles[label], lw=1.5, label=_shown(label))
+        mid.plot(snap.x, curve, color=colors[label], ls=styles[label], lw=1.5, label=display_label(label))
         if snap.next_score[label] is not None:
             mid.plot([snap.next_x[label]], [snap.next_score[label]], ls="none", marker="v", ms=7,
                      color=colors[label], mec="#000000", mew=0.5)
@@ -280,13 +280,13 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         mid.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=8.5)
     else:
         mid.text(0.5, 0.5, "no policy in this study scores inputs", transform=mid.transAxes, ha="center",
-                 color=_GREY)
+                 color=GREY)
 
     # One row per policy: where each would run the next trial.
     for i, label in enumerate(labels):
         nxt.plot([snap.next_x[label]], [i], ls="none", marker="v", ms=8, color=colors[label], mec="#000000",
-                 mew=0.5, gid=f"next:{label}", label=_shown(label), clip_on=False)
-    _policy_ticks(nxt.yaxis, labels, colors, fontsize=8.5)
+                 mew=0.5, gid=f"next:{label}", label=display_label(label), clip_on=False)
+    policy_ticks(nxt.yaxis, labels, colors, fontsize=8.5)
     nxt.set_ylim(len(labels) - 0.5, -0.5)
     nxt.grid(axis="y", color="#e5e5e5", lw=0.6)
     nxt.set_ylabel("policy")
@@ -294,7 +294,7 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
 
     names = study.space.names
     lo_x, hi_x = study.space.low[names.index(snap.name)], study.space.high[names.index(snap.name)]
-    low.hist(snap.minimisers, bins=np.linspace(lo_x, hi_x, 41), color=_GREY, alpha=0.75, gid="minimiser-hist")
+    low.hist(snap.minimisers, bins=np.linspace(lo_x, hi_x, 41), color=GREY, alpha=0.75, gid="minimiser-hist")
     low.axvline(snap.best_x, color="#000000", lw=1.0, ls="--", label="true best input")
     low.set_ylabel("posterior\nsamples")
     low.set_xlabel(snap.name)
@@ -306,14 +306,14 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     if policy is None:
         when = "before the first trial" if snap.trials == 0 else f"after the {snap.trials}-trial initial design"
     else:
-        when = f"after {snap.trials} trials of {_shown(policy)}"
+        when = f"after {snap.trials} trials of {display_label(policy)}"
     title = f"Campaign snapshot: replicate {replicate}, {when}"
     if snap.past.any():
         title += f" (plus {int(snap.past.sum())} past trials)"
     if snap.lost:
         title += f"; {snap.lost} lost"
     if snap.fixed:
-        held = ", ".join(f"{_shown(k)} = {v:.4g}" for k, v in snap.fixed.items())
+        held = ", ".join(f"{display_label(k)} = {v:.4g}" for k, v in snap.fixed.items())
         title += (f"\nslice through the current recommendation ({held});\n"
                   "trials and next inputs of other coordinates projected onto this input")
     top.set_title(title, fontsize=10, loc="left")
