@@ -493,8 +493,8 @@ def _plan(args) -> int:
 
 def _pct_interval(value, low, high) -> str:
     """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
-    from .report.page import _fmt_pct
-    return f"{_fmt_pct(value)} % [{_fmt_pct(low)}-{_fmt_pct(high)} %]"
+    from .report.cells import fmt_pct
+    return f"{fmt_pct(value)} % [{fmt_pct(low)}-{fmt_pct(high)} %]"
 
 
 def _plan_refusal(exc, args):

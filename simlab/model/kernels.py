@@ -26,6 +26,7 @@ class Kernel:
     """
 
     name = "kernel"
+    title = "kernel"   # its name in the report
     nu = np.inf  # smoothness: Matérn nu, inf for the squared exponential
 
     def __init__(self, lengthscale, amplitude: float = 1.0):
@@ -160,7 +161,7 @@ def _sum_sq(diffs: list[np.ndarray]) -> np.ndarray:
 class SquaredExponential(Kernel):
     """rho(r) = exp(-r^2 / 2); spectral density N(0, lengthscale^-2 I)."""
 
-    name = "sqexp"
+    name, title = "sqexp", "squared exponential"
 
     def _rho(self, r):
         return np.exp(-0.5 * r * r)
@@ -190,7 +191,7 @@ class _Matern(Kernel):
 class Matern12(_Matern):
     """rho(r) = exp(-r) (the exponential kernel; not differentiable at r = 0)."""
 
-    name, nu = "matern12", 0.5
+    name, nu, title = "matern12", 0.5, "Matérn 1/2 (exponential)"
 
     def _rho(self, r):
         return np.exp(-r)
@@ -212,7 +213,7 @@ class Matern12(_Matern):
 class Matern32(_Matern):
     """rho(r) = (1 + sqrt3 r) exp(-sqrt3 r)."""
 
-    name, nu = "matern32", 1.5
+    name, nu, title = "matern32", 1.5, "Matérn 3/2"
 
     def _rho(self, r):
         s = _S3 * r
@@ -235,7 +236,7 @@ class Matern32(_Matern):
 class Matern52(_Matern):
     """rho(r) = (1 + sqrt5 r + 5 r^2 / 3) exp(-sqrt5 r)."""
 
-    name, nu = "matern52", 2.5
+    name, nu, title = "matern52", 2.5, "Matérn 5/2"
 
     def _rho(self, r):
         s = _S5 * r

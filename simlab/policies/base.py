@@ -57,6 +57,7 @@ class Policy:
     """
 
     rule: ClassVar[str] = ""
+    description: ClassVar[str] = ""      # one line for the report: what the rule does
     options: ClassVar[dict[str, Option]] = {}
     lockstep: ClassVar[bool] = False
 

@@ -17,6 +17,7 @@ class RandomSearch(Policy):
     """Uniformly random inputs: the baseline every adaptive rule must beat."""
 
     rule = "random"
+    description = "uniformly random inputs (baseline)"
     lockstep = True
 
     def choose(self, post, t):
@@ -30,6 +31,7 @@ class SobolSearch(Policy):
     """Non-adaptive space filling: continues the replicate's scrambled Sobol' sequence."""
 
     rule = "sobol"
+    description = "non-adaptive space filling (scrambled Sobol' sequence)"
     lockstep = True
 
     def choose(self, post, t):
@@ -43,6 +45,7 @@ class PosteriorMean(Acquisition):
     """Pure exploitation: the input with the lowest posterior mean."""
 
     rule = "mean"
+    description = "pure exploitation: lowest posterior mean"
     lockstep = True
 
     def _from_moments(self, mu, sd):
@@ -60,6 +63,7 @@ class ConfidenceBound(Acquisition):
     """
 
     rule = "lcb"
+    description = "optimistic confidence bound"
     lockstep = True
     options = {"width": Option(2.0, float, 0.0, 100.0, "multiple of the posterior sd")}
 
@@ -95,6 +99,7 @@ class ProbabilityOfImprovement(_Improvement):
     """
 
     rule = "pi"
+    description = "probability of improvement"
     log_score = True
 
     def _value(self, mu, sd):
@@ -124,6 +129,7 @@ class ExpectedImprovement(_Improvement):
     """
 
     rule = "ei"
+    description = "expected improvement"
     log_score = True
 
     def _value(self, mu, sd):
@@ -199,6 +205,7 @@ class ThompsonSampling(Acquisition):
     """
 
     rule = "thompson"
+    description = "Thompson sampling (one posterior sample per trial)"
     options = {
         "features": Option(512, int, 16, 8192, "spectral frequencies per sample"),
         "fill": Option("samples", str, help="how a round of several trials is filled",

@@ -172,6 +172,7 @@ class ProbabilityOfMinimum(Acquisition):
     """
 
     rule = "pbest"
+    description = "most probable location of the minimum, from posterior samples"
     scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
     options = {
         "samples": Option(256, int, 1, 65536, "posterior draws counted per trial"),
@@ -355,6 +356,7 @@ class MaxValueEntropySearch(Acquisition):
     """
 
     rule = "mes"
+    description = "max-value entropy search"
     options = {
         "samples": Option(16, int, 1, 1024, "sampled minimum values per trial"),
         "features": Option(128, int, 16, 8192, "spectral frequencies for the draws"),
@@ -536,6 +538,7 @@ class KnowledgeGradient(Acquisition):
     """
 
     rule = "kg"
+    description = "knowledge gradient"
     scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
     options = {
         "points": Option(64, int, 2, 1024, "pool points in the discrete set and candidates"),

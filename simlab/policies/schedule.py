@@ -55,6 +55,7 @@ class GPUCB(Acquisition):
     """
 
     rule = "gp-ucb"
+    description = "confidence bound with the GP-UCB width schedule"
     options = {"delta": Option(0.1, float, 1e-12, 0.999, "failure probability of the confidence bound")}
     lockstep = True
 
@@ -99,6 +100,7 @@ class GPHedge(Policy):
     """
 
     rule = "hedge"
+    description = "portfolio of EI, PI and the confidence bound, weighted by past gains"
     options = {"eta": Option(1.0, float, 0.0, 1e6, "learning rate of the softmax over gains, per objective unit")}
 
     def start(self, ctx):

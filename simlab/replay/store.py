@@ -50,13 +50,13 @@ class FolderBusy(StudyError):
 
 def _own_names() -> tuple[set[str], dict[str, object]]:
     """Top-level files and sub-folders (with a test for their entries) that simlab writes."""
-    from ..report import page
-    files = set(OWN_FILES) | {page.SUMMARY, page.TRIALS_TO_TARGET, page.TRIALS_TO_TARGET_SUMMARY, page.PAIRWISE,
-                              page.CHOICE, page.BUDGET_PLAN, page.WITHIN_TARGET, page.REPORT}
-    figures = {f"{stem}.{ext}" for stem in page._FIGURE_STEMS for ext in ("png", "svg")}
+    from ..report import files as report_files
+    from ..report.figures import FIGURES as FIGURE_REGISTRY
+    files = set(OWN_FILES) | set(report_files.TABLES)
+    figures = {f"{stem}.{ext}" for stem in FIGURE_REGISTRY for ext in report_files.FIGURE_FORMATS}
     folders = {
         PARTIAL: lambda n: n.startswith(("chunk-", "worlds-")) and n.endswith(".parquet"),
-        page.FIGURES: lambda n: n in figures,
+        report_files.FIGURES: lambda n: n in figures,
         SWEEP: lambda n: n in _SWEEP_FILES,
     }
     return files, folders

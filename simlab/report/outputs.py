@@ -10,9 +10,13 @@ from pathlib import Path
 import pandas as pd
 
 from ..evidence import choice, compare, frame, metrics, reach
-from .page import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
-                   TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS, _FIGURE_STEMS, render)
 from ..replay.store import atomic_write
+from .figures import FIGURES as FIGURE_REGISTRY
+from .figures import FigureInput
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
+                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
+from .page import render
+
 
 @dataclass(frozen=True)
 class ReportFiles:
@@ -38,7 +42,7 @@ class ReportFiles:
 
 def report_steps(*, figures=True):
     """Number of times :func:`write_outputs` calls its `progress` callback."""
-    return 7 + (len(_FIGURE_STEMS) if figures else 0) + 1
+    return 7 + (len(FIGURE_REGISTRY) if figures else 0) + 1
 
 
 # ---------------------------------------------------------------------------
@@ -161,40 +165,10 @@ def _levels(success):
 
 
 def _figures(study, traces, tables, *, success, seed):
-    """Yield (stem, figure or None where it does not apply) for every stem, in report order."""
-    from . import plots
-    from .snapshot import snapshot_figure
+    """Yield (stem, figure or None where it does not apply) for every registered figure, in order."""
+    from .style import policy_colors
 
-    colors = plots.policy_colors(study.labels)
-    horizon = study.campaign.horizon
-    curves = metrics.regret_curves(traces, seed=seed)
-    yield "regret", plots.regret_figure(curves, target=study.target, budgets=study.campaign.budgets,
-                                        initial=study.campaign.initial, colors=colors)
-    yield "regret_rounds", _rounds_figure(study, traces, colors, seed) if study.campaign.batch > 1 else None
-    yield "failure_risk", plots.failure_figure(tables[SUMMARY], colors=colors)
-    yield "within_target", plots.within_target_figure(tables[WITHIN_TARGET], success=success,
-                                                      budgets=study.campaign.budgets, colors=colors)
-    yield "trials_to_target", plots.reach_figure(tables[TRIALS_TO_TARGET], success=success, colors=colors)
-    final = metrics.regret_at_budget(traces, budget=horizon)
-    yield "final_regret", plots.final_regret_figure(final, target=study.target, budget=horizon, colors=colors)
-    yield "win_rates", plots.win_rate_figure(tables[PAIRWISE], colors=colors) if PAIRWISE in tables else None
-    # The snapshot shows the next trial after the initial design; there is none when the
-    # initial design uses the whole budget.
-    yield "snapshot", snapshot_figure(study, traces, colors=colors) if study.campaign.initial < horizon else None
-    yield "sweep", (plots.sweep_figure(tables[SWEEP_SUMMARY], budget=horizon, colors=colors)
-                    if SWEEP_SUMMARY in tables else None)
-
-
-def _rounds_figure(study, traces, colors, seed):
-    """Regret after each round (the last trial of the round): what matters when a round takes a week."""
-    from . import plots
-
-    q = study.campaign.batch
-    ends = traces[(traces["trial"] >= 1) & ((traces["trial"] % q == 0) | (traces["trial"] == study.campaign.horizon))]
-    by_round = ends.assign(trial=(ends["trial"] - 1) // q + 1)
-    curves = metrics.regret_curves(by_round, seed=seed)
-    rounds = sorted({-(-b // q) for b in study.campaign.budgets})
-    return plots.regret_figure(curves, target=study.target, budgets=rounds, colors=colors, unit="round",
-                               initial=-(-study.campaign.initial // q) if study.campaign.initial else None)
-
-
+    given = FigureInput(study=study, traces=traces, tables=tables, success=success, seed=seed,
+                        colors=policy_colors(study.labels))
+    for stem, fig in FIGURE_REGISTRY.items():
+        yield stem, fig.draw(given) if fig.applies(study, tables) else None

@@ -8,7 +8,7 @@ import pytest
 from scipy import stats
 
 from simlab.evidence import choice, compare, intervals, reach
-from simlab.report import page, plots
+from simlab.report import cells, plots
 from simlab.study.spec import StudyError, dump_study, parse_study
 from simlab.replay.sweep import safest_policy
 
@@ -292,8 +292,8 @@ def test_a_tiny_difference_is_a_tie_with_its_reason():
 def test_p_values_below_a_thousandth_print_as_such():
     assert compare.format_p(0.0004) == "< 0.001" and compare.format_p(0.0) == "< 0.001"
     assert compare.format_p(0.001) == "0.001" and compare.format_p(0.0462) == "0.046"
-    cells = page._Cells("pairwise.csv", pd.DataFrame({"p": [1e-9, 0.2]}))
-    assert ">&lt; 0.001</span>" in cells.span(0, "p", "p") and ">0.2</span>" in cells.span(1, "p", "p")
+    table = cells.Cells("pairwise.csv", pd.DataFrame({"p": [1e-9, 0.2]}))
+    assert ">&lt; 0.001</span>" in table.span(0, "p", "p") and ">0.2</span>" in table.span(1, "p", "p")
 
 
 # ---------------------------------------------------------------------------
