@@ -322,7 +322,7 @@ def _write_report(result, *, success: float, quiet: bool):
 
 
 def _check(args) -> int:
-    from .study.spec import dump_study
+    from .study.dump import dump_study
     study = _load(args)
     print(dump_study(study), end="")
     c = study.campaign

@@ -9,7 +9,13 @@ choice.py the choice table. Every summary a caller needs is importable from here
 from .choice import choice_table
 from .compare import format_p, holm_adjust, pairwise
 from .metrics import budget_summary, regret_at_budget, regret_curves
-from .reach import budget_plan, first_reach, reach_curves, trials_to_target_summary, within_target_curves
+from .reach import (
+           budget_plan,
+           first_reach,
+           reach_curves,
+           trials_to_target_summary,
+           within_target_curves,
+)
 
 __all__ = ["regret_at_budget", "regret_curves", "budget_summary", "within_target_curves", "budget_plan",
            "first_reach", "reach_curves", "trials_to_target_summary", "pairwise", "choice_table",

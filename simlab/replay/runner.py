@@ -10,15 +10,21 @@ import numpy as np
 import pandas as pd
 from scipy.stats import qmc
 
-from ..worlds import functions
-from .campaign import Belief, Trace, run_campaign
 from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import make_kernel
 from ..policies import POLICIES, Policy
 from ..rng import stream
 from ..study.spec import Prior, Study
+from ..worlds import functions
+from ..worlds.draws import (
+    ConditionedWorld,
+    FeatureWorld,
+    FunctionWorld,
+    GridWorld,
+    World,
+)
 from ..worlds.noise import Observer
-from ..worlds.draws import ConditionedWorld, FeatureWorld, FunctionWorld, GridWorld, World
+from .campaign import Belief, Trace, run_campaign
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
            "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan",

@@ -15,7 +15,8 @@ from pathlib import Path
 
 import pandas as pd
 
-from ..study.spec import Study, StudyError, dump_study, load_study
+from ..study.dump import dump_study
+from ..study.spec import Study, StudyError, load_study
 
 __all__ = ["TRACES", "STUDY", "HISTORY", "MANIFEST", "PARTIAL", "WORLDS", "OWN_FILES", "results_dir", "write_results",
            "read_results", "read_worlds", "atomic_write", "study_hash", "RunFolder", "FolderBusy", "make_folder",

@@ -10,6 +10,7 @@ import pandas as pd
 
 from ..evidence import compare
 
+
 # ---------------------------------------------------------------------------
 # number formatting: every number shown is tagged with its CSV cell
 # ---------------------------------------------------------------------------

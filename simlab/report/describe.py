@@ -9,6 +9,7 @@ from ..model.kernels import KERNELS
 from ..policies import POLICIES
 from .cells import escape, fmt_pct, number
 
+
 def _question(study, success):
     goal = "maximise" if study.goal == "maximize" else "minimise"
     inputs = ", ".join(f"<b>{escape(n)}</b> from {number(lo)} to {number(hi)}"

@@ -13,7 +13,8 @@ from .data import DataError, read_table
 from ..model.fit import FitResult, fit_hyperparameters, loo_log_predictive
 from ..model.kernels import KERNELS
 from ..rng import label_key
-from .spec import _NAME, GOALS, RESERVED, Prior, Space, _toml_key, _toml_value
+from .dump import toml_key, toml_value
+from .spec import _NAME, GOALS, RESERVED, Prior, Space
 
 __all__ = ["Calibration", "KernelFit", "calibrate"]
 
@@ -113,16 +114,16 @@ class Calibration:
         lines += [f"# warning: {w}" for w in self.warnings]
         lines += ["", "[space]", "# spans the data; widening it keeps the lengthscales valid (they are in input units)"]
         for name, lo, hi in zip(self.space.names, self.space.low, self.space.high):
-            lines.append(f"{_toml_key(name)} = [{_toml_value(float(lo))}, {_toml_value(float(hi))}]")
+            lines.append(f"{toml_key(name)} = [{toml_value(float(lo))}, {toml_value(float(hi))}]")
         lines += [
             "",
             "[world]",
-            f"kernel = {_toml_value(p.kernel)}",
-            f"lengthscale = {_toml_value([_round(v) for v in p.lengthscale])}   # "
+            f"kernel = {toml_value(p.kernel)}",
+            f"lengthscale = {toml_value([_round(v) for v in p.lengthscale])}   # "
             + ", ".join(self.space.names),
-            f"amplitude = {_toml_value(_round(p.amplitude))}",
-            f"mean = {_toml_value(_round(p.mean, 6))}",
-            f"noise = {_toml_value(_round(p.noise))}",
+            f"amplitude = {toml_value(_round(p.amplitude))}",
+            f"mean = {toml_value(_round(p.mean, 6))}",
+            f"noise = {toml_value(_round(p.noise))}",
         ]
         return "\n".join(lines) + "\n"
 

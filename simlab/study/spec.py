@@ -1,31 +1,41 @@
-"""Study files (TOML) to frozen dataclasses: the only place that validates user input."""
+"""Study files (TOML) to a `Study` (types.py): the only place that validates user input."""
 
 from __future__ import annotations
 
-import dataclasses
 import difflib
 import math
 import re
 import tomllib
-from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
-from ..worlds import functions
 from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
+from ..worlds import functions
+from .types import (
+    DESIGNS,
+    GOALS,
+    MAX_REPLICATES,
+    NAME_LENGTH,
+    WORLD_METHODS,
+    CampaignSpec,
+    HistorySpec,
+    PolicySpec,
+    Prior,
+    Space,
+    Study,
+    StudyError,
+    SweepSpec,
+    WorldSpec,
+)
 
-__all__ = [
-    "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec", "Study",
-    "load_study", "parse_study", "dump_study", "advice", "MAX_REPLICATES", "NAME_LENGTH",
-]
+__all__ = ["load_study", "parse_study", "advice", "RESERVED",
+           # the types a study is made of (types.py), imported here because reading makes them
+           "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec",
+           "Study", "MAX_REPLICATES", "NAME_LENGTH", "GOALS", "DESIGNS", "WORLD_METHODS"]
 
-GOALS = ("minimize", "maximize")
-DESIGNS = ("sobol", "lhs", "random")
-WORLD_METHODS = ("features", "grid")
 # Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
 RESERVED = TRACE_COLUMNS + WORLD_COLUMNS[1:]
 _SECTION_KEYS = {
@@ -38,165 +48,8 @@ _SECTION_KEYS = {
     "history": ("file", "response"),
 }
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
-# A study name becomes a folder name: most file systems allow 255 bytes, and the folder's
-# own files add their names below it; 100 leaves room and is plenty for a person to read.
-NAME_LENGTH = 100
-# The most replicates a study may ask for, in the study file and with --replicates alike.
-MAX_REPLICATES = 10_000_000
 
 
-class StudyError(ValueError):
-    """A mistake in a study file: carries the file, the field and what is allowed."""
-
-    def __init__(self, file: str, field: str, message: str):
-        self.file, self.field, self.message = file, field, message
-        super().__init__(f"{file}: {field}: {message}" if field else f"{file}: {message}")
-
-
-# --------------------------------------------------------------------------- dataclasses
-@dataclass(frozen=True)
-class Space:
-    """The box of inputs in the user's units; maps to and from the unit cube."""
-
-    names: tuple[str, ...]
-    low: tuple[float, ...]
-    high: tuple[float, ...]
-
-    @property
-    def dim(self) -> int:
-        return len(self.names)
-
-    @property
-    def width(self) -> np.ndarray:
-        return np.asarray(self.high) - np.asarray(self.low)
-
-    def to_unit(self, x: np.ndarray) -> np.ndarray:
-        """User units (..., d) -> unit cube (..., d)."""
-        return (np.asarray(x, dtype=float) - np.asarray(self.low)) / self.width
-
-    def from_unit(self, u: np.ndarray) -> np.ndarray:
-        """Unit cube (..., d) -> user units (..., d)."""
-        return np.asarray(self.low) + np.asarray(u, dtype=float) * self.width
-
-
-@dataclass(frozen=True)
-class Prior:
-    """A Gaussian-process prior in the user's units and orientation."""
-
-    kernel: str
-    lengthscale: tuple[float, ...]
-    amplitude: float
-    mean: float
-    noise: float
-
-
-@dataclass(frozen=True)
-class WorldSpec:
-    """How each replicate's true objective is made."""
-
-    prior: Prior | None          # None when `function` names a published test function
-    function: str | None
-    noise: float
-    method: str = "features"     # features | grid
-    features: int = 1024         # spectral frequencies per feature draw (2x as many basis functions)
-    grid: int = 40               # grid points per input for method = "grid"
-    lengthscale_within: float = 1.0  # each replicate draws lengthscales log-normally: 95 % within this factor
-    amplitude_within: float = 1.0    # likewise for the amplitude (1.0: known exactly)
-    noise_kind: str = "gaussian"     # gaussian | student
-    noise_df: float = 5.0            # degrees of freedom for student noise (> 2)
-    noise_growth: float = 0.0        # sd = noise * exp(growth * (f - mean) / amplitude)
-    lost: float = 0.0                # probability that a trial is lost
-
-
-@dataclass(frozen=True)
-class HistorySpec:
-    """Trials already run: campaigns start from them and worlds are conditioned on them."""
-
-    file: str = field(compare=False)      # path as resolved when the study was read
-    response: str                         # column holding the observed response
-    X: tuple[tuple[float, ...], ...]      # inputs in user units, one tuple per row
-    y: tuple[float, ...]                  # observed responses in the user's orientation
-
-    @property
-    def size(self) -> int:
-        return len(self.y)
-
-
-@dataclass(frozen=True)
-class SweepSpec:
-    """Belief misspecification grid: factors applied to the belief's lengthscales and amplitude."""
-
-    lengthscale: tuple[float, ...] = (0.25, 0.5, 1.0, 2.0, 4.0)
-    amplitude: tuple[float, ...] = (0.25, 0.5, 1.0, 2.0, 4.0)
-    replicates: int = 50
-
-
-@dataclass(frozen=True)
-class CampaignSpec:
-    initial: int
-    design: str
-    budgets: tuple[int, ...]
-    pool: int = 2048
-    batch: int = 1               # trials per round, chosen before any result of the round is back
-
-    @property
-    def horizon(self) -> int:
-        """The largest budget: every campaign runs this many trials."""
-        return max(self.budgets)
-
-
-@dataclass(frozen=True)
-class PolicySpec:
-    rule: str
-    label: str
-    settings: tuple[tuple[str, Any], ...] = ()
-
-    @property
-    def options(self) -> dict[str, Any]:
-        return dict(self.settings)
-
-
-@dataclass(frozen=True)
-class Study:
-    name: str
-    goal: str
-    replicates: int
-    seed: int
-    space: Space
-    world: WorldSpec
-    belief: Prior
-    campaign: CampaignSpec
-    target: float                # regret tolerance, objective units
-    policies: tuple[PolicySpec, ...]
-    sweep: SweepSpec = SweepSpec()
-    history: HistorySpec | None = None
-    refit_every: int = 0         # [belief] refit_every: refit the belief by maximum likelihood every k trials
-    difference: float | None = None  # [target] difference, objective units; None: target / 10
-    source: str = field(default="<study>", compare=False)
-
-    @property
-    def lead_difference(self) -> float:
-        """Smallest median paired regret difference that matters (``[target] difference``)."""
-        return self.target / 10.0 if self.difference is None else self.difference
-
-    @property
-    def sign(self) -> float:
-        """+1 for minimise, -1 for maximise: internal value = sign * user value."""
-        return 1.0 if self.goal == "minimize" else -1.0
-
-    @property
-    def labels(self) -> tuple[str, ...]:
-        return tuple(p.label for p in self.policies)
-
-    def with_replicates(self, replicates: int) -> "Study":
-        """The study with another replicate count (``--replicates``), capped as in the study file."""
-        if (isinstance(replicates, bool) or not isinstance(replicates, int)
-                or not 1 <= replicates <= MAX_REPLICATES):
-            raise StudyError(self.source, "--replicates", f"must be between 1 and {MAX_REPLICATES}; got {replicates!r}")
-        return dataclasses.replace(self, replicates=replicates)
-
-
-# --------------------------------------------------------------------------- reading
 def load_study(path: str | Path) -> Study:
     """Read and validate a study file.
 
@@ -635,72 +488,3 @@ def advice(study: Study) -> list[str]:
     return [f"{study.source}: {line}" for line in out]
 
 
-# --------------------------------------------------------------------------- writing
-def _toml_value(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (int, np.integer)):
-        return str(int(v))
-    if isinstance(v, float):
-        return repr(v)
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    raise TypeError(f"cannot write {type(v).__name__} as TOML")
-
-
-def _toml_key(k: str) -> str:
-    return k if re.match(r"^[A-Za-z0-9_-]+$", k) else _toml_value(k)
-
-
-def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_file: str | None = None) -> str:
-    """The resolved study as TOML text that :func:`load_study` reads back to an equal study.
-
-    Every default is written out, so the file records exactly what ran. ``history_file``
-    replaces the history path (the results folder keeps its own copy of the history).
-    """
-    lines = []
-    for k, v in (header or {}).items():
-        lines.append(f"# {k}: {v}")
-    lines += ["[study]", f"name = {_toml_value(study.name)}", f"goal = {_toml_value(study.goal)}",
-              f"replicates = {study.replicates}", f"seed = {study.seed}", "", "[space]"]
-    for n, lo, hi in zip(study.space.names, study.space.low, study.space.high):
-        lines.append(f"{_toml_key(n)} = [{lo!r}, {hi!r}]")
-    lines += ["", "[world]"]
-    w = study.world
-    if w.function is not None:
-        lines += [f"function = {_toml_value(w.function)}", f"noise = {w.noise!r}"]
-        lines += _noise_lines(w)
-    else:
-        lines += _prior_lines(w.prior)
-        lines += [f"method = {_toml_value(w.method)}", f"features = {w.features}", f"grid = {w.grid}",
-                  f"lengthscale_within = {w.lengthscale_within!r}", f"amplitude_within = {w.amplitude_within!r}"]
-        lines += _noise_lines(w)
-    lines += ["", "[belief]", *_prior_lines(study.belief), f"refit_every = {study.refit_every}", "", "[campaign]"]
-    c = study.campaign
-    lines += [f"initial = {c.initial}", f"design = {_toml_value(c.design)}",
-              f"budgets = {_toml_value(list(c.budgets))}", f"pool = {c.pool}", f"batch = {c.batch}", "",
-              "[target]", f"regret = {study.target!r}", f"difference = {study.lead_difference!r}"]
-    if study.history is not None:
-        lines += ["", "[history]", f"file = {_toml_value(history_file or study.history.file)}",
-                  f"response = {_toml_value(study.history.response)}"]
-    sw = study.sweep
-    lines += ["", "[sweep]", f"lengthscale = {_toml_value(list(sw.lengthscale))}",
-              f"amplitude = {_toml_value(list(sw.amplitude))}", f"replicates = {sw.replicates}"]
-    for p in study.policies:
-        lines += ["", "[[policy]]", f"rule = {_toml_value(p.rule)}", f"label = {_toml_value(p.label)}"]
-        lines += [f"{k} = {_toml_value(v)}" for k, v in p.settings]
-    return "\n".join(lines) + "\n"
-
-
-def _noise_lines(w: WorldSpec) -> list[str]:
-    out = [f"noise_kind = {_toml_value(w.noise_kind)}"]
-    if w.noise_kind == "student":
-        out.append(f"noise_df = {w.noise_df!r}")
-    return out + [f"noise_growth = {w.noise_growth!r}", f"lost = {w.lost!r}"]
-
-
-def _prior_lines(p: Prior) -> list[str]:
-    return [f"kernel = {_toml_value(p.kernel)}", f"lengthscale = {_toml_value(list(p.lengthscale))}",
-            f"amplitude = {p.amplitude!r}", f"mean = {p.mean!r}", f"noise = {p.noise!r}"]

@@ -9,7 +9,8 @@ from scipy import stats
 
 from simlab.evidence import choice, compare, intervals, reach
 from simlab.report import cells, plots
-from simlab.study.spec import StudyError, dump_study, parse_study
+from simlab.study.dump import dump_study
+from simlab.study.spec import StudyError, parse_study
 from simlab.replay.sweep import safest_policy
 
 

@@ -4,7 +4,8 @@ import math
 
 import pytest
 
-from simlab.study.spec import StudyError, dump_study, load_study, parse_study
+from simlab.study.dump import dump_study
+from simlab.study.spec import StudyError, load_study, parse_study
 
 BASE = """
 [study]
