@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, ClassVar
+from typing import ClassVar
 
 import numpy as np
 
@@ -11,20 +11,9 @@ from scipy.special import log_ndtr
 
 from ..model.gp import Posterior, Stack
 from ..model.optimize import distinct_best, polish, polish_block
+from ..options import Option
 
 __all__ = ["Option", "Context", "Block", "Policy", "Acquisition"]
-
-
-@dataclass(frozen=True)
-class Option:
-    """A setting a study file may give a policy: default, type and allowed range."""
-
-    default: Any
-    kind: type = float
-    low: float | None = None
-    high: float | None = None
-    help: str = ""
-    choices: tuple[str, ...] = ()   # for kind=str: the allowed words
 
 
 @dataclass

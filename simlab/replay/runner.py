@@ -124,7 +124,7 @@ def make_observer(study: Study) -> Observer:
     """The study's observation model (noise shape, growth, lost trials)."""
     w = study.world
     ref = w.prior if w.prior is not None else study.belief
-    return Observer(sd=w.noise, kind=w.noise_kind, df=w.noise_df, growth=w.noise_growth,
+    return Observer(sd=w.noise, kind=w.noise_kind, settings=w.noise_settings, growth=w.noise_growth,
                     center=ref.mean, scale=ref.amplitude, lost=w.lost, sign=study.sign)
 
 

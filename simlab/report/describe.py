@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
+from ..worlds.noise import NOISE_SHAPES
 from .cells import escape, fmt_pct, number
 
 
@@ -46,9 +47,7 @@ def _prior_rows(prior, study):
 
 def _noise_words(w):
     """How the simulated observations depart from the truth, in words."""
-    kind = w.noise_kind
-    words = (f"Student-t noise ({number(w.noise_df)} degrees of freedom, heavier tails) "
-             f"scaled to sd {number(w.noise)}" if kind == "student" else f"Gaussian noise of sd {number(w.noise)}")
+    words = escape(NOISE_SHAPES[w.noise_kind](**dict(w.noise_settings)).describe(f"{w.noise:g}"))
     growth = w.noise_growth
     if growth:
         words += f", growing with the response (growth {number(growth)} per prior amplitude)"
@@ -180,8 +179,7 @@ def _limits(study):
 
 
 def _noise_limit(w):
-    kind = w.noise_kind
-    if kind == "gaussian" and not w.noise_growth:
+    if w.noise_kind == "gaussian" and not w.noise_growth:
         return ("<li><b>Noise is Gaussian with a fixed standard deviation.</b> Outliers, drift of equipment or "
                 "materials over the campaign, and noise that depends on the setting are not modelled.</li>")
     return (f"<li><b>The noise model is the one stated</b> ({_noise_words(w)}). Drift of equipment or "

@@ -74,8 +74,7 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
 
 def _noise_lines(w: WorldSpec) -> list[str]:
     out = [f"noise_kind = {toml_value(w.noise_kind)}"]
-    if w.noise_kind == "student":
-        out.append(f"noise_df = {w.noise_df!r}")
+    out += [f"{key} = {toml_value(value)}" for key, value in w.noise_settings]
     return out + [f"noise_growth = {w.noise_growth!r}", f"lost = {w.lost!r}"]
 
 

@@ -7,12 +7,14 @@ import math
 import re
 import tomllib
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
+from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
 from .types import (
     DESIGNS,
@@ -38,10 +40,13 @@ __all__ = ["load_study", "parse_study", "advice", "RESERVED",
 
 # Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
 RESERVED = TRACE_COLUMNS + WORLD_COLUMNS[1:]
+# every noise shape's own settings are [world] keys too (e.g. noise_df for "student")
+_SHAPE_KEYS = tuple(dict.fromkeys(k for c in NOISE_SHAPES.values() for k in c.options))
+_NOISE_KEYS = ("noise_kind", *_SHAPE_KEYS, "noise_growth", "lost")
 _SECTION_KEYS = {
     "study": ("name", "goal", "replicates", "seed"),
     "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",
-              "lengthscale_within", "amplitude_within", "noise_kind", "noise_df", "noise_growth", "lost"),
+              "lengthscale_within", "amplitude_within", *_NOISE_KEYS),
     "campaign": ("initial", "design", "budgets", "pool", "batch"),
     "target": ("regret", "difference"),
     "sweep": ("lengthscale", "amplitude", "replicates"),
@@ -179,17 +184,19 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
                  history=history, refit_every=refit_every, difference=difference, source=source)
 
 
-_NOISE_KEYS = ("noise_kind", "noise_df", "noise_growth", "lost")
 
 
 def _read_noise(r: "_Reader", wt: dict) -> dict:
-    kind = r.choice(wt, "world.noise_kind", ("gaussian", "student"), default="gaussian")
-    df = r.number(wt, "world.noise_df", low=2.0, low_open=True, high=1e6, default=5.0)
-    if "noise_df" in wt and kind != "student":
-        r.fail("world.noise_df", "only applies with noise_kind = \"student\"")
+    kind = r.choice(wt, "world.noise_kind", tuple(NOISE_SHAPES), default="gaussian")
+    shape = NOISE_SHAPES[kind]
+    for key in _SHAPE_KEYS:
+        if key in wt and key not in shape.options:
+            owners = [n for n, c in NOISE_SHAPES.items() if key in c.options]
+            r.fail(f"world.{key}", "only applies with " + " or ".join(f'noise_kind = "{n}"' for n in owners))
+    settings = r.options(wt, "world", shape.options)
     growth = r.number(wt, "world.noise_growth", low=-10.0, high=10.0, default=0.0)
     lost = r.number(wt, "world.lost", low=0.0, high=0.95, default=0.0)
-    return {"noise_kind": kind, "noise_df": df, "noise_growth": growth, "lost": lost}
+    return {"noise_kind": kind, "noise_settings": settings, "noise_growth": growth, "lost": lost}
 
 
 def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None) -> HistorySpec | None:
@@ -312,18 +319,8 @@ def _read_policies(r: "_Reader", data: dict) -> tuple[PolicySpec, ...]:
             r.fail(f"{where}.label", f"\"{label}\" is already used by policy[{seen[label]}]; "
                    "give each policy its own label")
         seen[label] = i
-        settings = []
-        for key, opt in cls.options.items():
-            fld = f"{where}.{key}"
-            if key not in t:
-                settings.append((key, opt.default))
-            elif opt.kind is int:
-                settings.append((key, r.integer(t, fld, low=opt.low, high=opt.high)))
-            elif opt.kind is str:
-                settings.append((key, r.choice(t, fld, opt.choices)))
-            else:
-                settings.append((key, r.number(t, fld, low=opt.low, high=opt.high)))
-        out.append(PolicySpec(rule=rule, label=label, settings=tuple(settings)))
+        settings = r.options(t, where, cls.options)
+        out.append(PolicySpec(rule=rule, label=label, settings=settings))
     return tuple(out)
 
 
@@ -439,6 +436,21 @@ class _Reader:
         if not isinstance(v, str):
             self.fail(field, f"must be a string in quotes; got {v!r}")
         return v
+
+    def options(self, t: dict, where: str, options: dict) -> tuple[tuple[str, Any], ...]:
+        """An extension's settings (its ``options``, each an `Option`) from table `t`, defaults filled in."""
+        settings = []
+        for key, opt in options.items():
+            fld = f"{where}.{key}"
+            if key not in t:
+                settings.append((key, opt.default))
+            elif opt.kind is int:
+                settings.append((key, self.integer(t, fld, low=opt.low, high=opt.high)))
+            elif opt.kind is str:
+                settings.append((key, self.choice(t, fld, opt.choices)))
+            else:
+                settings.append((key, self.number(t, fld, low=opt.low, high=opt.high, low_open=opt.low_open)))
+        return tuple(settings)
 
     def choice(self, t: dict, field: str, allowed: tuple[str, ...], *, default=...) -> str:
         if field.rsplit(".", 1)[-1] not in t and default is not ...:

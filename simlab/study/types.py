@@ -79,8 +79,8 @@ class WorldSpec:
     grid: int = 40               # grid points per input for method = "grid"
     lengthscale_within: float = 1.0  # each replicate draws lengthscales log-normally: 95 % within this factor
     amplitude_within: float = 1.0    # likewise for the amplitude (1.0: known exactly)
-    noise_kind: str = "gaussian"     # gaussian | student
-    noise_df: float = 5.0            # degrees of freedom for student noise (> 2)
+    noise_kind: str = "gaussian"     # a key of simlab.worlds.noise.NOISE_SHAPES
+    noise_settings: tuple[tuple[str, Any], ...] = ()   # that shape's settings, defaults filled in
     noise_growth: float = 0.0        # sd = noise * exp(growth * (f - mean) / amplitude)
     lost: float = 0.0                # probability that a trial is lost
 

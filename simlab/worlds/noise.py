@@ -1,12 +1,70 @@
-"""Observation models: how a trial's result departs from the world's true value."""
+"""Observation models: how a trial's result departs from the world's true value.
+
+A noise shape (one small class each, in :data:`NOISE_SHAPES`) draws the unit-variance shocks;
+`Observer` scales them by the noise sd (which may grow with the response) and loses trials.
+A shape declares its study-file name (``[world] noise_kind``), its settings (``options``,
+validated by the study reader), a one-line description for the report, and its one method,
+:meth:`NoiseShape.shocks`. Adding a shape is one class here and one line in NOISE_SHAPES.
+"""
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any, ClassVar
 
 import numpy as np
 
-__all__ = ["Observer"]
+from ..options import Option
+
+__all__ = ["NoiseShape", "GaussianNoise", "StudentNoise", "NOISE_SHAPES", "Observer"]
+
+
+class NoiseShape:
+    """The distribution of a trial's shock, rescaled to mean 0 and variance 1."""
+
+    name: ClassVar[str] = ""
+    options: ClassVar[dict[str, Option]] = {}
+
+    def __init__(self, **settings):
+        self.settings = {key: settings.get(key, opt.default) for key, opt in self.options.items()}
+
+    def describe(self, sd: str) -> str:
+        """The noise in words for the report, given its sd as text."""
+        raise NotImplementedError
+
+    def shocks(self, rng: np.random.Generator, n: int) -> np.ndarray:
+        """n independent unit-variance shocks from `rng`."""
+        raise NotImplementedError
+
+
+class GaussianNoise(NoiseShape):
+    name = "gaussian"
+
+    def describe(self, sd):
+        return f"Gaussian noise of sd {sd}"
+
+    def shocks(self, rng, n):
+        return rng.standard_normal(n)
+
+
+class StudentNoise(NoiseShape):
+    """Student-t variates with df > 2 rescaled to unit variance (``t * sqrt((df - 2) / df)``), so the sd
+    keeps its meaning and only the tails get heavier."""
+
+    name = "student"
+    options = {"noise_df": Option(5.0, float, 2.0, 1e6, "degrees of freedom (heavier tails when smaller)",
+                                  low_open=True)}
+
+    def describe(self, sd):
+        df = self.settings["noise_df"]
+        return f"Student-t noise ({df:g} degrees of freedom, heavier tails) scaled to sd {sd}"
+
+    def shocks(self, rng, n):
+        df = self.settings["noise_df"]
+        return rng.standard_t(df, size=n) * np.sqrt((df - 2.0) / df)
+
+
+NOISE_SHAPES: dict[str, type[NoiseShape]] = {c.name: c for c in (GaussianNoise, StudentNoise)}
 
 
 @dataclass(frozen=True)
@@ -17,12 +75,10 @@ class Observer:
     ----------
     sd : float
         Noise standard deviation at the reference level (objective units).
-    kind : {"gaussian", "student"}
-        Shape of the noise. ``student`` draws Student-t variates with ``df`` > 2 degrees of
-        freedom rescaled to unit variance (``t * sqrt((df - 2) / df)``), so ``sd`` keeps its
-        meaning and only the tails get heavier.
-    df : float
-        Degrees of freedom for ``student``.
+    kind : str
+        A key of :data:`NOISE_SHAPES` (the study file's ``noise_kind``).
+    settings : tuple of (name, value)
+        The shape's settings (its ``options``), e.g. ``(("noise_df", 4.0),)``.
     growth : float
         Heteroscedasticity: the sd at a true value f (user orientation) is
         ``sd * exp(growth * (f - center) / scale)``, so noise grows with the response for
@@ -37,19 +93,20 @@ class Observer:
 
     sd: float
     kind: str = "gaussian"
-    df: float = 5.0
+    settings: tuple[tuple[str, Any], ...] = ()
     growth: float = 0.0
     center: float = 0.0
     scale: float = 1.0
     lost: float = 0.0
     sign: float = 1.0
 
+    @property
+    def shape(self) -> NoiseShape:
+        return NOISE_SHAPES[self.kind](**dict(self.settings))
+
     def draw(self, rng: np.random.Generator, n: int) -> tuple[np.ndarray, np.ndarray]:
         """Unit-variance shocks and lost-trial flags for n trials (shared by all policies)."""
-        if self.kind == "student":
-            shocks = rng.standard_t(self.df, size=n) * np.sqrt((self.df - 2.0) / self.df)
-        else:
-            shocks = rng.standard_normal(n)
+        shocks = self.shape.shocks(rng, n)
         lost = rng.random(n) < self.lost
         return shocks, lost
 

@@ -127,14 +127,14 @@ def test_student_noise_has_unit_variance_and_t_tails():
     """Shocks are Student-t(df) scaled by sqrt((df-2)/df): Kolmogorov-Smirnov against
     scipy.stats.t with that scale accepts; the same test against a normal of unit variance
     (negative control) rejects. n = 20000, df = 3."""
-    obs = Observer(sd=1.0, kind="student", df=3.0)
+    obs = Observer(sd=1.0, kind="student", settings=(("noise_df", 3.0),))
     shocks, _ = obs.draw(np.random.default_rng(11), 20000)
     scale = np.sqrt(1.0 / 3.0)
     assert stats.kstest(shocks, stats.t(3.0, scale=scale).cdf).pvalue > 0.01
     assert stats.kstest(shocks, stats.norm.cdf).pvalue < 1e-6
     # sample moments at df = 6 against scipy.stats.t's own: variance (df/(df-2)) * scale^2 = 1 and
     # excess kurtosis 6/(df-4) = 3; the sample variance of 40000 draws has sd sqrt((kurt+2)/n) = 0.011
-    six = Observer(sd=1.0, kind="student", df=6.0).draw(np.random.default_rng(12), 40000)[0]
+    six = Observer(sd=1.0, kind="student", settings=(("noise_df", 6.0),)).draw(np.random.default_rng(12), 40000)[0]
     var, kurt = stats.t(6.0, scale=np.sqrt(4.0 / 6.0)).stats(moments="vk")
     assert abs(six.var() - var) < 0.05
     assert abs(stats.kurtosis(six) - kurt) < 1.5          # heavy-tailed: the estimate itself is noisy
