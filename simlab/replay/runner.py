@@ -18,11 +18,10 @@ from ..study.spec import Prior, Study
 from ..worlds import functions
 from ..worlds.draws import (
     ConditionedWorld,
-    FeatureWorld,
     FunctionWorld,
-    GridWorld,
     World,
 )
+from ..worlds.kinds import WORLD_KINDS
 from ..worlds.noise import Observer
 from .campaign import Belief, Trace, run_campaign
 
@@ -53,10 +52,7 @@ def make_world(study: Study, replicate: int) -> World:
         kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
     rng = stream(study.seed, replicate, "world")
     mean = study.sign * w.prior.mean
-    if w.method == "grid":
-        world = GridWorld(kernel, mean, rng, w.grid)
-    else:
-        world = FeatureWorld(kernel, mean, rng, w.features)
+    world = WORLD_KINDS[w.method].draw(kernel, mean, rng, dict(w.method_settings))
     if study.history is not None:
         H, yH = history_arrays(study)
         world = ConditionedWorld(world, kernel, H, yH, w.noise, rng)

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
+from ..worlds.kinds import WORLD_KINDS
 from ..worlds.noise import NOISE_SHAPES
 from .cells import escape, fmt_pct, number
 
@@ -68,8 +69,7 @@ def _world_section(study):
                 f"({escape(fn.source)}) on its published domain, observed with {_noise_words(w)}. The replicates "
                 "differ only in the initial design, candidate pool and noise, so the spread of results "
                 "reflects the campaigns, not a range of possible objectives.</p>")
-    how = (f"random Fourier features ({w.features} frequencies: continuous functions)"
-           if w.method == "features" else f"exact joint draws on a grid of {w.grid} points per input")
+    how = WORLD_KINDS[w.method].describe(dict(w.method_settings))
     rows = _prior_rows(w.prior, study)
     within = [("lengthscale", w.lengthscale_within), ("amplitude", w.amplitude_within)]
     for name, factor in within:

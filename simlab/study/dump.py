@@ -51,7 +51,7 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
         lines += _noise_lines(w)
     else:
         lines += _prior_lines(w.prior)
-        lines += [f"method = {toml_value(w.method)}", f"features = {w.features}", f"grid = {w.grid}",
+        lines += [f"method = {toml_value(w.method)}", *(f"{k} = {toml_value(v)}" for k, v in w.method_settings),
                   f"lengthscale_within = {w.lengthscale_within!r}", f"amplitude_within = {w.amplitude_within!r}"]
         lines += _noise_lines(w)
     lines += ["", "[belief]", *_prior_lines(study.belief), f"refit_every = {study.refit_every}", "", "[campaign]"]

@@ -14,6 +14,7 @@ import numpy as np
 from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
+from ..worlds.kinds import WORLD_KINDS, world_options
 from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
 from .types import (
@@ -21,7 +22,6 @@ from .types import (
     GOALS,
     MAX_REPLICATES,
     NAME_LENGTH,
-    WORLD_METHODS,
     CampaignSpec,
     HistorySpec,
     PolicySpec,
@@ -36,7 +36,7 @@ from .types import (
 __all__ = ["load_study", "parse_study", "advice", "RESERVED",
            # the types a study is made of (types.py), imported here because reading makes them
            "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec",
-           "Study", "MAX_REPLICATES", "NAME_LENGTH", "GOALS", "DESIGNS", "WORLD_METHODS"]
+           "Study", "MAX_REPLICATES", "NAME_LENGTH", "GOALS", "DESIGNS"]
 
 # Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
 RESERVED = TRACE_COLUMNS + WORLD_COLUMNS[1:]
@@ -45,7 +45,7 @@ _SHAPE_KEYS = tuple(dict.fromkeys(k for c in NOISE_SHAPES.values() for k in c.op
 _NOISE_KEYS = ("noise_kind", *_SHAPE_KEYS, "noise_growth", "lost")
 _SECTION_KEYS = {
     "study": ("name", "goal", "replicates", "seed"),
-    "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", "features", "grid", "function",
+    "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", *world_options(1), "function",
               "lengthscale_within", "amplitude_within", *_NOISE_KEYS),
     "campaign": ("initial", "design", "budgets", "pool", "batch"),
     "target": ("regret", "difference"),
@@ -126,19 +126,15 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         space = _read_space(r, data, fn=None)
         r.keys(wt, "world", _SECTION_KEYS["world"])
         world_prior = _read_prior(r, wt, "world", space, base=None)
-        method = r.choice(wt, "world.method", WORLD_METHODS, default="features")
-        if method == "grid" and space.dim > 2:
-            r.fail("world.method", f"\"grid\" draws are exact but only for 1 or 2 inputs; this space has {space.dim}; use \"features\"")
-        features = r.integer(wt, "world.features", low=16, high=65536, default=1024)
-        grid = r.integer(wt, "world.grid", low=8, high=4096 if space.dim == 1 else 64,
-                         default=256 if space.dim == 1 else 40)
+        method = r.choice(wt, "world.method", tuple(WORLD_KINDS), default="features")
         within = {key: r.number(wt, f"world.{key}", low=1.0, high=100.0, default=1.0)
                   for key in ("lengthscale_within", "amplitude_within")}
-        if method == "grid" and within["lengthscale_within"] != 1.0:
-            r.fail("world.lengthscale_within", "uncertain lengthscales need method = \"features\" "
-                   "(a grid draw factors one covariance matrix for all replicates)")
-        world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise,
-                          method=method, features=features, grid=grid, **within, **_read_noise(r, wt))
+        refusal = WORLD_KINDS[method].refuse(space.dim, uncertain_lengthscale=within["lengthscale_within"] != 1.0)
+        if refusal is not None:
+            r.fail(*refusal)
+        settings = r.options(wt, "world", world_options(space.dim))
+        world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise, method=method,
+                          method_settings=settings, **within, **_read_noise(r, wt))
 
     bt = r.table(data, "belief", required=False)
     r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise", "refit_every"))

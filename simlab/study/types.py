@@ -11,7 +11,6 @@ import numpy as np
 
 GOALS = ("minimize", "maximize")
 DESIGNS = ("sobol", "lhs", "random")
-WORLD_METHODS = ("features", "grid")
 # A study name becomes a folder name: most file systems allow 255 bytes, and the folder's
 # own files add their names below it; 100 leaves room and is plenty for a person to read.
 NAME_LENGTH = 100
@@ -74,9 +73,8 @@ class WorldSpec:
     prior: Prior | None          # None when `function` names a published test function
     function: str | None
     noise: float
-    method: str = "features"     # features | grid
-    features: int = 1024         # spectral frequencies per feature draw (2x as many basis functions)
-    grid: int = 40               # grid points per input for method = "grid"
+    method: str = "features"     # a key of simlab.worlds.kinds.WORLD_KINDS
+    method_settings: tuple[tuple[str, Any], ...] = ()   # every kind's settings, resolved (e.g. features, grid)
     lengthscale_within: float = 1.0  # each replicate draws lengthscales log-normally: 95 % within this factor
     amplitude_within: float = 1.0    # likewise for the amplitude (1.0: known exactly)
     noise_kind: str = "gaussian"     # a key of simlab.worlds.noise.NOISE_SHAPES
