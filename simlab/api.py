@@ -29,7 +29,7 @@ class StudyResult:
 
     def final(self, budget: int | None = None) -> pd.DataFrame:
         """Rows at one budget (default the largest): one per policy and replicate."""
-        budget = budget or self.study.campaign.horizon
+        budget = self.study.campaign.horizon if budget is None else budget
         return self.traces[self.traces["trial"] == budget]
 
     def summary(self, *, seed: int = 0) -> pd.DataFrame:

@@ -109,9 +109,10 @@ class Stack:
 
     The inverse factor ``L^-1`` is kept (one extra row per trial) so every solve is a
     stacked matrix product: a triangular solve cannot be batched over replicates in NumPy,
-    and calling LAPACK once per replicate would cost more than the arithmetic. With the
-    relative nugget, ``||L^-1||`` stays below about 1e5 times the prior sd, which bounds
-    the extra rounding in the variance near 1e-11 relative.
+    and calling LAPACK once per replicate would cost more than the arithmetic. The relative
+    nugget puts every eigenvalue of ``K + s2 I`` at or above ``NUGGET a^2`` (a the prior sd),
+    so ``||L^-1||_2 = lambda_min^(-1/2) <= 1 / (sqrt(NUGGET) a) = 1e5 / a``, which bounds the
+    extra rounding in the variance near 1e-11 relative.
     """
 
     def __init__(self, kernel: Kernel, mean: float, noise: float, *, pools, capacity: int = 64):

@@ -36,11 +36,11 @@ class Trace:
 
     Attributes
     ----------
-    U : ndarray of shape (h + B, d)
-        Evaluated inputs: h past trials (if any), then B new ones.
-    y, f : ndarray of shape (h + B,)
+    U : ndarray of shape (h + budget, d)
+        Evaluated inputs: h past trials (if any), then the campaign's own.
+    y, f : ndarray of shape (h + budget,)
         Observed and noise-free values.
-    rec : ndarray of shape (h + B,)
+    rec : ndarray of shape (h + budget,)
         0-based row index (into these arrays) of the recommendation after each row: the
         observed input with the lowest posterior mean (the row itself while nothing has
         been observed yet). ``y`` is NaN for lost trials.
@@ -63,7 +63,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     ----------
     design : ndarray of shape (n0, d)
         Initial space-filling inputs (count toward the budget).
-    sequence : ndarray of shape (B, d)
+    sequence : ndarray of shape (horizon, d)
         The replicate's Sobol' sequence (for the non-adaptive `sobol` policy).
     observe : callable
         ``observe(f, t)``: the observation of true value f at new trial t (shared noise

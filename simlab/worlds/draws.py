@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -335,13 +336,23 @@ class GridWorld(World):
         self.grid = np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, d)
         self.kernel, self.mean, self.dim = kernel, float(mean), d
         K = kernel(self.grid)
+        # Dense grids of smooth kernels are numerically singular: raise the jitter tenfold until
+        # the factorisation succeeds, up to 1e-2 of the prior variance (then refuse), and say so
+        # when it rose above the nugget, since the draw is then that much smoother than the prior.
         jitter = 1e-10 * kernel.variance
-        while True:
+        for _ in range(9):
             try:
                 L = np.linalg.cholesky(K + jitter * np.eye(len(K)))
                 break
             except np.linalg.LinAlgError:
                 jitter *= 10.0
+        else:
+            raise ValueError(f"grid world: the prior covariance of {len(K)} grid points cannot be factored even "
+                             "with a jitter of 1e-2 of the prior variance; use fewer grid points or method = "
+                             "\"features\"")
+        if jitter > 1e-10 * kernel.variance:
+            warnings.warn(f"grid world: jitter raised to {jitter / kernel.variance:.0e} of the prior variance to "
+                          f"factor {len(K)} grid points (fewer grid points avoid it)", RuntimeWarning, stacklevel=2)
         z = rng.standard_normal(len(K))
         self.values = self.mean + L @ z                      # exact draw at the grid points
         self.alpha = np.linalg.solve(L.T, z)                 # (K + jI)^-1 (f_G - m) = L^-T z

@@ -288,3 +288,40 @@ def test_optimum_check_negative_control():
     world = FeatureWorld(KERNELS["matern52"]([0.25, 0.25], AMP), MEAN, stream(5, 0, "world"))
     crude = world(np.random.default_rng(307).random((64, 2))).min()
     assert not crude <= dense_minimum(world, 2, 400) + 1e-9 * AMP
+
+
+def test_grid_world_jitter_is_capped_and_reported(monkeypatch):
+    """GridWorld raises its jitter tenfold while the factorisation fails, warns when it rose above
+    the nugget, and refuses past 1e-2 of the prior variance (common practice: jitter escalation
+    with a cap, rather than a silent loop). The factorisation is made to fail on purpose."""
+    from simlab.worlds import draws
+
+    real = np.linalg.cholesky
+    calls = []
+
+    def failing(times):
+        def cholesky(a):
+            calls.append(1)
+            if len(calls) <= times:
+                raise np.linalg.LinAlgError("not positive definite (forced)")
+            return real(a)
+        return cholesky
+
+    kernel = KERNELS["matern52"](np.array([0.2]), 2.0)
+    monkeypatch.setattr(draws.np.linalg, "cholesky", failing(3))
+    with pytest.warns(RuntimeWarning, match=r"jitter raised to 1e-07 of the prior variance"):
+        w = draws.GridWorld(kernel, 0.0, np.random.default_rng(1), 64)
+    assert len(calls) == 4 and np.all(np.isfinite(w.values))
+
+    calls.clear()
+    monkeypatch.setattr(draws.np.linalg, "cholesky", failing(10**6))
+    with pytest.raises(ValueError, match="cannot be factored even with a jitter of 1e-2"):
+        draws.GridWorld(kernel, 0.0, np.random.default_rng(1), 64)
+    assert len(calls) == 9          # 1e-10 ... 1e-2: nine tries, then the refusal
+
+    calls.clear()
+    monkeypatch.setattr(draws.np.linalg, "cholesky", failing(0))
+    import warnings as _w
+    with _w.catch_warnings():
+        _w.simplefilter("error")    # negative control: no warning when the nugget suffices
+        draws.GridWorld(kernel, 0.0, np.random.default_rng(1), 64)
