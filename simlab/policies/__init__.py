@@ -8,7 +8,8 @@ from __future__ import annotations
 from .base import Acquisition, Context, Option, Policy
 from .classic import (ConfidenceBound, ExpectedImprovement, PosteriorMean, ProbabilityOfImprovement,
                       RandomSearch, SobolSearch, ThompsonSampling)
-from .info import KnowledgeGradient, MaxValueEntropySearch, ProbabilityOfMinimum
+from .gradient import KnowledgeGradient
+from .info import MaxValueEntropySearch, ProbabilityOfMinimum
 from .logei import dlog_h, log_h
 from .schedule import GPUCB, GPHedge
 

@@ -1,10 +1,10 @@
-"""Information-based rules: probability of being the minimiser, max-value entropy search, knowledge gradient."""
+"""Information-based rules: probability of being the minimiser and max-value entropy search
+(the knowledge gradient is in gradient.py)."""
 
 from __future__ import annotations
 
 import numpy as np
 from numpy.polynomial.hermite_e import hermegauss
-from scipy.linalg import solve_triangular
 from scipy.optimize import brentq
 from scipy.special import erfcx, log_ndtr, ndtr
 
@@ -12,8 +12,7 @@ from ..model.optimize import polish
 from ..worlds.draws import FeatureSample
 from .base import Acquisition, Option
 
-__all__ = ["ProbabilityOfMinimum", "MaxValueEntropySearch", "KnowledgeGradient", "PathwiseDraws",
-           "max_value_information", "expected_min_drop", "knowledge_gradient"]
+__all__ = ["ProbabilityOfMinimum", "MaxValueEntropySearch", "PathwiseDraws", "max_value_information"]
 
 # Pool points whose lower bound mu - 5 sd lies above the lowest upper bound mu + 5 sd are left
 # out of pathwise draws: such a point beats the point with that upper bound only if one of the
@@ -432,139 +431,3 @@ class MaxValueEntropySearch(Acquisition):
         return info.mean(1), dmu.mean(1), dsd.mean(1)
 
 
-# ---------------------------------------------------------------------------------------- KG
-def expected_min_drop(a, b) -> np.ndarray:
-    """``min_i a_i - E[min_i (a_i + b_i Z)]``, Z ~ N(0, 1), for each row: exact.
-
-    Parameters
-    ----------
-    a, b : ndarray of shape (c, L)
-        Intercepts and slopes of L lines per row.
-
-    Returns
-    -------
-    ndarray of shape (c,), >= 0
-
-    Notes
-    -----
-    By the symmetry of Z this is ``E[max_i (A_i + b_i Z)] - max_i A_i`` with ``A = -a``.
-    Line i is the upper envelope on ``[lo_i, hi_i]``, where ``lo_i`` is the largest
-    crossing with a line of smaller slope and ``hi_i`` the smallest crossing with a line of
-    larger slope (lines of equal slope: the higher one, or the first of equal ones, wins);
-    then ``E[max] = sum_i A_i (Phi(hi_i) - Phi(lo_i)) + b_i (phi(lo_i) - phi(hi_i))`` over the
-    lines with ``lo_i < hi_i``. This is the sum over breakpoints of Frazier, Powell & Dayanik
-    (2009), Algorithm 1, evaluated for all rows at once in O(c L^2) instead of
-    sorting each row; intercepts are shifted by their maximum first so the difference is not
-    lost to rounding.
-
-    References
-    ----------
-    Frazier, Powell & Dayanik (2009), The Knowledge-Gradient Policy for Correlated Normal
-    Beliefs, INFORMS J. Computing 21(4).
-    """
-    A = -np.atleast_2d(np.asarray(a, dtype=float))
-    B = np.atleast_2d(np.asarray(b, dtype=float))
-    A = A - A.max(1, keepdims=True)
-    db = B[:, :, None] - B[:, None, :]          # b_i - b_j
-    da = A[:, None, :] - A[:, :, None]          # A_j - A_i
-    with np.errstate(divide="ignore", invalid="ignore"):
-        cross = da / db                          # z where lines i and j meet
-    lo = np.where(db > 0.0, cross, -np.inf).max(2)
-    hi = np.where(db < 0.0, cross, np.inf).min(2)
-    L = A.shape[1]
-    earlier = np.tri(L, L, -1, dtype=bool)[None]                        # j < i
-    dominated = ((db == 0.0) & ((da > 0.0) | ((da == 0.0) & earlier))).any(2)
-    live = (lo < hi) & ~dominated
-    with np.errstate(invalid="ignore"):
-        part = (A * (ndtr(hi) - ndtr(lo))
-                + B * (np.exp(-0.5 * lo * lo) - np.exp(-0.5 * hi * hi)) / np.sqrt(2.0 * np.pi))
-    return np.maximum(np.where(live, part, 0.0).sum(1), 0.0)
-
-
-def knowledge_gradient(post, P) -> np.ndarray:
-    """Knowledge gradient of one more trial at each of the inputs P, over the discrete set P.
-
-    Parameters
-    ----------
-    post : Posterior
-    P : ndarray of shape (L, d)
-        The set over which the future minimum of the posterior mean is taken, and the candidates.
-
-    Returns
-    -------
-    ndarray of shape (L,)
-        ``min_P mu_n - E[min_P mu_{n+1} | trial at P_j]`` for each j, in objective units.
-
-    Notes
-    -----
-    After observing ``y = f(x) + eps`` at x, ``mu_{n+1}(x') = mu_n(x') + sigma~(x', x) Z`` with
-    ``Z ~ N(0, 1)`` and ``sigma~(x', x) = Cov_n(x', x) / sqrt(var_n(x) + s2)`` (Frazier,
-    Powell & Dayanik 2009); the expectation of the minimum over P of these lines is
-    exact (:func:`expected_min_drop`). ``Cov_n(P, P) = K(P, P) - V^T V`` with ``V = L^-1 K(X, P)``.
-    """
-    P = np.atleast_2d(np.asarray(P, dtype=float))
-    K = post.kernel(P)
-    if post.n:
-        V = solve_triangular(post.L, post.kernel(post.X, P), lower=True, check_finite=False)
-        cov = K - V.T @ V
-        mu = post.mean + post.kernel(P, post.X) @ post.alpha()
-    else:
-        cov, mu = K, np.full(len(P), post.mean)
-    var = np.maximum(np.diag(cov), 0.0)
-    slopes = cov / np.sqrt(var + post.s2)[None, :]     # column j: sigma~(P, P_j)
-    return expected_min_drop(np.broadcast_to(mu, (len(P), len(P))), slopes.T)
-
-
-class KnowledgeGradient(Acquisition):
-    """Knowledge gradient: the trial whose outcome is expected to lower the best posterior mean most.
-
-    Notes
-    -----
-    ``KG(x) = min_A mu_n - E[min_A mu_{n+1} | trial at x]`` (Frazier, Powell & Dayanik 2009),
-    computed exactly over a discrete set A (:func:`knowledge_gradient`). A is the ``points``
-    pool points with the lowest lower bound ``mu - 2 sd`` (those most plausibly holding the
-    minimum after one more trial, since one trial moves ``mu(x')`` by ``sigma~ |Z| <= sd(x') |Z|``),
-    plus the current recommendation (the evaluated input with the lowest posterior mean, so
-    the baseline ``min_A mu_n`` is the value the team would ship now). Candidates are the
-    same points. The exact envelope costs O(points^3) for all candidates together: with 64
-    points a trial takes about 4 ms on one core (pool 2048, 2-D), with 128 about 45 ms. The
-    rule returns the best candidate without polishing; ties (all KG zero, only when no trial
-    can change the minimum) go to the highest posterior sd.
-
-    References
-    ----------
-    Frazier, Powell & Dayanik (2009), The Knowledge-Gradient Policy for Correlated Normal
-    Beliefs, INFORMS J. Computing 21(4).
-    """
-
-    rule = "kg"
-    description = "knowledge gradient"
-    scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
-    options = {
-        "points": Option(64, int, 2, 1024, "pool points in the discrete set and candidates"),
-        "fill": Option("believer", str, help="how a round of several trials is filled",
-                       choices=("believer", "liar")),
-    }
-    n_starts = 0
-
-    def candidates(self, post) -> np.ndarray:
-        """The discrete set A (and the candidates): shape (<= points + 1, d)."""
-        pool = self.ctx.pool
-        mu, sd = post.pool_moments()
-        k = min(self.points, len(pool))
-        idx = np.argpartition(mu - 2.0 * sd, k - 1)[:k]
-        P = pool[idx]
-        if post.n:
-            P = np.vstack([P, post.X[post.recommend()]])
-        return P
-
-    def choose(self, post, t):
-        if t >= self.ctx.horizon - self.exploit_last:
-            return super().choose(post, t)              # the final switch to the lowest mean
-        P = self.candidates(post)
-        kg = knowledge_gradient(post, P)
-        best = np.flatnonzero(kg == kg.max())
-        if len(best) > 1:
-            _, sd = post.moments(P[best])
-            best = best[[int(np.argmax(sd))]]
-        return P[best[0]].copy()

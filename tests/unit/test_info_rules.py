@@ -12,7 +12,8 @@ from simlab.model.gp import Posterior
 from simlab.model.kernels import Matern52
 from simlab.policies import (GPUCB, Context, ExpectedImprovement, GPHedge, KnowledgeGradient,
                              MaxValueEntropySearch, ProbabilityOfMinimum)
-from simlab.policies.info import expected_min_drop, knowledge_gradient, max_value_information
+from simlab.policies.gradient import expected_min_drop, knowledge_gradient
+from simlab.policies.info import max_value_information
 from simlab.study.spec import StudyError, parse_study
 
 Z_MAX = 4.5  # Monte Carlo acceptance: |estimate - exact| < 4.5 sd (two-sided p = 7e-6 per comparison)
