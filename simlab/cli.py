@@ -274,6 +274,7 @@ def _advise(study) -> None:
 
 
 def _run(args) -> int:
+    from .report.console import budget_table
     from .api import run_study
     study = _load(args)
     t0 = time.perf_counter()
@@ -291,7 +292,7 @@ def _run(args) -> int:
               file=sys.stderr)
     want_report = not args.no_report and not (result.up_to_date and (result.path / "report.html").is_file())
     summary = _write_report(result, success=args.success, quiet=args.quiet) if want_report else None
-    print(_format_table(result.study, summary if summary is not None else result.summary()))
+    print(budget_table(result.study, summary if summary is not None else result.summary()))
     if result.up_to_date:
         print(f"\nnothing replayed: {result.path} already held the finished run ({study.replicates} replicates x "
               f"{len(study.policies)} policies)")
@@ -322,6 +323,7 @@ def _write_report(result, *, success: float, quiet: bool):
 
 
 def _check(args) -> int:
+    from .report.console import duration
     from .study.dump import dump_study
     study = _load(args)
     print(dump_study(study), end="")
@@ -333,24 +335,14 @@ def _check(args) -> int:
         from .replay.estimate import measure
         est = measure(study)
         workers = args.jobs if args.jobs > 0 else _cores()
-        print(f"# timing: simlab run needs about {_duration(est.run(study, args.jobs))} with --jobs {workers} "
+        print(f"# timing: simlab run needs about {duration(est.run(study, args.jobs))} with --jobs {workers} "
               f"({est.per_replicate:.2f} s per replicate, timed on the first {est.timed} with their world optima; "
               f"{est.report:.1f} s for the report; {est.startup:.1f} s to start)")
         sw = study.sweep
         cells = len(sw.lengthscale) * len(sw.amplitude)
         print(f"# timing: simlab sweep ({cells} cells x {sw.replicates} replicates) needs about "
-              f"{_duration(est.sweep(study, args.jobs))} with --jobs {workers}")
+              f"{duration(est.sweep(study, args.jobs))} with --jobs {workers}")
     return 0
-
-
-def _duration(seconds: float) -> str:
-    if seconds < 10:
-        return f"{seconds:.1f} s"
-    if seconds < 90:
-        return f"{seconds:.0f} s"
-    if seconds < 5400:
-        return f"{seconds / 60:.0f} min"
-    return f"{seconds / 3600:.1f} h"
 
 
 def _sweep(args) -> int:
@@ -420,15 +412,17 @@ def _calibrate(args) -> int:
 
 
 def _report(args) -> int:
+    from .report.console import budget_table
     from .api import load_results
     result = load_results(args.folder)
     summary = _write_report(result, success=args.success, quiet=args.quiet)
-    print(_format_table(result.study, summary))
+    print(budget_table(result.study, summary))
     print(f"\nreport: {result.path / 'report.html'} (rebuilt from stored traces; no campaign replayed)")
     return 0
 
 
 def _plan(args) -> int:
+    from .report.console import budget_text, pct_interval
     import pandas as pd
 
     from .api import load_results, run_study
@@ -470,12 +464,12 @@ def _plan(args) -> int:
     print(header)
     print("-" * len(header))
     for row in plan.itertuples():
-        chance = _pct_interval(row.share, row.share_low, row.share_high)
+        chance = pct_interval(row.share, row.share_low, row.share_high)
         if row.status == "reached":
-            conservative = _int(row.budget_conservative, above=row.last_trial)
-            span = f"{_int(row.budget_optimistic, above=row.last_trial)} to {conservative}"
+            conservative = budget_text(row.budget_conservative, above=row.last_trial)
+            span = f"{budget_text(row.budget_optimistic, above=row.last_trial)} to {conservative}"
             stays = "not held" if pd.isna(row.budget_sustained) else f"{int(row.budget_sustained)}"
-            print(f"{str(row.policy)[:20]:<20} {_int(row.budget, above=row.last_trial):>7}  {span:<36} "
+            print(f"{str(row.policy)[:20]:<20} {budget_text(row.budget, above=row.last_trial):>7}  {span:<36} "
                   f"{chance:>30}  {stays:>10}")
         else:
             print(f"{str(row.policy)[:20]:<20} {'-':>7}  not reached within {row.last_trial} trials "
@@ -489,12 +483,6 @@ def _plan(args) -> int:
         print(f"{', '.join(aware)}: replayed once per study budget ({', '.join(map(str, study.campaign.budgets))}); "
               "at other budgets the share comes from the campaign planned for the next larger one, stopped early.")
     return 0
-
-
-def _pct_interval(value, low, high) -> str:
-    """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
-    from .report.cells import fmt_pct
-    return f"{fmt_pct(value)} % [{fmt_pct(low)}-{fmt_pct(high)} %]"
 
 
 def _plan_refusal(exc, args):
@@ -514,20 +502,3 @@ def _plan_refusal(exc, args):
     return FolderBusy(exc.file, exc.field, what, kind=exc.kind)
 
 
-def _int(value, *, above: int) -> str:
-    """A budget, or "> last simulated trial" where the curve never gets there."""
-    import pandas as pd
-    return f">{above}" if pd.isna(value) else f"{int(value)}"
-
-
-def _format_table(study, summary) -> str:
-    """Median regret with quartiles, and the share within the target with its exact (Clopper-Pearson) interval."""
-    lines = [f"simple regret of the recommendation (objective units; target: regret <= {study.target:g})", ""]
-    header = (f"{'policy':<20} {'budget':>6}  {'median regret [q25, q75]':<30} "
-              f"{'within target [95% interval]':>28}")
-    lines += [header, "-" * len(header)]
-    for row in summary.itertuples():
-        band = f"{row.regret_median:.3g} [{row.regret_q25:.3g}, {row.regret_q75:.3g}]"
-        within = _pct_interval(row.within_target, row.within_low, row.within_high)
-        lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<30} {within:>28}")
-    return "\n".join(lines)

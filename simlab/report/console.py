@@ -1,0 +1,42 @@
+"""What the command line prints: the budget table, shares with intervals, budgets, durations."""
+
+from __future__ import annotations
+
+import pandas as pd
+
+from .cells import fmt_pct
+
+def duration(seconds: float) -> str:
+    if seconds < 10:
+        return f"{seconds:.1f} s"
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+
+def pct_interval(value, low, high) -> str:
+    """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
+    return f"{fmt_pct(value)} % [{fmt_pct(low)}-{fmt_pct(high)} %]"
+
+
+
+def budget_text(value, *, above: int) -> str:
+    """A budget, or "> last simulated trial" where the curve never gets there."""
+    return f">{above}" if pd.isna(value) else f"{int(value)}"
+
+
+
+def budget_table(study, summary) -> str:
+    """Median regret with quartiles, and the share within the target with its exact (Clopper-Pearson) interval."""
+    lines = [f"simple regret of the recommendation (objective units; target: regret <= {study.target:g})", ""]
+    header = (f"{'policy':<20} {'budget':>6}  {'median regret [q25, q75]':<30} "
+              f"{'within target [95% interval]':>28}")
+    lines += [header, "-" * len(header)]
+    for row in summary.itertuples():
+        band = f"{row.regret_median:.3g} [{row.regret_q25:.3g}, {row.regret_q75:.3g}]"
+        within = pct_interval(row.within_target, row.within_low, row.within_high)
+        lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<30} {within:>28}")
+    return "\n".join(lines)
