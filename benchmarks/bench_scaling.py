@@ -38,7 +38,8 @@ def bench_trials() -> None:
     from scipy.stats import qmc
     from threadpoolctl import threadpool_limits
 
-    from simlab.replay.campaign import Belief, run_campaign
+    from simlab.model.belief import Belief
+    from simlab.replay.campaign import run_campaign
     from simlab.model.kernels import Matern52
     from simlab.replay.lockstep import run_block
     from simlab.worlds.noise import Observer

@@ -22,7 +22,8 @@ import numpy as np
 from scipy.stats import norm, qmc
 from threadpoolctl import threadpool_limits
 
-from simlab.replay.campaign import Belief, run_campaign
+from simlab.model.belief import Belief
+from simlab.replay.campaign import run_campaign
 from simlab.model.kernels import Matern52
 from simlab.replay.lockstep import run_block
 from simlab.worlds.noise import Observer

@@ -19,7 +19,8 @@ from pyinstrument import Profiler
 from scipy.stats import qmc
 from threadpoolctl import threadpool_limits
 
-from simlab.replay.campaign import Belief, run_campaign
+from simlab.model.belief import Belief
+from simlab.replay.campaign import run_campaign
 from simlab.model.kernels import Matern52
 from simlab.policies import ExpectedImprovement
 from simlab.worlds.draws import FeatureWorld

@@ -2,54 +2,18 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from types import SimpleNamespace
 from typing import Callable
 
 import numpy as np
 
+from ..model.belief import Belief
 from ..model.gp import Posterior
-from ..model.kernels import Kernel
 from ..policies import Context, Policy
 from ..worlds.draws import World
+from .trace import Trace, allocate, past_trials
 
-__all__ = ["Belief", "Trace", "run_campaign"]
-
-
-@dataclass(frozen=True)
-class Belief:
-    """The campaign's model, on the unit cube and in the internal (minimising) orientation.
-
-    ``refit_every = k > 0`` refits the hyperparameters by maximum likelihood after every k
-    new trials (at the end of the round that completes them), as a real team would.
-    """
-
-    kernel: Kernel
-    mean: float
-    noise: float
-    refit_every: int = 0
-
-
-@dataclass
-class Trace:
-    """Per-trial record of one campaign, internal orientation, unit-cube inputs.
-
-    Attributes
-    ----------
-    U : ndarray of shape (h + budget, d)
-        Evaluated inputs: h past trials (if any), then the campaign's own.
-    y, f : ndarray of shape (h + budget,)
-        Observed and noise-free values.
-    rec : ndarray of shape (h + budget,)
-        0-based row index (into these arrays) of the recommendation after each row: the
-        observed input with the lowest posterior mean (the row itself while nothing has
-        been observed yet). ``y`` is NaN for lost trials.
-    """
-
-    U: np.ndarray
-    y: np.ndarray
-    f: np.ndarray
-    rec: np.ndarray
+__all__ = ["run_campaign"]
 
 
 def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.ndarray,
@@ -83,11 +47,11 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         Stream for the random restarts of belief refits (``belief.refit_every > 0``).
     """
     d = sequence.shape[1]
-    H, yH = history if history is not None else (np.empty((0, d)), np.empty(0))
+    H, yH = past_trials(history, d)
     h, n = len(yH), len(yH) + budget
     post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=n + batch)
     policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post))
-    U, y, f, rec = np.empty((n, d)), np.empty(n), np.empty(n), np.empty(n, dtype=int)
+    U, y, f, rec = allocate(n, d)
     seen: list[int] = []                                   # trace rows the posterior has observed
     for i in range(h):                                     # past trials, already observed
         U[i], y[i], f[i] = H[i], yH[i], world(H[i : i + 1])[0]

@@ -17,18 +17,27 @@ gives it alone; ``tests/unit/test_lockstep.py`` compares them.
 Campaigns run in lockstep when the rule declares ``lockstep = True`` and every campaign of
 the block stays the same length at every step: one trial per round, no lost trials and no
 belief refits. Other campaigns are replayed one at a time.
+
+Why two loops and not one: the one-campaign loop (campaign.py) also serves rounds of several
+trials (pending trials held as fantasies and released), lost trials (the belief skips a row,
+so replicates of one block would hold different numbers of rows) and refits (each replicate
+gets its own kernel mid-campaign). A stacked belief with a row count per replicate would let
+lost trials advance here too; until then this loop covers the equal-length case. Both start
+from the same past trials and buffers (trace.py) and call the same arithmetic, so a campaign
+has the same bits on either path.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from .campaign import Belief, Trace
+from ..model.belief import Belief
 from ..model.gp import Stack
 from ..worlds.noise import Observer
 from ..policies import Policy
 from ..policies.base import Block
 from ..worlds.draws import WorldBlock
+from .trace import Trace, allocate, past_trials
 
 __all__ = ["run_block", "fits_lockstep"]
 
@@ -63,7 +72,7 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
         One per replicate, identical to what ``run_campaign`` returns for it.
     """
     B, d = len(reps), reps[0].pool.shape[1]
-    H, yH = history if history is not None else (np.empty((0, d)), np.empty(0))
+    H, yH = past_trials(history, d)
     h, n = len(yH), len(yH) + budget
     st = Stack(belief.kernel, belief.mean, belief.noise, pools=np.stack([r.pool for r in reps]),
                capacity=n + 1)
@@ -71,7 +80,7 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     design = np.stack([r.design for r in reps])
     shocks, lost = np.stack([r.shocks for r in reps]), np.stack([r.lost for r in reps])
     worlds = WorldBlock([r.world for r in reps])
-    U, y, f, rec = np.empty((B, n, d)), np.empty((B, n)), np.empty((B, n)), np.empty((B, n), dtype=int)
+    U, y, f, rec = allocate(n, d, B)
     try:
         for i in range(h):                                        # past trials, already observed
             U[:, i], y[:, i] = H[i], yH[i]

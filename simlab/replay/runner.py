@@ -23,7 +23,9 @@ from ..worlds.draws import (
 )
 from ..worlds.kinds import WORLD_KINDS
 from ..worlds.noise import Observer
-from .campaign import Belief, Trace, run_campaign
+from ..model.belief import Belief
+from .campaign import run_campaign
+from .trace import Trace
 
 __all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
            "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan",

@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 
 import simlab.model.gp
-from simlab.replay.campaign import Belief
+from simlab.model.belief import Belief
 from simlab.model.gp import Posterior, Stack, matvec, rowdot, vecmat
 from simlab.model.kernels import KERNELS, Matern52
 from simlab.replay.lockstep import fits_lockstep

@@ -5,7 +5,8 @@ import pytest
 from scipy import stats
 from scipy.stats import qmc
 
-from simlab.replay.campaign import Belief, run_campaign
+from simlab.model.belief import Belief
+from simlab.replay.campaign import run_campaign
 from simlab.model.gp import Posterior
 from simlab.model.kernels import Matern52
 from simlab.worlds.noise import Observer

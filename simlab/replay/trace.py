@@ -1,0 +1,48 @@
+"""`Trace`: what one campaign did, trial by trial, and the arrays both campaign loops fill.
+
+The one-campaign loop (campaign.py) and the lockstep loop (lockstep.py) start the same way:
+the past trials come first in every trace and in the belief (:func:`past_trials`), and the
+record is four arrays of one row per trial (:func:`allocate`, with a leading block axis for
+lockstep). The runner turns traces into the traces table (runner._columns).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["Trace", "past_trials", "allocate"]
+
+
+@dataclass
+class Trace:
+    """Per-trial record of one campaign, internal orientation, unit-cube inputs.
+
+    Attributes
+    ----------
+    U : ndarray of shape (h + budget, d)
+        Evaluated inputs: h past trials (if any), then the campaign's own.
+    y, f : ndarray of shape (h + budget,)
+        Observed and noise-free values.
+    rec : ndarray of shape (h + budget,)
+        0-based row index (into these arrays) of the recommendation after each row: the
+        observed input with the lowest posterior mean (the row itself while nothing has
+        been observed yet). ``y`` is NaN for lost trials.
+    """
+
+    U: np.ndarray
+    y: np.ndarray
+    f: np.ndarray
+    rec: np.ndarray
+
+
+def past_trials(history, d: int) -> tuple[np.ndarray, np.ndarray]:
+    """The trials already run as (inputs (h, d), observations (h,)); empty arrays when none."""
+    return history if history is not None else (np.empty((0, d)), np.empty(0))
+
+
+def allocate(n: int, d: int, *block: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Uninitialised U, y, f, rec for n rows of d inputs (with leading axes `block`, e.g. (B,))."""
+    return (np.empty((*block, n, d)), np.empty((*block, n)), np.empty((*block, n)),
+            np.empty((*block, n), dtype=int))
