@@ -40,19 +40,30 @@ __all__ = ["load_study", "parse_study", "advice", "RESERVED",
 
 # Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
 RESERVED = TRACE_COLUMNS + WORLD_COLUMNS[1:]
-# every noise shape's own settings are [world] keys too (e.g. noise_df for "student")
-_SHAPE_KEYS = tuple(dict.fromkeys(k for c in NOISE_SHAPES.values() for k in c.options))
-_NOISE_KEYS = ("noise_kind", *_SHAPE_KEYS, "noise_growth", "lost")
-_SECTION_KEYS = {
-    "study": ("name", "goal", "replicates", "seed"),
-    "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", *world_options(1), "function",
-              "lengthscale_within", "amplitude_within", *_NOISE_KEYS),
-    "campaign": ("initial", "design", "budgets", "pool", "batch"),
-    "target": ("regret", "difference"),
-    "sweep": ("lengthscale", "amplitude", "replicates"),
-    "history": ("file", "response"),
-}
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
+
+
+def _shape_keys() -> tuple[str, ...]:
+    """Every noise shape's own settings (e.g. noise_df for "student"): [world] keys too."""
+    return tuple(dict.fromkeys(k for c in NOISE_SHAPES.values() for k in c.options))
+
+
+def _noise_keys() -> tuple[str, ...]:
+    return ("noise_kind", *_shape_keys(), "noise_growth", "lost")
+
+
+def _section_keys() -> dict[str, tuple[str, ...]]:
+    """The keys each section allows; read from the registries when asked, so a registered world
+    kind or noise shape brings its settings with it."""
+    return {
+        "study": ("name", "goal", "replicates", "seed"),
+        "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", *world_options(1), "function",
+                  "lengthscale_within", "amplitude_within", *_noise_keys()),
+        "campaign": ("initial", "design", "budgets", "pool", "batch"),
+        "target": ("regret", "difference"),
+        "sweep": ("lengthscale", "amplitude", "replicates"),
+        "history": ("file", "response"),
+    }
 
 
 def load_study(path: str | Path) -> Study:
@@ -97,7 +108,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
                           "history"))
 
     st = r.table(data, "study", required=False)
-    r.keys(st, "study", _SECTION_KEYS["study"])
+    r.keys(st, "study", _section_keys()["study"])
     name = r.string(st, "study.name", default=default_name)
     if not _NAME.match(name):
         r.fail("study.name", f"must be a folder-safe name (letters, digits, _ . -); got {name!r}")
@@ -113,9 +124,9 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     if function is not None:
         function = r.choice(wt, "world.function", tuple(functions.FUNCTIONS), default=None)
         fn = functions.FUNCTIONS[function]
-        r.keys(wt, "world", ("function", "noise", *_NOISE_KEYS),
+        r.keys(wt, "world", ("function", "noise", *_noise_keys()),
                hint="a published function is the world itself and takes only noise settings: drop the "
-                    "prior keys here (the campaigns' model goes in [belief])", here=_SECTION_KEYS["world"])
+                    "prior keys here (the campaigns' model goes in [belief])", here=_section_keys()["world"])
         if goal != "minimize":
             r.fail("study.goal", f"published test functions are minimised; use goal = \"minimize\" with function = \"{function}\"")
         space = _read_space(r, data, fn=fn)
@@ -124,7 +135,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         world_prior = None
     else:
         space = _read_space(r, data, fn=None)
-        r.keys(wt, "world", _SECTION_KEYS["world"])
+        r.keys(wt, "world", _section_keys()["world"])
         world_prior = _read_prior(r, wt, "world", space, base=None)
         method = r.choice(wt, "world.method", tuple(WORLD_KINDS), default="features")
         within = {key: r.number(wt, f"world.{key}", low=1.0, high=100.0, default=1.0)
@@ -144,7 +155,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     history = _read_history(r, data, space, base_dir)
 
     ct = r.table(data, "campaign")
-    r.keys(ct, "campaign", _SECTION_KEYS["campaign"])
+    r.keys(ct, "campaign", _section_keys()["campaign"])
     initial = r.integer(ct, "campaign.initial", low=0 if history else 1, high=100_000,
                         default=0 if history else 2 * space.dim,
                         why="" if history else " (0 only with a [history] of past trials)")
@@ -161,7 +172,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
                             batch=batch)
 
     tt = r.table(data, "target")
-    r.keys(tt, "target", _SECTION_KEYS["target"])
+    r.keys(tt, "target", _section_keys()["target"])
     target = r.number(tt, "target.regret", low=0.0)
     # smallest median paired regret difference that matters for a "clear" lead (choice.choice_table)
     difference = r.number(tt, "target.difference", low=0.0, default=target / 10.0)
@@ -169,7 +180,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     policies = _read_policies(r, data)
 
     sw = r.table(data, "sweep", required=False)
-    r.keys(sw, "sweep", _SECTION_KEYS["sweep"])
+    r.keys(sw, "sweep", _section_keys()["sweep"])
     sweep = SweepSpec(
         lengthscale=r.factor_list(sw, "sweep.lengthscale", SweepSpec.lengthscale),
         amplitude=r.factor_list(sw, "sweep.amplitude", SweepSpec.amplitude),
@@ -185,7 +196,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
 def _read_noise(r: "_Reader", wt: dict) -> dict:
     kind = r.choice(wt, "world.noise_kind", tuple(NOISE_SHAPES), default="gaussian")
     shape = NOISE_SHAPES[kind]
-    for key in _SHAPE_KEYS:
+    for key in _shape_keys():
         if key in wt and key not in shape.options:
             owners = [n for n, c in NOISE_SHAPES.items() if key in c.options]
             r.fail(f"world.{key}", "only applies with " + " or ".join(f'noise_kind = "{n}"' for n in owners))
@@ -199,7 +210,7 @@ def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None)
     if "history" not in data:
         return None
     ht = r.table(data, "history")
-    r.keys(ht, "history", _SECTION_KEYS["history"])
+    r.keys(ht, "history", _section_keys()["history"])
     file = r.string(ht, "history.file")
     response = r.string(ht, "history.response", default="y")
     if response in space.names:
@@ -337,7 +348,7 @@ class _Reader:
                 where = f"{section}.{key}" if section else key
                 close = difflib.get_close_matches(key, allowed, n=1)
                 msg = "unknown key"
-                home = [sec for sec, keys in _SECTION_KEYS.items() if key in keys and sec != section
+                home = [sec for sec, keys in _section_keys().items() if key in keys and sec != section
                         and key not in here]
                 if home and not close:
                     msg += f"; it belongs in [{home[0]}] (is that section header missing?)"
