@@ -275,7 +275,7 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
         ``goal = "maximize"`` larger is better, as in the traces' ``f`` column). Attributes:
 
         - ``best_x`` (d,), ``best_value``: the world's optimum as simlab's search found it,
-          the better of two independent searches (:func:`simlab.replay.runner.world_optimum`);
+          the better of two independent searches (:func:`simlab.worlds.replicate.world_optimum`);
           the maximum for a ``maximize`` study.
         - ``optimum_gap``: how far the two searches disagreed (>= 0, objective units).
 
@@ -304,7 +304,7 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
     """
     from threadpoolctl import threadpool_limits
 
-    from .replay.runner import make_world, world_optimum
+    from .worlds.replicate import make_world, world_optimum
 
     if not isinstance(study, Study):
         path = Path(study)

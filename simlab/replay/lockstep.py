@@ -55,7 +55,7 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     ----------
     policy : Policy
         A fresh policy whose class sets ``lockstep = True``.
-    reps : list of simlab.replay.runner.Replicate
+    reps : list of simlab.worlds.replicate.Replicate
         The block's replicates (world, design, Sobol' sequence, noise draws, pool).
     observer : Observer
         The study's observation model.

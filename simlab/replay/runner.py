@@ -1,148 +1,35 @@
-"""Replay every policy on every replicate, in parallel, with keyed random streams."""
+"""Replay every policy on every replicate, in parallel: each replicate's material comes from the worlds
+stage (worlds/replicate.py); this module runs the campaigns on it and builds the traces and worlds tables."""
 
 from __future__ import annotations
 
 import re
 import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy.stats import qmc
 
-from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
-from ..model.kernels import make_kernel
 from ..policies import POLICIES, Policy
 from ..rng import stream
-from ..study.spec import Prior, Study
-from ..worlds import functions
-from ..worlds.draws import (
-    ConditionedWorld,
-    FunctionWorld,
-    World,
-)
-from ..worlds.kinds import WORLD_KINDS
-from ..worlds.noise import Observer
+from ..study.spec import Study
 from ..model.belief import Belief
+from ..worlds.noise import Observer
+# what the worlds stage hands on: each replicate's material (imported here for the replay's use)
+from ..worlds.replicate import (Replicate, history_arrays, make_observer, make_replicate, make_world, unit_kernel,
+                                world_optimum)
 from .campaign import run_campaign
 from .trace import Trace
 
-__all__ = ["Replicate", "make_belief", "make_world", "make_replicate", "make_policy", "make_observer",
-           "replay_replicate", "replay", "replay_study", "replay_chunks", "chunk_plan",
-           "history_arrays", "world_optimum", "TRACE_COLUMNS", "WORLD_COLUMNS", "connect"]
-
-
-
-def _kernel(prior: Prior, study: Study):
-    # Lengthscales are given in input units; campaigns work on the unit cube.
-    return make_kernel(prior.kernel, np.asarray(prior.lengthscale) / study.space.width, prior.amplitude)
+__all__ = ["make_belief", "make_policy", "replay_replicate", "replay", "replay_study", "replay_chunks",
+           "chunk_plan", "connect",
+           # from worlds/replicate.py
+           "Replicate", "make_replicate", "make_world", "make_observer", "history_arrays", "world_optimum"]
 
 
 def make_belief(study: Study) -> Belief:
     b = study.belief
-    return Belief(kernel=_kernel(b, study), mean=study.sign * b.mean, noise=b.noise,
+    return Belief(kernel=unit_kernel(b, study), mean=study.sign * b.mean, noise=b.noise,
                   refit_every=study.refit_every)
-
-
-def make_world(study: Study, replicate: int) -> World:
-    """The replicate's true objective (internal orientation, unit cube)."""
-    w = study.world
-    if w.function is not None:
-        return FunctionWorld(functions.FUNCTIONS[w.function])
-    kernel = _kernel(w.prior, study)
-    if w.lengthscale_within != 1.0 or w.amplitude_within != 1.0:
-        kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
-    rng = stream(study.seed, replicate, "world")
-    mean = study.sign * w.prior.mean
-    world = WORLD_KINDS[w.method].draw(kernel, mean, rng, dict(w.method_settings))
-    if study.history is not None:
-        H, yH = history_arrays(study)
-        world = ConditionedWorld(world, kernel, H, yH, w.noise, rng)
-    return world
-
-
-def history_arrays(study: Study) -> tuple[np.ndarray, np.ndarray] | None:
-    """Past trials on the unit cube and in the internal orientation, or None."""
-    if study.history is None:
-        return None
-    return study.space.to_unit(np.array(study.history.X)), study.sign * np.array(study.history.y)
-
-
-def _uncertain(kernel, w, rng):
-    """The replicate's own lengthscales (each input independently) and amplitude.
-
-    ``within = f`` means log-normal around the stated value with 95 % of draws inside
-    ``[value / f, value * f]``: log sd = log(f) / 1.959964 (the normal 97.5 % quantile).
-    """
-    z = rng.standard_normal(kernel.dim + 1)
-    ls = kernel.lengthscale * np.exp(np.log(w.lengthscale_within) / 1.959964 * z[:-1])
-    amp = kernel.amplitude * np.exp(np.log(w.amplitude_within) / 1.959964 * z[-1])
-    return type(kernel)(ls, amp)
-
-
-def _sobol(d: int, n: int, rng) -> np.ndarray:
-    # Draw a power of two and keep the first n points: prefixes of a scrambled Sobol'
-    # sequence keep their low discrepancy and this avoids SciPy's balance warning.
-    return qmc.Sobol(d, seed=rng).random_base2(max(int(np.ceil(np.log2(max(n, 2)))), 1))[:n]
-
-
-@dataclass
-class Replicate:
-    """Everything shared by all policies on one replicate (the paired design)."""
-
-    index: int
-    world: World
-    optimum: tuple[np.ndarray, float]   # the better of two independent searches (internal orientation)
-    design: np.ndarray      # (n0, d)
-    sequence: np.ndarray    # (B, d)
-    shocks: np.ndarray      # (B,) unit-variance noise draws, one per trial
-    lost: np.ndarray        # (B,) bool: the trial is lost
-    pool: np.ndarray        # (m, d)
-    optimum_gap: float = 0.0   # |first search - second search| >= 0, objective units
-
-
-def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float, float]:
-    """The world's optimum from two independent searches: location, the better value, and the gap.
-
-    The searches use their own keyed streams ("optimum" and "optimum_check"), so their
-    Sobol' points and zoom points differ. Regret uses the better of the two (a missed
-    optimum makes regret too small, so never the worse one); ``gap`` = how far they
-    disagreed, >= 0, in objective units: a lower bound on how far the better one may
-    still be from the true optimum.
-    """
-    u1, v1 = world.optimum(stream(study.seed, r, "optimum"))
-    if isinstance(world, FunctionWorld):
-        return u1, v1, 0.0        # the published optimum: nothing to search
-    u2, v2 = world.optimum(stream(study.seed, r, "optimum_check"))
-    u, v = (u1, v1) if v1 <= v2 else (u2, v2)
-    return u, v, abs(v1 - v2)
-
-
-def make_observer(study: Study) -> Observer:
-    """The study's observation model (noise shape, growth, lost trials)."""
-    w = study.world
-    ref = w.prior if w.prior is not None else study.belief
-    return Observer(sd=w.noise, kind=w.noise_kind, settings=w.noise_settings, growth=w.noise_growth,
-                    center=ref.mean, scale=ref.amplitude, lost=w.lost, sign=study.sign)
-
-
-def make_replicate(study: Study, r: int) -> Replicate:
-    d, c = study.space.dim, study.campaign
-    B = c.horizon
-    world = make_world(study, r)
-    u_best, v_best, gap = world_optimum(world, study, r)
-    rng = stream(study.seed, r, "design")
-    sequence = _sobol(d, B, rng)
-    if c.design == "sobol":
-        design = sequence[: c.initial]
-    elif c.design == "lhs":
-        design = qmc.LatinHypercube(d, seed=rng).random(c.initial)
-    else:
-        design = rng.random((c.initial, d))
-    shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
-    pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
-    return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,
-                     shocks=shocks, lost=lost, pool=pool, optimum_gap=gap)
 
 
 def make_policy(spec) -> Policy:

@@ -102,7 +102,8 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
     from ..model.gp import Posterior
     from ..policies import Acquisition, Context
     from ..rng import stream
-    from ..replay.runner import make_belief, make_policy, make_replicate
+    from ..replay.runner import make_belief, make_policy
+    from ..worlds.replicate import make_replicate
     from ..worlds.draws import FeatureSample
 
     trial, j = _check_snapshot_args(study, replicate, policy, trial, along, samples, points)
@@ -192,7 +193,7 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     ----------
     study : Study
         The study; the replicate's world and candidate pool are rebuilt from its keyed
-        streams (`simlab.replay.runner.make_replicate`).
+        streams (`simlab.worlds.replicate.make_replicate`).
     traces : DataFrame, optional
         The study's traces; the trials so far are read from them. Default: the replicate
         is replayed (`simlab.replay.runner.replay_replicate`).

@@ -6,7 +6,8 @@ import pytest
 from scipy.stats import wilcoxon
 
 from simlab.model.gp import Posterior
-from simlab.replay.runner import _uncertain, make_world, replay
+from simlab.replay.runner import replay
+from simlab.worlds.replicate import _uncertain, make_world
 from simlab.study.spec import StudyError, WorldSpec, parse_study
 from simlab.model.kernels import Matern52
 from simlab.replay.sweep import run_sweep, safest_policy, summarize_sweep
@@ -64,7 +65,7 @@ def test_conditioned_worlds_agree_with_the_history(tmp_path):
     H = s.space.to_unit(np.array(s.history.X))
     yH = -np.array(s.history.y)                                   # internal orientation (maximise)
     vals = np.array([make_world(s, r)(H) for r in range(300)])
-    from simlab.replay.runner import _kernel
+    from simlab.worlds.replicate import unit_kernel as _kernel
     post = Posterior(_kernel(s.world.prior, s), -6.7, 0.25)
     post.add_many(H, yH)
     mu, _ = post.moments(H)

@@ -7,7 +7,7 @@ from scipy.optimize import differential_evolution, minimize
 from simlab.model.kernels import KERNELS
 from simlab.model.optimize import separated_best
 from simlab.rng import stream
-from simlab.replay.runner import world_optimum
+from simlab.worlds.replicate import world_optimum
 from simlab.worlds.draws import FeatureWorld, SearchPlan, World, find_minimum, search_plan
 
 # The bar: a miss below 1e-3 x amplitude (worlds here have amplitude 1).
