@@ -207,8 +207,17 @@ def test_every_tagged_number_equals_its_csv_cell(written, page):
 def test_choice_sentences_say_clear_or_tie(written, page):
     files = written[2]
     choice = pd.read_csv(files.choice)
-    for lead in choice["lead"]:
-        assert {"clear": "Clear lead:", "tie": "Tie:"}.get(lead, "") in page
+    # One list item per row of choice.csv, in order; each says "Clear lead:" exactly when the row's
+    # lead is "clear" and "Tie:" exactly when it is "tie" (anything else, e.g. "not reached", says neither).
+    blocks = [b for b in re.findall(r'<ul class="choice">(.*?)</ul>', page, re.S) if 'data-src="choice.csv"' in b]
+    assert len(blocks) == 1
+    items = re.findall(r"<li>(.*?)</li>", blocks[0], re.S)
+    assert len(items) == len(choice)
+    for row, (lead, item) in enumerate(zip(choice["lead"], items)):
+        assert f'data-src="choice.csv" data-row="{row}"' in item, row   # the sentence of this row
+        assert ("Clear lead:" in item) == (lead == "clear"), (row, lead)
+        assert ("Tie:" in item) == (lead == "tie"), (row, lead)
+    assert {"clear", "tie"} & set(choice["lead"])   # at least one sentence carries a verdict
     assert "misses the target in" in page
 
 
