@@ -67,6 +67,7 @@ def test_worker_count_does_not_change_traces(traces):
     pd.testing.assert_frame_equal(traces, two)
 
 
+@pytest.mark.slow
 def test_a_replicate_replays_alone(traces):
     alone = replay_replicate(study(), 2)
     full = traces[traces["replicate"] == 2].reset_index(drop=True)
@@ -118,6 +119,7 @@ def test_published_function_values_in_traces():
     assert (t["regret"] >= 0).all()
 
 
+@pytest.mark.slow
 def test_maximise_reports_user_orientation():
     """With goal = maximize, the recommendation's f is the best the world offers minus regret."""
     s = study()
@@ -143,6 +145,7 @@ def _final_regret(traces, label, budget):
     return g.sort_values("replicate")["regret"].to_numpy()
 
 
+@pytest.mark.slow
 def test_ei_beats_random_search_on_matched_prior_worlds():
     """On worlds drawn from the belief itself, EI should leave less regret than random search.
 
