@@ -7,7 +7,7 @@ import numpy as np
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
 
-__all__ = ["KERNEL_NAMES", "MATERN_NU", "Z_MAX", "sklearn_kernel", "sklearn_regressor", "central_difference"]
+__all__ = ["KERNEL_NAMES", "MATERN_NU", "Z_MAX", "central_difference", "sklearn_kernel", "sklearn_regressor"]
 
 # The study-file names of the four kernels (DESIGN.md).
 KERNEL_NAMES = ("sqexp", "matern12", "matern32", "matern52")

@@ -2,14 +2,13 @@
 
 import numpy as np
 import pytest
+from helpers import KERNEL_NAMES, Z_MAX, central_difference, sklearn_kernel, sklearn_regressor
 from scipy.stats import norm
+
 from simlab.gp import NUGGET, Posterior
 from simlab.kernels import KERNELS
 from simlab.policies import (ConfidenceBound, Context, ExpectedImprovement, PosteriorMean,
                              ProbabilityOfImprovement, ThompsonSampling, dlog_h, log_h)
-
-from helpers import KERNEL_NAMES, Z_MAX, central_difference, sklearn_kernel, sklearn_regressor
-
 
 
 def improvement_rule(cls, best, margin=0.0, **settings):

@@ -2,6 +2,7 @@
 
 import numpy as np
 import pytest
+from helpers import KERNEL_NAMES, sklearn_kernel
 from scipy.optimize import minimize_scalar
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import WhiteKernel
@@ -15,8 +16,6 @@ from simlab.fit import (
 )
 from simlab.gp import NUGGET
 from simlab.kernels import make_kernel
-
-from helpers import KERNEL_NAMES, sklearn_kernel
 
 
 def sk_kernel(name, lengthscale, amplitude, noise, *, fixed=True, bounds=None):

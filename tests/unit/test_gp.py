@@ -4,13 +4,11 @@ import warnings
 
 import numpy as np
 import pytest
+from helpers import KERNEL_NAMES, central_difference, sklearn_regressor
 
 import simlab.gp
 from simlab.gp import NUGGET, Posterior
 from simlab.kernels import KERNELS, SquaredExponential
-
-
-from helpers import KERNEL_NAMES, central_difference, sklearn_regressor
 
 LS = np.array([0.3, 0.5])
 AMP = 1.3

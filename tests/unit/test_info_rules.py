@@ -4,6 +4,7 @@ import itertools
 
 import numpy as np
 import pytest
+from helpers import Z_MAX
 from scipy import integrate
 from scipy.optimize import brentq
 from scipy.stats import norm, truncnorm
@@ -14,8 +15,6 @@ from simlab.policies import (GPUCB, Context, ExpectedImprovement, GPHedge, Knowl
                              MaxValueEntropySearch, ProbabilityOfMinimum)
 from simlab.policies.info import expected_min_drop, knowledge_gradient, max_value_information
 from simlab.spec import StudyError, parse_study
-
-from helpers import Z_MAX
 
 
 # --------------------------------------------------------------------------- helpers

@@ -2,11 +2,9 @@
 
 import numpy as np
 import pytest
+from helpers import KERNEL_NAMES, central_difference, sklearn_kernel
 
 from simlab.kernels import KERNELS, make_kernel
-
-
-from helpers import KERNEL_NAMES, central_difference, sklearn_kernel
 
 LENGTHSCALE = np.array([0.3, 0.7, 1.5])
 AMPLITUDE = 1.7

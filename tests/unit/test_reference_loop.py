@@ -8,6 +8,7 @@ its lockstep path (``run_block``) and one campaign at a time (``run_campaign``).
 
 import numpy as np
 import pytest
+from helpers import sklearn_regressor
 from scipy.stats import norm, qmc
 
 from simlab.campaign import Belief, run_campaign
@@ -16,8 +17,6 @@ from simlab.lockstep import run_block
 from simlab.noise import Observer
 from simlab.policies import ExpectedImprovement
 from simlab.runner import Replicate
-
-from helpers import sklearn_regressor
 
 D, POOL, INITIAL, TRIALS, NOISE, LS, AMP = 2, 512, 5, 10, 0.1, 0.2, 1.0
 BUDGET = INITIAL + TRIALS

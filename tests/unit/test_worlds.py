@@ -2,12 +2,11 @@
 
 import numpy as np
 import pytest
+from helpers import KERNEL_NAMES, Z_MAX, central_difference, sklearn_kernel
 
 from simlab.kernels import KERNELS
 from simlab.rng import stream
 from simlab.worlds import FeatureSample, FeatureWorld, GridWorld
-
-from helpers import KERNEL_NAMES, Z_MAX, central_difference, sklearn_kernel
 
 AMP = 1.2
 MEAN = 0.4
