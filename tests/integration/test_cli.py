@@ -45,6 +45,7 @@ def test_help_has_examples(tmp_path, command):
     (SMALL.replace('rule = "random"', 'rule = "randm"'), 'did you mean "random"'),
     ("[study\n", "not valid TOML"),
 ])
+@pytest.mark.slow
 def test_bad_study_one_line_exit_2_nothing_written(tmp_path, text, field):
     (tmp_path / "s.toml").write_text(text)
     before = sorted(p.name for p in tmp_path.iterdir())
@@ -65,6 +66,7 @@ def test_bad_options_exit_2(tmp_path, args):
     assert not (tmp_path / "results").exists()
 
 
+@pytest.mark.slow
 def test_missing_file_and_missing_results(tmp_path):
     out = simlab("run", "nope.toml", cwd=tmp_path)
     assert out.returncode == 2 and "nope.toml: no such file" in out.stderr
@@ -72,6 +74,7 @@ def test_missing_file_and_missing_results(tmp_path):
     assert out.returncode == 2 and "not a finished results folder" in out.stderr
 
 
+@pytest.mark.slow
 def test_run_check_report(tmp_path):
     (tmp_path / "s.toml").write_text(SMALL)
     out = simlab("check", "s.toml", cwd=tmp_path)
@@ -89,6 +92,7 @@ def test_run_check_report(tmp_path):
     assert again.returncode == 0 and f"{med:.3g}" in again.stdout
 
 
+@pytest.mark.slow
 def test_plan_and_printed_table_show_the_shares_of_the_files(tmp_path):
     """`simlab plan` and the run's table print the within-target share of budget_plan.csv / summary.csv."""
     import re
@@ -102,7 +106,7 @@ def test_plan_and_printed_table_show_the_shares_of_the_files(tmp_path):
     assert "using stored results" in out.stderr
     traces = pd.read_parquet(folder / "traces.parquet")
 
-    def pct(v):  # the report's percentage format (simlab.report.page._fmt_pct), written out again
+    def pct(v):  # the report's percentage format (simlab.report.cells.fmt_pct), written out again
         v = 100 * float(v)
         return f"{v:.1f}" if (0 < v < 1 or 99 < v < 100) else f"{v:.0f}"
 

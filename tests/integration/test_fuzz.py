@@ -115,6 +115,7 @@ def _mutate(edits, drops):
           suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 @given(edits=st.lists(st.tuples(st.sampled_from(KEYS), VALUES), min_size=1, max_size=3),
        drops=st.lists(SECTIONS, max_size=1))
+@pytest.mark.slow
 def test_generated_studies_fail_cleanly_or_run(edits, drops, tmp_path_factory, capsys):
     """Hypothesis (fixed seed, 250 examples) edits a valid study: wrong types, NaN and inf,
     negative, zero and huge numbers, empty tables, missing sections, unknown keys. Each either

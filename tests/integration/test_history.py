@@ -115,6 +115,7 @@ def _final(t):
     return t[t.trial == t.trial.max()].sort_values("replicate")["regret"].to_numpy()
 
 
+@pytest.mark.slow
 def test_refitting_belief_beats_a_badly_wrong_fixed_one():
     """On worlds with lengthscale 0.2, a belief of lengthscale 2 and amplitude 0.2 that
     refits every 3 trials leaves less regret than the same belief held fixed: paired
@@ -154,6 +155,7 @@ def test_uncertain_world_study_runs(tmp_path):
     assert (replay(s)["regret"] >= 0).all()
 
 
+@pytest.mark.slow
 def test_sweep_cells_share_worlds_and_rank_by_worst_case():
     s = parse_study({
         "study": {"replicates": 6, "seed": 4}, "space": {"a": [0.0, 1.0]},

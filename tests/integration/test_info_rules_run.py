@@ -34,6 +34,7 @@ def matched():
 
 
 @pytest.mark.parametrize("label", ["pbest", "mes", "kg"])
+@pytest.mark.slow
 def test_information_rules_beat_random_search_on_matched_prior_worlds(matched, label):
     """On worlds drawn from the belief itself, each information rule leaves less regret than
     random search after 15 trials: one-sided Wilcoxon signed-rank test (scipy.stats.wilcoxon)
@@ -44,6 +45,7 @@ def test_information_rules_beat_random_search_on_matched_prior_worlds(matched, l
     assert wilcoxon(rule, rnd, alternative="less").pvalue < 0.01
 
 
+@pytest.mark.slow
 def test_negative_control_two_random_searches_do_not_differ(matched):
     """The same test must not separate two random searches on the same worlds (different
     streams); the seed is fixed, so the outcome is deterministic."""

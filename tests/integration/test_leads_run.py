@@ -1,10 +1,13 @@
 """Positive control on a real study: expected improvement against random search is a clear lead."""
 
+import pytest
+
 from simlab.evidence import choice, compare
 from simlab.replay.runner import replay
 from simlab.study.spec import parse_study
 
 
+@pytest.mark.slow
 def test_ei_against_random_is_clear_on_a_real_study():
     # Positive control for the choice rule (issue 11): on 50 worlds of a 1-D Matérn 5/2
     # prior, expected improvement (Jones, Schonlau & Welch 1998) ends far closer to the

@@ -94,6 +94,7 @@ def _printed(text, unit):
 # ---------------------------------------------------------------------------
 # files
 # ---------------------------------------------------------------------------
+@pytest.mark.slow
 def test_files_and_their_contract_columns(written):
     _, _, files, steps = written
     for path in files.paths():
@@ -117,6 +118,7 @@ def test_files_and_their_contract_columns(written):
     assert sum(steps) == report_steps()
 
 
+@pytest.mark.slow
 def test_failure_risk_in_summary_matches_a_naive_count(written):
     """summary.csv against a plain count from the traces (share with regret above the target)."""
     _, traces, files, _ = written
@@ -126,6 +128,7 @@ def test_failure_risk_in_summary_matches_a_naive_count(written):
         assert row.failure_risk == pytest.approx(float(np.mean(at["regret"].to_numpy() > TARGET)), abs=1e-15)
 
 
+@pytest.mark.slow
 def test_budget_figures_agree_across_files(written):
     """The plan, the within-target table and the summary give one share per (policy, budget)."""
     _, traces, files, _ = written
@@ -144,6 +147,7 @@ def test_budget_figures_agree_across_files(written):
         assert row.share == pytest.approx(float(np.mean(at["regret"].to_numpy() <= TARGET)), abs=1e-15)
 
 
+@pytest.mark.slow
 def test_a_policy_that_never_reaches_is_not_given_a_number(written, page):
     """Random never gets 90 % of campaigns to the target here: NA in the plan, words in the report."""
     files = written[2]
@@ -186,6 +190,7 @@ def _check_tagged_numbers(folder, page):
     return checked, seen
 
 
+@pytest.mark.slow
 def test_every_tagged_number_equals_its_csv_cell(written, page):
     files = written[2]
     checked, seen = _check_tagged_numbers(files.folder, page)
@@ -204,17 +209,28 @@ def test_every_tagged_number_equals_its_csv_cell(written, page):
                 assert (name, row, column) in seen, (name, row, column)
 
 
+@pytest.mark.slow
 def test_choice_sentences_say_clear_or_tie(written, page):
     files = written[2]
     choice = pd.read_csv(files.choice)
-    for lead in choice["lead"]:
-        assert {"clear": "Clear lead:", "tie": "Tie:"}.get(lead, "") in page
+    # One list item per row of choice.csv, in order; each says "Clear lead:" exactly when the row's
+    # lead is "clear" and "Tie:" exactly when it is "tie" (anything else, e.g. "not reached", says neither).
+    blocks = [b for b in re.findall(r'<ul class="choice">(.*?)</ul>', page, re.S) if 'data-src="choice.csv"' in b]
+    assert len(blocks) == 1
+    items = re.findall(r"<li>(.*?)</li>", blocks[0], re.S)
+    assert len(items) == len(choice)
+    for row, (lead, item) in enumerate(zip(choice["lead"], items)):
+        assert f'data-src="choice.csv" data-row="{row}"' in item, row   # the sentence of this row
+        assert ("Clear lead:" in item) == (lead == "clear"), (row, lead)
+        assert ("Tie:" in item) == (lead == "tie"), (row, lead)
+    assert {"clear", "tie"} & set(choice["lead"])   # at least one sentence carries a verdict
     assert "misses the target in" in page
 
 
 # ---------------------------------------------------------------------------
 # a self-contained document
 # ---------------------------------------------------------------------------
+@pytest.mark.slow
 def test_report_is_self_contained_and_escaped(page):
     parsed = _parse(page)
     # no links, no external references at all (embedded PNG data can spell "http" by chance in base64)
@@ -235,6 +251,7 @@ def test_report_is_self_contained_and_escaped(page):
     assert "@media print" in page and "page-break-inside: avoid" in page
 
 
+@pytest.mark.slow
 def test_report_states_question_assumptions_and_cautions(written, page):
     study = written[0]
     text = re.sub(r"<[^>]+>", " ", page)
@@ -249,6 +266,7 @@ def test_report_states_question_assumptions_and_cautions(written, page):
         assert phrase in text, phrase
 
 
+@pytest.mark.slow
 def test_rebuilding_gives_the_same_files(written, tmp_path):
     study, traces, files, _ = written
     again = write_outputs(tmp_path, study, traces)
@@ -258,6 +276,7 @@ def test_rebuilding_gives_the_same_files(written, tmp_path):
     assert again.report == tmp_path / "report.html"
 
 
+@pytest.mark.slow
 def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
     study = parse_study({
         "study": {"name": "rough-line", "replicates": 4, "seed": 9},
@@ -280,9 +299,10 @@ def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
     # rounds of trials get a regret-against-round figure: its medians are the regrets at the
     # last trial of each round, recomputed here directly from the traces
     assert (tmp_path / "figures" / "regret_rounds.png").is_file() and "round of 2 trials" in text
-    from simlab.report.outputs import _rounds_figure
+    from simlab.report.figures import FIGURES, FigureInput
     from simlab.report.plots import policy_colors
-    fig = _rounds_figure(study, traces, policy_colors(study.labels), 0)
+    fig = FIGURES["regret_rounds"].draw(FigureInput(study=study, traces=traces, tables={}, success=0.9, seed=0,
+                                                    colors=policy_colors(study.labels)))
     line = next(l for l in fig.axes[0].get_lines() if l.get_label() == "ei")
     ends = traces[(traces.policy == "ei") & traces.trial.isin([2, 4, 6])]
     expected = ends.groupby("trial")["regret"].median().to_numpy()
@@ -331,6 +351,7 @@ def _headless(binary, profile, *args, url):
 
 
 @pytest.mark.skipif(_chromium() is None, reason="no chromium binary on this machine")
+@pytest.mark.slow
 def test_report_renders_in_headless_chromium_with_no_broken_image(written, page, tmp_path):
     binary = _chromium()
     # A copy with a checking script appended; the report itself carries no script.
@@ -355,6 +376,7 @@ def test_report_renders_in_headless_chromium_with_no_broken_image(written, page,
     assert data[:5] == b"%PDF-" and len(re.findall(rb"/Type\s*/Page[^s]", data)) >= 3
 
 
+@pytest.mark.slow
 def test_sweep_section_numbers_equal_the_sweep_files(tmp_path):
     """With a misspecification sweep in the folder, the report names the safest policy and
     every number of its section equals sweep/ranking.csv (the same check as above)."""

@@ -49,6 +49,7 @@ def _simlab(*args, cwd):
                           text=True, timeout=600)
 
 
+@pytest.mark.slow
 def test_killed_run_resumes_bit_identical(tmp_path):
     (tmp_path / "s.toml").write_text(STUDY)
     reference = _simlab("run", "s.toml", "--out", "ref", "--quiet", "--no-report", cwd=tmp_path)
@@ -126,6 +127,7 @@ def test_a_second_writer_is_refused(tmp_path):
     assert not (folder / ".lock").exists()
 
 
+@pytest.mark.slow
 def test_cluster_backend_matches_local_run(tmp_path):
     """A local dask.distributed cluster on 127.0.0.1 (two worker processes) gives the same
     traces as a local run: every random stream is keyed by replicate, not by worker."""

@@ -67,6 +67,7 @@ def test_worker_count_does_not_change_traces(traces):
     pd.testing.assert_frame_equal(traces, two)
 
 
+@pytest.mark.slow
 def test_a_replicate_replays_alone(traces):
     alone = replay_replicate(study(), 2)
     full = traces[traces["replicate"] == 2].reset_index(drop=True)
@@ -100,12 +101,25 @@ def test_published_function_values_in_traces():
     b, c = 5.1 / (4 * np.pi**2), 5 / np.pi
     f = (x2 - b * x1**2 + c * x1 - 6) ** 2 + 10 * (1 - 1 / (8 * np.pi)) * np.cos(x1) + 10
     np.testing.assert_allclose(t["f"], f, rtol=1e-12)
-    # regret of the recommendation is measured from the published minimum
-    rec_f = t.groupby("replicate")["f"].transform("min")
-    assert (t["regret_seen"] + 5 / (4 * np.pi) - rec_f).abs().groupby(t["trial"]).max().iloc[-1] < 1e-9
+    # regret of the recommendation is measured from the published minimum: regret = f at the
+    # recommended trial (rec_trial of the same campaign) - 5/(4 pi), on every row. Tolerance: f is
+    # O(1-300) here, so float64 rounding of the difference is ~1e-13; 1e-9 absolute.
+    fmin = 5 / (4 * np.pi)
+    f_at = t.set_index(["policy", "replicate", "trial"])["f"]
+    rec_f = f_at.loc[list(zip(t["policy"], t["replicate"], t["rec_trial"]))].to_numpy()
+    assert (t["rec_trial"] <= t["trial"]).all()       # a trial already run
+    np.testing.assert_allclose(t["regret"], rec_f - fmin, rtol=0, atol=1e-9)
+    # and the regret of the best input seen so far from the same minimum
+    best_seen = t.groupby(["policy", "replicate"])["f"].cummin()
+    np.testing.assert_allclose(t["regret_seen"], best_seen - fmin, rtol=0, atol=1e-9)
+    # Negative control: measured from the best value the campaigns found instead (what the old
+    # check compared with), the same comparison fails: the reference is the published minimum.
+    found = t.groupby("replicate")["f"].transform("min").to_numpy()
+    assert np.abs(t["regret"].to_numpy() - (rec_f - found)).max() > 1e-6
     assert (t["regret"] >= 0).all()
 
 
+@pytest.mark.slow
 def test_maximise_reports_user_orientation():
     """With goal = maximize, the recommendation's f is the best the world offers minus regret."""
     s = study()
@@ -131,6 +145,7 @@ def _final_regret(traces, label, budget):
     return g.sort_values("replicate")["regret"].to_numpy()
 
 
+@pytest.mark.slow
 def test_ei_beats_random_search_on_matched_prior_worlds():
     """On worlds drawn from the belief itself, EI should leave less regret than random search.
 

@@ -24,6 +24,7 @@ def small(tmp_path):
 
 
 # --------------------------------------------------------------------------- 1. --fresh
+@pytest.mark.slow
 def test_fresh_refuses_a_folder_holding_foreign_files(small):
     d = small / "d"
     (d / "sub").mkdir(parents=True)
@@ -43,6 +44,7 @@ def test_fresh_out_dot_keeps_the_study_file_beside_it(small):
     assert (small / "s.toml").read_text() == SMALL
 
 
+@pytest.mark.slow
 def test_fresh_replaces_a_simlab_run_but_not_a_file_added_to_it(small):
     assert simlab("run", "s.toml", "--out", "r", "--quiet", "--no-report", cwd=small).returncode == 0
     assert simlab("run", "s.toml", "--out", "r", "--quiet", "--no-report", "--fresh", cwd=small).returncode == 0
@@ -57,6 +59,7 @@ def test_fresh_replaces_a_simlab_run_but_not_a_file_added_to_it(small):
     assert (small / "r" / "traces.parquet").is_file()
 
 
+@pytest.mark.slow
 def test_every_file_a_run_report_and_sweep_write_is_known_to_fresh(small):
     """A new output file must be added to store.OWN_FILES (or page's names), or --fresh
     would refuse simlab's own folders."""
@@ -77,6 +80,7 @@ def test_calibration_response_of_1e308_is_one_line(tmp_path):
     assert 'column "y", row 12' in line and "1e308" in line
 
 
+@pytest.mark.slow
 def test_a_300_character_name_leaves_no_results_folder(tmp_path):
     (tmp_path / "s.toml").write_text(SMALL.replace('name = "safe-small"', f'name = "{"n" * 300}"'))
     line = one_line(simlab("run", "s.toml", "--quiet", cwd=tmp_path))
@@ -84,12 +88,14 @@ def test_a_300_character_name_leaves_no_results_folder(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s.toml"]
 
 
+@pytest.mark.slow
 def test_a_too_long_out_leaves_nothing_behind(small):
     line = one_line(simlab("run", "s.toml", "--out", "new/" + "x" * 300, "--quiet", cwd=small))
     assert "cannot be created" in line
     assert not (small / "new").exists()
 
 
+@pytest.mark.slow
 def test_out_an_existing_file_or_a_path_under_a_file(small):
     (small / "afile").write_text("mine")
     line = one_line(simlab("run", "s.toml", "--out", "afile", "--quiet", cwd=small))

@@ -2,17 +2,13 @@
 
 import numpy as np
 import pytest
+from helpers import KERNEL_NAMES, Z_MAX, central_difference, sklearn_kernel, sklearn_regressor
 from scipy.stats import norm
-from sklearn.gaussian_process import GaussianProcessRegressor
-from sklearn.gaussian_process.kernels import ConstantKernel, Matern
 
 from simlab.model.gp import NUGGET, Posterior
 from simlab.model.kernels import KERNELS
 from simlab.policies import (ConfidenceBound, Context, ExpectedImprovement, PosteriorMean,
                              ProbabilityOfImprovement, ThompsonSampling, dlog_h, log_h)
-
-NAMES = ["sqexp", "matern12", "matern32", "matern52"]
-Z_MAX = 4.5  # Monte Carlo acceptance: |estimate - exact| < 4.5 sd (two-sided p = 7e-6 per comparison)
 
 
 def improvement_rule(cls, best, margin=0.0, **settings):
@@ -242,16 +238,7 @@ def started(rule, post, pool, seed=605):
     return r
 
 
-def central_difference(f, U, h):
-    out = np.empty_like(U)
-    for c in range(U.shape[1]):
-        step = np.zeros(U.shape[1])
-        step[c] = h
-        out[:, c] = (f(U + step) - f(U - step)) / (2 * h)
-    return out
-
-
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("rule", ["ei", "pi", "lcb", "mean", "thompson"])
 def test_score_gradient_matches_finite_differences(rule, name):
     pool = np.random.default_rng(606).random((64, 2))
@@ -290,8 +277,8 @@ def test_score_gradient_negative_control():
 def test_improvement_incumbent_is_the_recommendation():
     # f_best is the lowest posterior mean at the evaluated inputs (scikit-learn's predict at X).
     post = make_posterior("matern32")
-    gpr = GaussianProcessRegressor(ConstantKernel(AMP**2) * Matern(LS, nu=1.5), alpha=NOISE**2 + NUGGET * AMP**2,
-                                   optimizer=None).fit(post.X, post.y - MEAN)
+    gpr = sklearn_regressor("matern32", post.X, post.y, lengthscale=LS, amplitude=AMP, mean=MEAN,
+                            diagonal=NOISE**2 + NUGGET * AMP**2)
     for cls in (ExpectedImprovement, ProbabilityOfImprovement):
         r = cls(cls.rule)
         r.prepare(post)
@@ -328,8 +315,9 @@ def thompson_draws():
 
 
 def sklearn_posterior(X, y, Q, noise=NOISE, lengthscale=LS):
-    kern = ConstantKernel(AMP**2) * Matern(lengthscale, nu=2.5)
-    gpr = GaussianProcessRegressor(kern, alpha=noise**2 + NUGGET * AMP**2, optimizer=None).fit(X, y - MEAN)
+    kern = sklearn_kernel("matern52", lengthscale, AMP)
+    gpr = sklearn_regressor("matern52", X, y, lengthscale=lengthscale, amplitude=AMP, mean=MEAN,
+                            diagonal=noise**2 + NUGGET * AMP**2)
     mu, sd = gpr.predict(Q, return_std=True)
     return mu + MEAN, sd**2, kern
 
@@ -374,11 +362,13 @@ def test_thompson_samples_have_the_posterior_mean_and_variance(thompson_draws):
     # Against the exact posterior variance (scikit-learn) the feature prior adds the bias
     # var_feat - var. Its size is bounded: the feature covariance errs by sd <= a^2 / sqrt(2F) per lag
     # (checked in test_worlds.py), so |var_feat - var| <= (2 |W|_1 + |W|_1^2) 4.5 a^2 / sqrt(2F)
-    # at 4.5 sd per entry. The samples must match the exact variance up to that bias and MC error.
+    # at 4.5 sd per entry. The bound is loose (worst case over the weights W: ~0.5 against a bias of
+    # 0.002-0.02 here), so this checks the scale of var_feat, not the samples; the check above does.
+    # Given both, the samples are within MC error plus this bias of the exact variance (triangle
+    # inequality), so that needs no assertion of its own; negative control (3) shows the bias is
+    # real: the exact variance is rejected.
     c = np.abs(W).sum(0)
-    bias = np.abs(var_feat - var)
-    assert np.all(bias <= (2 * c + c**2) * Z_MAX * AMP**2 / np.sqrt(2 * FEATURES))
-    assert np.all(np.abs(d["direct"].var(0, ddof=1) - var) < Z_MAX * se_var + bias)
+    assert np.all(np.abs(var_feat - var) <= (2 * c + c**2) * Z_MAX * AMP**2 / np.sqrt(2 * FEATURES))
 
 
 def test_thompson_negative_controls(thompson_draws):
@@ -391,3 +381,7 @@ def test_thompson_negative_controls(thompson_draws):
     _, var_wrong, _ = sklearn_posterior(d["X"], d["y"], d["Q"], noise=3 * NOISE)
     _, z_var, _ = mean_var_z(d["direct"], mu, var_wrong)
     assert np.max(np.abs(z_var[:2])) > Z_MAX, z_var
+    # (3) nor is it the exact posterior variance (scikit-learn): the feature prior's bias exceeds the
+    # Monte Carlo error somewhere, so the check against var_feat above is the one that can pass
+    _, z_exact, _ = mean_var_z(d["direct"], mu, var)
+    assert np.max(np.abs(z_exact)) > Z_MAX, z_exact

@@ -225,6 +225,7 @@ def test_choice_table_clear_leader_agrees_with_naive_choice():
     assert table.loc[0, "p_value"] < 0.05
 
 
+@pytest.mark.slow
 def test_choice_table_false_clear_rate_is_controlled():
     # Two policies with the same regret law on shared worlds: any "clear" lead is a
     # false positive. Over 40 seeded studies the rate per attitude should be at most

@@ -194,6 +194,7 @@ def test_cvar90_lower_bound_covers(name):
     assert float(np.mean(summary["cvar90"] <= truth)) < FLOOR
 
 
+@pytest.mark.slow
 def test_old_bca_cvar_interval_fails_the_same_test():
     # The interval simlab printed before: BCa bootstrap of the empirical CVaR-90
     # (scipy.stats.bootstrap). 500 studies (Monte Carlo se 0.01) keep the run short.
@@ -232,6 +233,7 @@ def _first_passage_traces(rng, studies):
     )
 
 
+@pytest.mark.slow
 def test_kaplan_meier_band_covers_at_every_trial_including_0_and_1():
     studies = 1000  # Monte Carlo se 0.0069 per trial
     curves = reach.reach_curves(_first_passage_traces(np.random.default_rng(9), studies), target=0.5)

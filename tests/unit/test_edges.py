@@ -41,6 +41,7 @@ CASES = {
 
 
 @pytest.mark.parametrize("name", list(CASES))
+@pytest.mark.slow
 def test_edge_case_runs_cleanly(name):
     _sane(replay(_study(**CASES[name])))
 
@@ -63,6 +64,7 @@ def test_zero_noise_repeats_and_forced_jitter_warn_once_per_study(monkeypatch):
     assert len(messages) == 1 and "jitter" in messages[0]
 
 
+@pytest.mark.slow
 def test_five_hundred_trials_in_one_campaign():
     s = _study(policy=[{"rule": "ei"}], study={"replicates": 1}, campaign={"budgets": [500], "pool": 512},
                world={"noise": 0.05})

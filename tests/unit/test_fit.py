@@ -2,9 +2,10 @@
 
 import numpy as np
 import pytest
+from helpers import KERNEL_NAMES, sklearn_kernel
 from scipy.optimize import minimize_scalar
 from sklearn.gaussian_process import GaussianProcessRegressor
-from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern, WhiteKernel
+from sklearn.gaussian_process.kernels import WhiteKernel
 
 from simlab.model.fit import (
     FitResult,
@@ -14,23 +15,14 @@ from simlab.model.fit import (
     loo_log_predictive,
 )
 from simlab.model.gp import NUGGET
-from simlab.model.kernels import KERNELS, make_kernel
-
-KERNEL_NAMES = ("sqexp", "matern12", "matern32", "matern52")
+from simlab.model.kernels import make_kernel
 
 
 def sk_kernel(name, lengthscale, amplitude, noise, *, fixed=True, bounds=None):
-    """The same covariance in scikit-learn: C * base + White (noise variance)."""
-    kw = {} if bounds is None else {"length_scale_bounds": bounds["lengthscale"]}
-    ls = np.asarray(lengthscale, dtype=float)
-    if fixed:
-        kw = {"length_scale_bounds": "fixed"}
-    base = RBF(ls, **kw) if name == "sqexp" else Matern(ls, nu=KERNELS[name].nu, **kw)
-    ckw = {"constant_value_bounds": "fixed"} if fixed else (
-        {} if bounds is None else {"constant_value_bounds": tuple(np.square(bounds["amplitude"]))})
+    """The same covariance in scikit-learn: C * base (tests/helpers.py) + White (noise variance)."""
     wkw = {"noise_level_bounds": "fixed"} if fixed else (
         {} if bounds is None else {"noise_level_bounds": tuple(np.square(bounds["noise"]))})
-    return ConstantKernel(amplitude**2, **ckw) * base + WhiteKernel(noise**2, **wkw)
+    return sklearn_kernel(name, lengthscale, amplitude, fixed=fixed, bounds=bounds) + WhiteKernel(noise**2, **wkw)
 
 
 def gp_data(seed, n=25, d=3, ls=(0.3, 0.6, 1.2), amp=1.4, mean=2.0, noise=0.2, kernel="matern52"):
@@ -103,6 +95,7 @@ def test_lml_gradient_matches_finite_differences(name):
 # scikit-learn warns when its noise ends at the lower bound (Matérn 1/2 on smooth data): expected here.
 @pytest.mark.filterwarnings("ignore::sklearn.exceptions.ConvergenceWarning")
 @pytest.mark.parametrize("name", ["matern52", "sqexp", "matern12"])
+@pytest.mark.slow
 def test_fit_at_least_as_good_as_scikit_learn_optimiser(name):
     # Reference: scikit-learn's own optimiser (L-BFGS-B, n_restarts_optimizer=5) on the same data,
     # same box and same (zero) mean; both optima are scored by the same likelihood.
@@ -219,9 +212,8 @@ def test_loo_closed_form_equals_refits(name):
     diag = noise**2 + NUGGET * amp**2
     for i in range(len(y)):
         keep = np.arange(len(y)) != i
-        base = RBF(hyper["lengthscale"], "fixed") if name == "sqexp" else \
-            Matern(hyper["lengthscale"], "fixed", nu=KERNELS[name].nu)
-        gpr = GaussianProcessRegressor(ConstantKernel(amp**2, "fixed") * base, alpha=diag, optimizer=None)
+        gpr = GaussianProcessRegressor(sklearn_kernel(name, hyper["lengthscale"], amp, fixed=True), alpha=diag,
+                                       optimizer=None)
         gpr.fit(X[keep], y[keep] - hyper["mean"])
         mu, sd = gpr.predict(X[i:i + 1], return_std=True)
         var = sd[0] ** 2 + diag

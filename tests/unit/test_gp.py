@@ -4,34 +4,23 @@ import warnings
 
 import numpy as np
 import pytest
-from sklearn.gaussian_process import GaussianProcessRegressor
-from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
+from helpers import KERNEL_NAMES, central_difference, sklearn_regressor
 
 import simlab.model.gp
 from simlab.model.gp import NUGGET, Posterior
 from simlab.model.kernels import KERNELS, SquaredExponential
 
-NAMES = ["sqexp", "matern12", "matern32", "matern52"]
 LS = np.array([0.3, 0.5])
 AMP = 1.3
 MEAN = 0.7
 NOISE = 0.1
 
 
-def sklearn_kernel(name, lengthscale, amplitude):
-    if name == "sqexp":
-        base = RBF(length_scale=lengthscale)
-    else:
-        base = Matern(length_scale=lengthscale, nu={"matern12": 0.5, "matern32": 1.5, "matern52": 2.5}[name])
-    return ConstantKernel(amplitude**2) * base
-
-
 def sklearn_gp(name, X, y, *, noise, amplitude=AMP, lengthscale=LS, mean=MEAN):
     """scikit-learn's regressor with the same model: constant prior mean subtracted, the
     same diagonal (noise variance plus the nugget NUGGET * a^2), no refitting."""
-    gpr = GaussianProcessRegressor(kernel=sklearn_kernel(name, lengthscale, amplitude),
-                                   alpha=noise**2 + NUGGET * amplitude**2, optimizer=None, normalize_y=False)
-    return gpr.fit(X, y - mean)
+    return sklearn_regressor(name, X, y, lengthscale=lengthscale, amplitude=amplitude, mean=mean,
+                             diagonal=noise**2 + NUGGET * amplitude**2)
 
 
 def data(n, seed, d=2):
@@ -42,7 +31,7 @@ def data(n, seed, d=2):
 
 
 # --------------------------------------------------------------------------- against scikit-learn
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_moments_and_evidence_match_sklearn(name):
     X, y = data(15, 201)
     Q = np.random.default_rng(202).random((30, 2))
@@ -61,7 +50,7 @@ def test_moments_and_evidence_match_sklearn(name):
     np.testing.assert_allclose(post.mean_at_data(), gpr.predict(X) + MEAN, rtol=1e-9, atol=1e-9 * AMP)
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_noise_free_posterior_matches_sklearn_and_interpolates(name):
     """noise = 0: only the nugget is on the diagonal, so K is nearly singular for smooth kernels."""
     X, y = data(10, 203)
@@ -109,7 +98,7 @@ def test_log_marginal_likelihood_worked_example():
 
 
 # --------------------------------------------------------------------------- incremental updates
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_incremental_updates_equal_refactorisation(name):
     X, y = data(25, 205)
     pool = np.random.default_rng(206).random((200, 2))   # 25 x 200 > 4096 pairs: both kernel code paths
@@ -170,16 +159,7 @@ def test_empty_posterior_is_the_prior():
 
 
 # --------------------------------------------------------------------------- gradients
-def central_difference(f, Q, h):
-    out = np.empty_like(Q)
-    for c in range(Q.shape[1]):
-        step = np.zeros(Q.shape[1])
-        step[c] = h
-        out[:, c] = (f(Q + step) - f(Q - step)) / (2 * h)
-    return out
-
-
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("noise", [NOISE, 0.0])
 def test_moment_gradients_match_finite_differences(name, noise):
     X, y = data(10, 211)
@@ -213,7 +193,7 @@ def test_moment_gradient_negative_control():
 
 
 # --------------------------------------------------------------------------- duplicates and jitter
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_duplicate_noise_free_inputs_are_absorbed_by_the_nugget(name):
     """Exact repeats with zero noise: the nugget keeps the factorisation finite."""
     X, _ = data(6, 213)
@@ -237,7 +217,7 @@ def test_duplicate_noise_free_inputs_are_absorbed_by_the_nugget(name):
         np.testing.assert_allclose(pmu[:6], f, rtol=0, atol=1e-6 * AMP)
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("how", ["add", "add_many"])
 def test_jitter_warning_when_the_gram_matrix_is_singular(name, how, monkeypatch):
     """Without the nugget, noise-free duplicates make K singular: the posterior must raise a

@@ -5,6 +5,8 @@ import pkgutil
 import subprocess
 import sys
 
+import pytest
+
 import simlab
 
 # Discovered, not listed, so a module added later is covered without editing this file.
@@ -18,6 +20,7 @@ def test_modules_are_discovered():
     assert "simlab.evidence.reach" in MODULES and "simlab.evidence.metrics" in MODULES and "simlab.policies.base" in MODULES
 
 
+@pytest.mark.slow
 def test_every_module_imports_alone_in_a_fresh_interpreter():
     """Each module is imported first thing in its own process, forked from a server that has
     loaded only third-party libraries (numpy, scipy, pandas, matplotlib...), never simlab: an

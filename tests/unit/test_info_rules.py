@@ -4,6 +4,7 @@ import itertools
 
 import numpy as np
 import pytest
+from helpers import Z_MAX
 from scipy import integrate
 from scipy.optimize import brentq
 from scipy.stats import norm, truncnorm
@@ -15,8 +16,6 @@ from simlab.policies import (GPUCB, Context, ExpectedImprovement, GPHedge, Knowl
 from simlab.policies.gradient import expected_min_drop, knowledge_gradient
 from simlab.policies.info import max_value_information
 from simlab.study.spec import StudyError, parse_study
-
-Z_MAX = 4.5  # Monte Carlo acceptance: |estimate - exact| < 4.5 sd (two-sided p = 7e-6 per comparison)
 
 
 # --------------------------------------------------------------------------- helpers
@@ -114,6 +113,7 @@ def noisy_entropy_drop(mu, sd, fstar, s):
 
 @pytest.mark.parametrize("mu, sd, fstar, s", [(0.3, 0.7, -0.4, 0.2), (0.3, 0.7, -0.4, 1.5),
                                               (0.0, 1.0, 0.5, 0.05), (0.3, 0.7, 0.9, 0.2)])
+@pytest.mark.slow
 def test_noisy_mes_matches_numerical_convolution(mu, sd, fstar, s):
     v = max_value_information(np.array([mu]), np.array([sd]), np.array([fstar]), s)[0, 0]
     # nested adaptive quadrature, both tolerances about 1e-10
@@ -191,6 +191,7 @@ def test_mes_policy_scores_and_gradient(noise_aware):
     assert np.all(screened >= full - 1e-12)
 
 
+@pytest.mark.slow
 def test_sampled_minima_match_exact_joint_draws():
     """Mean of the minimum over the grid and the data: pathwise draws (the rule's sampler) against
     exact joint draws from the posterior covariance (numpy Cholesky)."""
@@ -313,6 +314,7 @@ def test_kg_policy_chooses_the_best_candidate_including_the_recommendation():
 
 
 # --------------------------------------------------------------------------- pbest
+@pytest.mark.slow
 def test_pbest_matches_counting_minimisers_of_exact_joint_draws():
     """Share of posterior draws whose minimum over a 1-D grid lies at each grid point: the rule's
     pathwise feature draws against exact joint draws (numpy Cholesky of the grid covariance).

@@ -2,34 +2,24 @@
 
 import numpy as np
 import pytest
-from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
+from helpers import KERNEL_NAMES, central_difference, sklearn_kernel
 
 from simlab.model.kernels import KERNELS, make_kernel
 
-NAMES = ["sqexp", "matern12", "matern32", "matern52"]
 LENGTHSCALE = np.array([0.3, 0.7, 1.5])
 AMPLITUDE = 1.7
 EPS = np.finfo(float).eps
 
 
-def sklearn_kernel(name, lengthscale, amplitude):
-    """The same covariance written with scikit-learn's kernels (test-only reference)."""
-    if name == "sqexp":
-        base = RBF(length_scale=lengthscale)
-    else:
-        base = Matern(length_scale=lengthscale, nu={"matern12": 0.5, "matern32": 1.5, "matern52": 2.5}[name])
-    return ConstantKernel(amplitude**2) * base
-
-
 def test_registry_holds_the_four_kernels():
     # the study file names listed in DESIGN.md
-    assert sorted(KERNELS) == sorted(NAMES)
+    assert sorted(KERNELS) == sorted(KERNEL_NAMES)
     with pytest.raises(ValueError, match="sqexp"):
         make_kernel("gaussian", [0.3], 1.0)
 
 
 # --------------------------------------------------------------------------- values
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("n, m", [(7, 5), (20, 8), (90, 80)])  # up to 8 rows on one side: difference form; else expanded square
 def test_values_match_sklearn(name, n, m):
     rng = np.random.default_rng(101)
@@ -42,7 +32,7 @@ def test_values_match_sklearn(name, n, m):
     np.testing.assert_allclose(k(A, B), ref(A, B), rtol=0, atol=1e-11 * AMPLITUDE**2)
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("n", [6, 12, 100])  # 6 rows: difference form; 12 and 100: expanded square
 def test_gram_matrix_matches_sklearn_including_the_diagonal(name, n):
     """k(X) with coincident pairs (the diagonal), where r = 0 exactly."""
@@ -54,7 +44,7 @@ def test_gram_matrix_matches_sklearn_including_the_diagonal(name, n):
     np.testing.assert_allclose(k(X), ref(X), rtol=0, atol=1e-11 * AMPLITUDE**2)
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("n", [6, 12, 100])
 def test_diag_equals_diagonal_of_gram_matrix(name, n):
     X = np.random.default_rng(103).random((n, 3))
@@ -69,7 +59,7 @@ def test_diag_equals_diagonal_of_gram_matrix(name, n):
     np.testing.assert_allclose(k.diag(X), AMPLITUDE**2, rtol=8 * EPS)
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("n", [40, 100])
 def test_gram_matrix_symmetric_positive_semidefinite(name, n):
     X = np.random.default_rng(104).random((n, 3))
@@ -95,18 +85,7 @@ def test_lengthscale_is_per_input():
 
 
 # --------------------------------------------------------------------------- gradient
-def central_difference(f, A, h):
-    """d f(A)[i, j] / d A[i, :] by central differences: shape (n, m, d)."""
-    n, d = A.shape
-    out = np.empty((n, f(A).shape[1], d))
-    for c in range(d):
-        step = np.zeros(d)
-        step[c] = h
-        out[:, :, c] = (f(A + step) - f(A - step)) / (2 * h)
-    return out
-
-
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_grad_matches_finite_differences(name):
     rng = np.random.default_rng(106)
     A, B = rng.random((5, 3)), rng.random((6, 3))
@@ -159,7 +138,7 @@ def bochner_z_scores(omega, kernel):
     return (est - exact) / se
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_spectral_samples_reproduce_the_kernel(name):
     # Bochner's theorem: k(tau) / a^2 = E[cos(omega . tau)] for omega drawn from the normalised
     # spectral density (Rahimi & Recht 2007; densities in Rasmussen & Williams 2006, section 4.2).
@@ -172,7 +151,7 @@ def test_spectral_samples_reproduce_the_kernel(name):
     assert np.all(np.abs(z) < 4.5), z
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_spectral_negative_control_other_lengthscale(name):
     # Frequencies of the same kernel with lengthscales 30% longer must be rejected.
     k = KERNELS[name](SPECTRAL_LS, AMPLITUDE)

@@ -142,6 +142,7 @@ def test_paired_difference_interval_covers_exactly_at_50_replicates():
     assert narrow.min() < 0.93
 
 
+@pytest.mark.slow
 def test_pairwise_intervals_cover_in_repeated_studies():
     # 200 studies of 50 paired replicates through `pairwise` itself. Pair (a, b): the
     # regret of a is lower by a unit shift on 80 % of worlds and tied on 20 % (true win
@@ -207,6 +208,7 @@ def test_pairwise_uses_the_interval_functions():
 # ---------------------------------------------------------------------------
 # the median paired difference's interval: repeated studies
 # ---------------------------------------------------------------------------
+@pytest.mark.slow
 def test_median_interval_covers_in_repeated_studies():
     # 600 studies of 50 paired differences for each law: symmetric, skewed
     # (lognormal - 1, median 0 exactly) and with an atom of ties at 0 holding the
@@ -240,6 +242,7 @@ def test_median_interval_covers_in_repeated_studies():
 # ---------------------------------------------------------------------------
 # the choice table: A/A rate, positive control, negative control
 # ---------------------------------------------------------------------------
+@pytest.mark.slow
 def test_aa_studies_declare_a_clear_lead_at_most_five_percent_of_the_time():
     # 100 root seeds, each a study with one rule under two labels ("twin", "twin copy":
     # the same regret law on paired worlds) and a clearly worse third policy, so the

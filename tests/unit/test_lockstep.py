@@ -166,6 +166,7 @@ def alone():
 
 
 @pytest.mark.parametrize("chunk", [1, 3, 7])
+@pytest.mark.slow
 def test_traces_are_bit_identical_to_one_at_a_time(alone, chunk):
     together = replay(study(), lockstep=True, chunk=chunk)
     pd.testing.assert_frame_equal(together, alone, check_exact=True)
@@ -185,6 +186,7 @@ def test_negative_control_one_ulp_is_seen(alone):
     {"world": {"lengthscale_within": 2.0, "amplitude_within": 1.5}},     # every world its own kernel
     {"campaign": {"initial": 2, "budgets": [5], "design": "lhs", "pool": 64}},
 ])
+@pytest.mark.slow
 def test_identity_holds_for_other_worlds_and_designs(over):
     s = study(**over)
     pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=4), replay(s, lockstep=False, chunk=4),

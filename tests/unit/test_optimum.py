@@ -50,6 +50,7 @@ def searched():
     return out
 
 
+@pytest.mark.slow
 def test_default_search_is_no_worse_than_differential_evolution(searched):
     # Reference: scipy.optimize.differential_evolution. Tolerance: the 1e-3 x amplitude.
     for (d, name, ls, i), (w, u, v, _, v_de) in zip(WORLDS, searched):
@@ -59,6 +60,7 @@ def test_default_search_is_no_worse_than_differential_evolution(searched):
         assert v <= v_de + MISS, (d, name, ls, i, v - v_de)
 
 
+@pytest.mark.slow
 def test_a_small_search_fails_the_same_check(searched):
     # Negative control: 2^10 points and two polished starts (about what a naive search does) miss
     # the optimum on some of these worlds by far more than the tolerance, so the check above has power.

@@ -117,12 +117,6 @@ def _lbfgsb_values(fg, starts, **options):
     return np.array([r.fun for r in _lbfgsb(fg, starts, **options)]).reshape(starts.shape[:-1])
 
 
-def _projected_gradient(fg, U):
-    """Largest component of the projected gradient x - clip(x - g, 0, 1): 0 at a KKT point."""
-    _, g = fg(U)
-    return np.abs(U - np.clip(U - g, 0.0, 1.0)).max(-1)
-
-
 QUAD5, QUAD5_X = _bound_quadratic(5, seed=11)
 QUAD20, QUAD20_X = _bound_quadratic(20, seed=12)
 
@@ -150,27 +144,32 @@ def test_the_test_functions_are_right():
             assert err < 1e-5 * scale * np.sqrt(d)
 
 
-# (name, fg, d, iterations, published or constructed minimum, required fraction of starts).
+# (name, fg, d, iterations, published or constructed minimum, one minimum value).
 # Iterations: 30 where L-BFGS-B itself converges within ~20 evaluations (measured for these
 # starts: Branin, six-hump camel, the quadratics). Rosenbrock's curved valley takes L-BFGS-B a
 # median of ~40 (2-D) and ~45 (5-D) evaluations, up to ~70, so both get more: 100 and 150.
 #
-# Where both methods end at the same minimiser, polish_block must be no worse on every start.
-# Over all starts it must be no worse on the stated fraction: on the convex quadratics that is
-# every start; on the multimodal functions the two take different first steps and can settle
-# in different basins from the same start (six-hump camel has six local minima, 5-D
-# Rosenbrock a second one near (-1, 1, 1, 1, 1): both from memory, and both seen in these runs). polish_block's first step moves a quarter of
-# the cube, L-BFGS-B's a unit length, which on six-hump camel more often jumps to a global
-# minimum. Measured with this seed (and seeds 8, 9): no worse on 100% (Branin), 72% (75%,
-# 88%; camel), 100% (2-D) and 94% (97%, 95%; 5-D Rosenbrock) of 64 starts; the thresholds
-# leave a few starts of margin. Every start that loses must still end at a KKT point.
+# "One minimum value": every local minimum in the box has the same value, so from any start
+# both methods must end at that value and polish_block must be no worse than L-BFGS-B on every
+# start. The quadratics by construction (_bound_quadratic); Branin's three minimisers all have
+# the value 5/(4 pi) and it has no other local minimum in its box (Dixon & Szego 1978; the
+# latter from memory); 2-D Rosenbrock's gradient vanishes only at (1, 1) (b = a^2 from the
+# second component, then a = 1 from the first). Six-hump camel has six local minima and 5-D
+# Rosenbrock a second one near (-1, 1, 1, 1, 1) (both from memory, and both seen in these
+# runs): there the two methods take different first steps and can settle in different basins
+# from the same start (polish_block's first step moves a quarter of the cube, L-BFGS-B's a unit
+# length), so the comparison with L-BFGS-B is made where both reach the same minimiser, and
+# elsewhere L-BFGS-B restarted from polish_block's result must find nothing better: it ended
+# at a local minimum, not half-way. Which basin is reached is not compared: on six-hump camel
+# polish_block lands in a worse one than L-BFGS-B from 18 of these 64 starts and a better one
+# from 5 (measured; seeds 8 and 9 similar), a known difference of the two first steps.
 CASES = [
-    ("branin", _branin, 2, 30, 5 / (4 * np.pi), 0.95),        # 0.397887, Dixon & Szego (1978)
-    ("six-hump-camel", _camel, 2, 30, -1.0316284535, 0.65),   # Surjanovic & Bingham, VLSE
-    ("quadratic-5", QUAD5, 5, 30, 0.0, 1.0),                  # by construction
-    ("quadratic-20", QUAD20, 20, 30, 0.0, 1.0),               # by construction
-    ("rosenbrock-2", _rosenbrock, 2, 100, 0.0, 0.95),         # Rosenbrock (1960)
-    ("rosenbrock-5", _rosenbrock, 5, 150, 0.0, 0.85),         # Rosenbrock (1960)
+    ("branin", _branin, 2, 30, 5 / (4 * np.pi), True),         # 0.397887, Dixon & Szego (1978)
+    ("six-hump-camel", _camel, 2, 30, -1.0316284535, False),   # Surjanovic & Bingham, VLSE
+    ("quadratic-5", QUAD5, 5, 30, 0.0, True),                  # by construction
+    ("quadratic-20", QUAD20, 20, 30, 0.0, True),               # by construction
+    ("rosenbrock-2", _rosenbrock, 2, 100, 0.0, True),          # Rosenbrock (1960)
+    ("rosenbrock-5", _rosenbrock, 5, 150, 0.0, False),         # Rosenbrock (1960)
 ]
 # "No worse" allows 1e-6 (1 + |f|): L-BFGS-B stops on a relative decrease of 2.2e-9 or a
 # projected gradient of 1e-5 (SciPy defaults), so its own result is off the minimum by up to
@@ -178,28 +177,37 @@ CASES = [
 REL_TOL = 1e-6
 
 
-@pytest.mark.parametrize("name, fg, d, iterations, fmin, fraction", CASES, ids=[c[0] for c in CASES])
-def test_as_good_as_lbfgsb_from_the_same_starts(name, fg, d, iterations, fmin, fraction):
+@pytest.mark.parametrize("name, fg, d, iterations, fmin, one_value", CASES, ids=[c[0] for c in CASES])
+def test_as_good_as_lbfgsb_from_the_same_starts(name, fg, d, iterations, fmin, one_value):
     starts = np.random.default_rng(7).uniform(size=(16, 4, d))
     U, v = polish_block(fg, starts, iterations=iterations)
     res = _lbfgsb(fg, starts)
     ref = np.array([r.fun for r in res]).reshape(v.shape)
     no_worse = v <= ref + REL_TOL * (1.0 + np.abs(ref))
-    # Same minimiser (within 1e-3 in every coordinate): no worse, every time. At least 40% of
-    # the starts share a minimiser (50% measured on camel, 73-100% elsewhere), so this is
-    # not an empty check.
+    # Same minimiser as L-BFGS-B from that start (within 1e-3 in every coordinate): no worse.
     same = np.abs(U - np.array([r.x for r in res]).reshape(U.shape)).max(-1) < 1e-3
-    assert same.mean() >= 0.4 and np.all(no_worse[same]), name
-    assert no_worse.mean() >= fraction, (name, no_worse.mean())
-    # The starts that lose ended at another KKT point (local minimum), not half-way: projected
-    # gradient below 1e-4 of the gradient scale at the start.
-    _, g0 = fg(starts)
-    stationary = _projected_gradient(fg, U) <= 1e-4 * (1.0 + np.abs(g0).max(-1))
-    assert np.all(stationary | no_worse), name
+    assert same.any() and np.all(no_worse[same]), name
+    if one_value:
+        assert np.all(no_worse), (name, np.flatnonzero(~no_worse))
+    # Every result is a local minimum to L-BFGS-B's precision: restarted there, it gains at most
+    # the same tolerance.
+    again = np.array([r.fun for r in _lbfgsb(fg, U)]).reshape(v.shape)
+    assert np.all(v <= again + REL_TOL * (1.0 + np.abs(again))), name
     # The published (or constructed) minimum is reached from the best start: 1e-9 absolute
     # covers float64 rounding of functions of size ~1-300 near their minimum.
     assert v.min() == pytest.approx(fmin, abs=1e-9)
     assert v.min() >= fmin - 1e-9   # nothing goes below the global minimum
+
+
+def test_the_comparison_with_lbfgsb_can_fail():
+    # Negative control: stopped after 3 iterations, polish_block is worse than L-BFGS-B from the
+    # same starts on 2-D Rosenbrock, and L-BFGS-B restarted from its results still gains.
+    starts = np.random.default_rng(7).uniform(size=(16, 4, 2))
+    U, v = polish_block(_rosenbrock, starts, iterations=3)
+    ref = _lbfgsb_values(_rosenbrock, starts)
+    assert not np.all(v <= ref + REL_TOL * (1.0 + np.abs(ref)))
+    again = _lbfgsb_values(_rosenbrock, U)
+    assert not np.all(v <= again + REL_TOL * (1.0 + np.abs(again)))
 
 
 @pytest.mark.parametrize("fg, xstar, d", [(QUAD5, QUAD5_X, 5), (QUAD20, QUAD20_X, 20)], ids=["5", "20"])

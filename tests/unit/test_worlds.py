@@ -2,24 +2,14 @@
 
 import numpy as np
 import pytest
-from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
+from helpers import KERNEL_NAMES, Z_MAX, central_difference, sklearn_kernel
 
 from simlab.model.kernels import KERNELS
 from simlab.rng import stream
 from simlab.worlds.draws import FeatureSample, FeatureWorld, GridWorld
 
-NAMES = ["sqexp", "matern12", "matern32", "matern52"]
 AMP = 1.2
 MEAN = 0.4
-Z_MAX = 4.5  # Monte Carlo acceptance: |estimate - exact| < 4.5 sd (two-sided p = 7e-6 per comparison)
-
-
-def sklearn_kernel(name, lengthscale, amplitude):
-    if name == "sqexp":
-        base = RBF(length_scale=lengthscale)
-    else:
-        base = Matern(length_scale=lengthscale, nu={"matern12": 0.5, "matern32": 1.5, "matern52": 2.5}[name])
-    return ConstantKernel(amplitude**2) * base
 
 
 def covariance_z_scores(values, pairs, exact, mean):
@@ -46,10 +36,10 @@ def feature_world_values(name, n_worlds):
 
 @pytest.fixture(scope="module")
 def feature_values():
-    return {name: feature_world_values(name, N_WORLDS) for name in NAMES}
+    return {name: feature_world_values(name, N_WORLDS) for name in KERNEL_NAMES}
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_feature_worlds_have_the_kernel_covariance(name, feature_values):
     # Across worlds (frequencies and weights both random) the covariance is exactly the kernel:
     # Bochner's theorem, Rahimi & Recht (2007). Exact values from scikit-learn's kernel.
@@ -63,7 +53,7 @@ def test_feature_worlds_have_the_kernel_covariance(name, feature_values):
     assert np.all(np.abs(mz) < Z_MAX), mz
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_feature_world_covariance_negative_control(name, feature_values):
     # The same check against the kernel with 1.5x the lengthscales must fail.
     ref = sklearn_kernel(name, 1.5 * LS2, AMP)
@@ -89,7 +79,7 @@ def per_draw_errors(name, n_draws, F, lengthscale=LS2):
     return out
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_feature_covariance_error_within_documented_bound(name):
     F, M = 1024, 600
     e = per_draw_errors(name, M, F)
@@ -115,7 +105,7 @@ def test_feature_covariance_error_within_documented_bound(name):
     assert np.all(np.sqrt(s2) <= bound * (1 + Z_MAX * np.sqrt(2 / M)))
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_feature_covariance_error_negative_controls(name):
     F, M = 1024, 600
     # Errors measured against the kernel with 1.5x the lengthscales are biased: rejected.
@@ -131,16 +121,7 @@ def test_feature_covariance_error_negative_controls(name):
     assert abs(z_bound) > Z_MAX, z_bound
 
 
-def central_difference(f, U, h):
-    out = np.empty_like(U)
-    for c in range(U.shape[1]):
-        step = np.zeros(U.shape[1])
-        step[c] = h
-        out[:, c] = (f(U + step) - f(U - step)) / (2 * h)
-    return out
-
-
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_feature_sample_gradient_matches_finite_differences(name):
     k = KERNELS[name]([0.3, 0.5, 0.8], AMP)
     s = FeatureSample(k, MEAN, np.random.default_rng(301), n_freq=256)
@@ -169,7 +150,7 @@ def grid_world(name, i, n=GRID_N, ls=LS1):
     return GridWorld(KERNELS[name](ls, AMP), MEAN, stream(99, i, "world"), n_per_dim=n)
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("d", [1, 2])
 def test_grid_world_passes_through_its_grid_values(name, d):
     w = grid_world(name, 0, n=GRID_N if d == 1 else 12, ls=LS1 * d)
@@ -193,7 +174,7 @@ def test_grid_world_passes_through_its_grid_values(name, d):
 def grid_draws():
     U_off = np.array([[0.17], [0.52]])
     out = {}
-    for name in NAMES:
+    for name in KERNEL_NAMES:
         worlds = [grid_world(name, i) for i in range(2000)]
         out[name] = (np.stack([w.values for w in worlds]), np.stack([w(U_off) for w in worlds]), worlds[0].grid, U_off)
     return out
@@ -203,7 +184,7 @@ GRID_IDX = [5, 6, 9, 14, 30]
 GRID_PAIRS = [(0, 0), (0, 1), (0, 2), (0, 3), (0, 4), (2, 3)]
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_grid_world_covariance_matches_the_kernel(name, grid_draws):
     values, off, grid, U_off = grid_draws[name]
     ref = sklearn_kernel(name, LS1, AMP)
@@ -229,7 +210,7 @@ def test_grid_world_covariance_matches_the_kernel(name, grid_draws):
     assert np.all(np.abs(prod.mean(0) - exact) < Z_MAX * se + np.abs(short))
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_grid_world_covariance_negative_control(name, grid_draws):
     values, _, grid, _ = grid_draws[name]
     ref = sklearn_kernel(name, [1.5 * LS1[0]], AMP)
@@ -239,7 +220,7 @@ def test_grid_world_covariance_negative_control(name, grid_draws):
     assert np.max(np.abs(z)) > Z_MAX, z
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 def test_grid_world_gradient_matches_finite_differences(name):
     w = grid_world(name, 3, n=10, ls=[0.3, 0.4])
     U = np.random.default_rng(304).random((5, 2))
@@ -258,8 +239,9 @@ def dense_minimum(world, d, seed, n=2**13):
     return world(np.random.default_rng(seed).random((n, d))).min()
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("replicate", [0])
+@pytest.mark.slow
 def test_feature_world_optimum_beats_dense_random_search(name, replicate):
     d = 2
     world = FeatureWorld(KERNELS[name]([0.25, 0.25], AMP), MEAN, stream(5, replicate, "world"))
@@ -270,8 +252,9 @@ def test_feature_world_optimum_beats_dense_random_search(name, replicate):
     assert v <= dense_minimum(world, d, 400 + replicate) + 1e-9 * AMP
 
 
-@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("d", [1, 2])
+@pytest.mark.slow
 def test_grid_world_optimum_beats_dense_random_search(name, d):
     world = grid_world(name, 7, n=64 if d == 1 else 16, ls=[0.2] * d)
     u, v = world.optimum(np.random.default_rng(305))

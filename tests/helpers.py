@@ -1,0 +1,61 @@
+"""Test-only references shared by the unit tests: kernel names, scikit-learn kernels, differences.
+
+Nothing here imports simlab: these are the outside references the tests compare simlab with.
+"""
+
+import numpy as np
+from sklearn.gaussian_process import GaussianProcessRegressor
+from sklearn.gaussian_process.kernels import RBF, ConstantKernel, Matern
+
+__all__ = ["KERNEL_NAMES", "MATERN_NU", "Z_MAX", "central_difference", "sklearn_kernel", "sklearn_regressor"]
+
+# The study-file names of the four kernels (DESIGN.md).
+KERNEL_NAMES = ("sqexp", "matern12", "matern32", "matern52")
+# Smoothness nu of the Matern kernels (Rasmussen & Williams 2006, section 4.2.1, from memory).
+MATERN_NU = {"matern12": 0.5, "matern32": 1.5, "matern52": 2.5}
+# Monte Carlo acceptance: |estimate - exact| < 4.5 sd (two-sided p = 7e-6 per comparison).
+Z_MAX = 4.5
+
+
+def sklearn_kernel(name, lengthscale, amplitude, *, fixed=False, bounds=None):
+    """The same covariance written with scikit-learn's kernels: ``ConstantKernel(a^2) * base``.
+
+    ``base`` is RBF for ``sqexp`` and Matern(nu) otherwise. ``fixed`` fixes every
+    hyperparameter (so an optimiser leaves them alone); ``bounds`` (a dict with
+    ``lengthscale`` and ``amplitude`` ranges) sets the search box of a fit.
+    """
+    ls = np.asarray(lengthscale, dtype=float)
+    if fixed:
+        ls_kw, c_kw = {"length_scale_bounds": "fixed"}, {"constant_value_bounds": "fixed"}
+    elif bounds is not None:
+        ls_kw = {"length_scale_bounds": bounds["lengthscale"]}
+        c_kw = {"constant_value_bounds": tuple(np.square(bounds["amplitude"]))}
+    else:
+        ls_kw, c_kw = {}, {}
+    base = RBF(length_scale=ls, **ls_kw) if name == "sqexp" else Matern(length_scale=ls, nu=MATERN_NU[name], **ls_kw)
+    return ConstantKernel(amplitude**2, **c_kw) * base
+
+
+def sklearn_regressor(name, X, y, *, lengthscale, amplitude, mean, diagonal):
+    """scikit-learn's regressor fitted with fixed hyperparameters (``optimizer=None``): the
+    constant prior mean subtracted from y, ``diagonal`` (noise variance plus any nugget) as
+    ``alpha``. Predict with ``regressor.predict(Q, return_std=True)`` and add ``mean`` back."""
+    gpr = GaussianProcessRegressor(kernel=sklearn_kernel(name, lengthscale, amplitude), alpha=diagonal,
+                                   optimizer=None, normalize_y=False)
+    return gpr.fit(np.asarray(X, dtype=float), np.asarray(y, dtype=float) - mean)
+
+
+def central_difference(f, U, h):
+    """d f(U)[i, ...] / d U[i, :] by central differences, for f acting row by row on U (n, d).
+
+    Returns shape ``f(U).shape + (d,)``. Truncation error h^2 f''' / 6 per entry (Nocedal &
+    Wright 2006, section 8.1); callers state the step and tolerance they use.
+    """
+    U = np.asarray(U, dtype=float)
+    d = U.shape[1]
+    columns = []
+    for c in range(d):
+        step = np.zeros(d)
+        step[c] = h
+        columns.append((f(U + step) - f(U - step)) / (2 * h))
+    return np.stack(columns, -1)
