@@ -9,15 +9,8 @@ import numpy as np
 import pandas as pd
 
 from .compare import format_p, pairwise
-from .frame import (
-    TABLE_RESAMPLES,
-    check_budgets,
-    check_probability,
-    check_resamples,
-    check_target,
-    check_traces,
-    regret_at,
-)
+from .frame import (TABLE_RESAMPLES, check_budgets, check_probability, check_resamples, check_target, check_traces,
+                    regret_at)
 from .metrics import budget_summary
 from .reach import budget_plan
 

@@ -8,13 +8,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .frame import (
-    check_budgets,
-    check_probability,
-    check_target,
-    check_traces,
-    regret_at,
-)
+from .frame import (check_budgets, check_probability, check_target, check_traces, regret_at)
 from .intervals import exact_bounds, median_rows
 
 

@@ -8,17 +8,8 @@ __all__ = ["regret_at_budget", "regret_curves", "budget_summary"]
 import numpy as np
 import pandas as pd
 
-from .frame import (
-    CURVE_RESAMPLES,
-    TABLE_RESAMPLES,
-    check_budgets,
-    check_probability,
-    check_resamples,
-    check_target,
-    check_traces,
-    grouped_cells,
-    regret_at,
-)
+from .frame import (CURVE_RESAMPLES, TABLE_RESAMPLES, check_budgets, check_probability, check_resamples,
+                    check_target, check_traces, grouped_cells, regret_at)
 from .intervals import cvar90, cvar90_lower, median_rows, share_interval
 
 

@@ -10,15 +10,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .frame import (
-    SHARE_TOLERANCE,
-    check_budgets,
-    check_method,
-    check_probability,
-    check_target,
-    check_traces,
-    horizons,
-)
+from .frame import (SHARE_TOLERANCE, check_budgets, check_method, check_probability, check_target, check_traces,
+                    horizons)
 from .intervals import share_interval
 
 _NOT_REACHED_PLAN = "not reached within the simulated budget"

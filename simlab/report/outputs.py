@@ -13,20 +13,8 @@ from ..evidence import choice, compare, frame, metrics, reach
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
 from .figures import FigureInput
-from .files import (
-    BUDGET_PLAN,
-    CHOICE,
-    FIGURES,
-    PAIRWISE,
-    REPORT,
-    SUMMARY,
-    SWEEP_RANKING,
-    SWEEP_SUMMARY,
-    TRIALS_TO_TARGET,
-    TRIALS_TO_TARGET_SUMMARY,
-    WITHIN_TARGET,
-    WORLDS,
-)
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
+                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
 from .page import render
 
 

@@ -13,19 +13,8 @@ from ..evidence import choice
 from .cells import Cells, escape, fmt_pct, is_missing, number
 from .describe import _assumptions, _cautions, _limits, _question
 from .figures import FIGURES as FIGURE_REGISTRY
-from .files import (
-    BUDGET_PLAN,
-    CHOICE,
-    FIGURES,
-    PAIRWISE,
-    SUMMARY,
-    SWEEP_RANKING,
-    SWEEP_SUMMARY,
-    TRIALS_TO_TARGET,
-    TRIALS_TO_TARGET_SUMMARY,
-    WITHIN_TARGET,
-    WORLDS,
-)
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
+                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
 
 _ATTITUDE_REGRET, _ATTITUDE_FAILURE, _ATTITUDE_TRIALS = choice.ATTITUDES
 

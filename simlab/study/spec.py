@@ -17,21 +17,8 @@ from ..policies import POLICIES
 from ..worlds.kinds import WORLD_KINDS, world_options
 from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
-from .types import (
-    DESIGNS,
-    GOALS,
-    MAX_REPLICATES,
-    NAME_LENGTH,
-    CampaignSpec,
-    HistorySpec,
-    PolicySpec,
-    Prior,
-    Space,
-    Study,
-    StudyError,
-    SweepSpec,
-    WorldSpec,
-)
+from .types import (DESIGNS, GOALS, MAX_REPLICATES, NAME_LENGTH, CampaignSpec, HistorySpec, PolicySpec, Prior,
+                    Space, Study, StudyError, SweepSpec, WorldSpec)
 
 __all__ = ["load_study", "parse_study", "advice", "RESERVED",
            # the types a study is made of (types.py), imported here because reading makes them
