@@ -21,7 +21,7 @@ __all__ = ["CampaignSuggestion", "suggest_campaign", "suggest_target", "study_na
 # computer experiment that fits a Gaussian process across the box.
 RUNS_PER_INPUT = 10
 _TARGET_FRACTION = 0.1    # of the amplitude (the prior sd of the objective): see suggest_target
-_MARGIN_FRACTION = 0.01   # of the amplitude, PI's margin (issue 14 item 3: "common practice")
+_MARGIN_FRACTION = 0.01   # of the amplitude, for PI's margin: common practice (0 makes PI greedy)
 
 
 @dataclass(frozen=True)
