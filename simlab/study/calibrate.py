@@ -136,7 +136,7 @@ class Calibration:
         from these runs (a ``[history]`` table with this response).
         """
         from .template import study_text
-        b, p = self.best, self.prior
+        p = self.prior
         how = ("chosen by leave-one-out log predictive density among " + ", ".join(f.kernel for f in self.fits)
                if len(self.fits) > 1 else "as asked (--kernel auto compares all)")
         header = [(f"# Study written by simlab calibrate from {Path(self.source).name}, response \"{self.response}\" "
