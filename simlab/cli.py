@@ -35,7 +35,22 @@ examples:
   simlab calibrate runs.csv --response yield --inputs temp,pressure --kernel auto
 
 Standard output is TOML ([space] and [world] tables) to paste into a study; the fit
-table and warnings go to standard error.
+table and warnings go to standard error. With --study, a complete study file is written
+instead: the fitted [space] and [world], and a suggested [campaign] (budgets 5, 10 and 15
+trials per input), [target] and set of policies, every guessed value commented:
+
+  simlab calibrate configs/fermentation-runs.csv --response titre --goal maximize --study ferment.toml
+  simlab calibrate runs.csv --response yield --study continue.toml --history
+"""
+_EPILOG_NEW = """\
+examples:
+  simlab new line-setpoints.toml
+  simlab new greenhouse.toml --inputs day_temp,night_temp,co2 --goal maximize
+
+Writes a study file that runs as written: placeholder inputs and prior (marked PLACEHOLDER,
+each saying what to fill in), and the campaign, target and policies suggested for them
+(marked guessed). With past runs in a CSV, `simlab calibrate DATA.csv --response COL
+--study NEW.toml` fits the inputs and prior instead.
 """
 _EPILOG_PLAN = """\
 examples:
@@ -150,6 +165,24 @@ def build_parser() -> argparse.ArgumentParser:
     cal.add_argument("--restarts", type=_positive_int, default=8, metavar="N",
                      help="optimiser starts per kernel (default 8)")
     cal.add_argument("--seed", type=int, default=0, help="seed for the optimiser's starting points")
+    cal.add_argument("--study", metavar="NEW.toml",
+                     help="write a complete study file (fitted prior, suggested campaign, target and policies) "
+                     "instead of printing TOML; refused if the file exists")
+    cal.add_argument("--history", action="store_true",
+                     help="with --study: start every campaign from the data's runs (a [history] table)")
+    cal.add_argument("--force", action="store_true", help="with --study: replace an existing file")
+
+    new = sub.add_parser("new", help="write a study file to fill in, without data",
+                         description="Write a complete study file with placeholder inputs and prior, and a "
+                         "suggested campaign, target and set of policies; it runs as written, and every value "
+                         "says whether it is a placeholder or a guess and what to consider.",
+                         epilog=_EPILOG_NEW, formatter_class=argparse.RawDescriptionHelpFormatter)
+    new.add_argument("study", metavar="NAME.toml")
+    new.add_argument("--inputs", metavar="A,B,...", default="x1,x2",
+                     help="names of the inputs (default x1,x2); the campaign is suggested from their number")
+    new.add_argument("--goal", default="minimize", choices=["minimize", "maximize"],
+                     help="whether the response is minimised or maximised (default minimize)")
+    new.add_argument("--force", action="store_true", help="replace an existing file")
 
     report = sub.add_parser("report", help="summarise a results folder again from its stored traces",
                             description="Read traces.parquet and study.toml from a results folder and print "
@@ -207,7 +240,7 @@ def main(argv=None) -> int:
         previous = None
     try:
         return {"run": _run, "check": _check, "report": _report, "sweep": _sweep,
-                "calibrate": _calibrate, "plan": _plan}[args.command](args)
+                "calibrate": _calibrate, "plan": _plan, "new": _new}[args.command](args)
     except StudyError as exc:
         print(f"simlab: error: {exc}", file=sys.stderr)
         return 2
@@ -399,6 +432,13 @@ def _sweep(args) -> int:
 def _calibrate(args) -> int:
     from .study.calibrate import calibrate
     from .study.data import DataError
+    if args.study is None and (args.history or args.force):
+        print(f"simlab calibrate: error: {'--history' if args.history else '--force'} needs --study NEW.toml",
+              file=sys.stderr)
+        return 2
+    if args.study is not None:
+        from .study.template import check_new_file
+        check_new_file(args.study, force=args.force)   # refuse before the fit, not after it
     inputs = [s.strip() for s in args.inputs.split(",")] if args.inputs else None
     try:
         cal = calibrate(args.data, response=args.response, inputs=inputs, kernel=args.kernel,
@@ -406,8 +446,30 @@ def _calibrate(args) -> int:
     except DataError as exc:
         print(f"simlab: error: {exc}", file=sys.stderr)
         return 2
-    sys.stdout.write(cal.toml())
+    if args.study is None:
+        sys.stdout.write(cal.toml())
+        sys.stderr.write(cal.diagnostics())
+        return 0
+    from pathlib import Path
+
+    from .study.template import relative_path, study_name, write_study
+    history = relative_path(args.data, Path(args.study).parent) if args.history else None
+    path = write_study(args.study, cal.study(name=study_name(args.study), history=history), force=args.force)
     sys.stderr.write(cal.diagnostics())
+    print(f"wrote {path}: {cal.space.dim} input{'s' * (cal.space.dim > 1)}, the fitted prior, and a suggested "
+          "campaign, target and policies (marked guessed: review them)")
+    print(f"next: simlab check {path}; simlab run {path}; simlab plan {path}")
+    return 0
+
+
+def _new(args) -> int:
+    from .study.template import check_inputs, skeleton_text, study_name, write_study
+    inputs = check_inputs([s.strip() for s in args.inputs.split(",")])
+    path = write_study(args.study, skeleton_text(name=study_name(args.study), goal=args.goal, inputs=inputs),
+                       force=args.force)
+    print(f"wrote {path}: {len(inputs)} placeholder input{'s' * (len(inputs) > 1)} and prior (marked "
+          "PLACEHOLDER: fill them in), and a suggested campaign, target and policies (marked guessed)")
+    print(f"next: edit it, then simlab check {path}; simlab run {path}")
     return 0
 
 

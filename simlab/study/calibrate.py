@@ -127,6 +127,36 @@ class Calibration:
         ]
         return "\n".join(lines) + "\n"
 
+    def study(self, *, name: str, history: str | None = None) -> str:
+        """A complete, runnable study file: ``[space]`` and ``[world]`` as :meth:`toml` writes them
+        (each value commented), and the campaign, target and policies that
+        :func:`simlab.study.template.study_text` suggests from the fit; every guess commented.
+
+        ``history``: the data file's path relative to the study file, to start every campaign
+        from these runs (a ``[history]`` table with this response).
+        """
+        from .template import study_text
+        p = self.prior
+        how = ("chosen by leave-one-out log predictive density among " + ", ".join(f.kernel for f in self.fits)
+               if len(self.fits) > 1 else "as asked (--kernel auto compares all)")
+        header = [(f"# Study written by simlab calibrate from {Path(self.source).name}, response \"{self.response}\" "
+                   f"({self.rows} rows, {self.space.dim} input{'s' * (self.space.dim > 1)});"),
+                  "# [space] spans the data and [world] is fitted to it by maximum marginal likelihood.",
+                  *[f"# warning: {w}" for w in self.warnings]]
+        space = [f"{toml_key(n)} = [{toml_value(float(lo))}, {toml_value(float(hi))}]   # the data's range; "
+                 "widen it to search beyond (lengthscales are in input units)"
+                 for n, lo, hi in zip(self.space.names, self.space.low, self.space.high)]
+        amplitude, noise = _round(p.amplitude), _round(p.noise)
+        world = [f"kernel = {toml_value(p.kernel)}   # fitted: {how}",
+                 f"lengthscale = {toml_value([_round(v) for v in p.lengthscale])}   # fitted, per input: "
+                 + ", ".join(self.space.names),
+                 f"amplitude = {toml_value(amplitude)}   # fitted: prior sd of the response",
+                 f"mean = {toml_value(_round(p.mean, 6))}   # fitted: prior mean of the response",
+                 f"noise = {toml_value(noise)}   # fitted: sd of repeated runs at one setting"]
+        return study_text(name=name, goal=self.goal, space=space, world=world, dim=self.space.dim,
+                          amplitude=amplitude, noise=noise, header=header,
+                          history=None if history is None else (history, self.response, self.rows))
+
     def diagnostics(self) -> str:
         """A table of every kernel tried (log marginal likelihood, leave-one-out, hyperparameters)
         and the warnings, for standard error."""
