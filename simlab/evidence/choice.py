@@ -21,7 +21,6 @@ ATTITUDES = (
 )
 
 
-
 def _oriented(pairs, leader, other, columns):
     """The pair's row and the (estimate, low, high) of `columns` as leader minus other."""
     row = pairs[
@@ -32,7 +31,6 @@ def _oriented(pairs, leader, other, columns):
     if row["policy_a"] != leader:
         value, low, high = -value, -high, -low
     return row, (value, low, high)
-
 
 
 def _lead_verdict(pairs, leader, others, *, favours_col, p_col, test_name, level, alpha, effect, margin):
@@ -79,11 +77,9 @@ def _lead_verdict(pairs, leader, others, *, favours_col, p_col, test_name, level
     )
 
 
-
 def _p_words(p):
     text = format_p(p)
     return text if text.startswith("<") else f"= {text}"
-
 
 
 def _check_margin(name, value):
@@ -94,7 +90,6 @@ def _check_margin(name, value):
     if not np.isfinite(value) or value < 0:
         raise ValueError(f"`{name}` must be a finite number >= 0; got {value!r}")
     return value
-
 
 
 def choice_table(
@@ -293,7 +288,6 @@ def choice_table(
                 )
         rows.append(_choice_row(ATTITUDES[2], criterion, plan, leader, runner, columns, lead, np.nan, evidence))
     return pd.DataFrame(rows)
-
 
 
 def _choice_row(attitude, criterion, table, leader, runner, columns, lead, p_value, evidence):

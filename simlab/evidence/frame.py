@@ -13,9 +13,7 @@ import pandas as pd
 CURVE_RESAMPLES = 1000
 
 
-
 TABLE_RESAMPLES = 2000
-
 
 
 # Share comparisons (KM share >= level) allow for float rounding in the product-limit
@@ -23,9 +21,7 @@ TABLE_RESAMPLES = 2000
 SHARE_TOLERANCE = 1e-9
 
 
-
 KM_METHODS = ("log-log", "linear")
-
 
 
 # ---------------------------------------------------------------------------
@@ -79,7 +75,6 @@ def check_traces(traces, *, columns=("policy", "replicate", "trial", "regret")):
     return frame.sort_values(["policy", "replicate", "trial"], kind="stable").reset_index(drop=True)
 
 
-
 def policy_order(traces):
     """Policy labels in category order if categorical, else in order of first appearance."""
     column = traces["policy"]
@@ -87,7 +82,6 @@ def policy_order(traces):
         present = set(column.dropna().unique())
         return [c for c in column.cat.categories if c in present]
     return list(pd.unique(column.dropna()))
-
 
 
 def check_probability(name, value, *, closed_high=False):
@@ -103,7 +97,6 @@ def check_probability(name, value, *, closed_high=False):
     return value
 
 
-
 def check_target(target):
     """Check the regret tolerance: a finite number >= 0."""
     try:
@@ -115,19 +108,16 @@ def check_target(target):
     return value
 
 
-
 def check_resamples(n_resamples):
     if not isinstance(n_resamples, Integral) or n_resamples < 100:
         raise ValueError(f"`n_resamples` must be an integer >= 100; got {n_resamples!r}")
     return int(n_resamples)
 
 
-
 def check_method(method):
     if method not in KM_METHODS:
         raise ValueError(f"`method` must be one of {list(KM_METHODS)}; got {method!r}")
     return method
-
 
 
 def check_budgets(budgets, name="budgets"):
@@ -146,7 +136,6 @@ def check_budgets(budgets, name="budgets"):
     return tuple(sorted({int(b) for b in values}))
 
 
-
 def grouped_cells(frame, keys):
     """Yield (n, keys_list, matrix) with cells of equal size stacked into rows."""
     by_size = {}
@@ -157,7 +146,6 @@ def grouped_cells(frame, keys):
         by_size[arr.size][1].append(arr)
     for n, (cell_keys, arrays) in by_size.items():
         yield n, cell_keys, np.vstack(arrays)
-
 
 
 def regret_at(frame, budget):
@@ -173,7 +161,6 @@ def regret_at(frame, budget):
         )
         raise ValueError(f"budget {budget} is not available for every campaign: {detail}")
     return at.reset_index(drop=True)
-
 
 
 def horizons(traces):

@@ -31,7 +31,6 @@ def cvar90(x, axis=-1):
     return worst_first @ weights / mass
 
 
-
 def wilson_interval(count, n, confidence_level):
     """Wilson score interval without continuity correction (Newcombe 1998, method 3).
 
@@ -42,7 +41,6 @@ def wilson_interval(count, n, confidence_level):
         confidence_level=confidence_level, method="wilson"
     )
     return float(ci.low), float(ci.high)
-
 
 
 def share_interval(count, n, confidence_level):
@@ -82,7 +80,6 @@ def share_interval(count, n, confidence_level):
     return np.asarray(low, dtype=float), np.asarray(high, dtype=float)
 
 
-
 def median_ranks(n, confidence_level):
     """1-based ranks (l, u) of the order statistics bounding the median, or None.
 
@@ -102,7 +99,6 @@ def median_ranks(n, confidence_level):
     return low, n + 1 - low
 
 
-
 def median_rows(samples, confidence_level):
     """Distribution-free interval of the median of every row of `samples` (NaN when n < 6 at 95 %)."""
     groups, n = samples.shape
@@ -112,7 +108,6 @@ def median_rows(samples, confidence_level):
         return nan, nan.copy()
     ordered = np.sort(samples, axis=1)
     return ordered[:, ranks[0] - 1].copy(), ordered[:, ranks[1] - 1].copy()
-
 
 
 def cvar90_lower(samples, confidence_level):

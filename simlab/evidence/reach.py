@@ -427,7 +427,6 @@ def within_target_curves(traces, *, target, confidence_level=0.95):
     return _within_curves(frame, horizons(traces), target, confidence_level)
 
 
-
 def _within_curves(frame, horizons, target, confidence_level):
     """The `within_target_curves` table from a checked frame."""
     frame = frame.assign(within=frame["regret"] <= target)

@@ -61,7 +61,6 @@ def expected_min_drop(a, b) -> np.ndarray:
     return np.maximum(np.where(live, part, 0.0).sum(1), 0.0)
 
 
-
 def knowledge_gradient(post, P) -> np.ndarray:
     """Knowledge gradient of one more trial at each of the inputs P, over the discrete set P.
 
@@ -94,7 +93,6 @@ def knowledge_gradient(post, P) -> np.ndarray:
     var = np.maximum(np.diag(cov), 0.0)
     slopes = cov / np.sqrt(var + post.s2)[None, :]     # column j: sigma~(P, P_j)
     return expected_min_drop(np.broadcast_to(mu, (len(P), len(P))), slopes.T)
-
 
 
 class KnowledgeGradient(Acquisition):

@@ -18,7 +18,6 @@ def is_missing(value):
     return value is None or value is pd.NA or (isinstance(value, float) and math.isnan(value))
 
 
-
 def fmt_sig(value):
     """Three significant digits, plain decimals between 1e-4 and 1e6, a true minus sign."""
     v = float(value)
@@ -29,7 +28,6 @@ def fmt_sig(value):
     return "\u2212" + text[1:] if text.startswith("-") else text
 
 
-
 def fmt_pct(value):
     """A share as a percentage: whole percent, one decimal near 0 % and 100 %."""
     v = 100.0 * float(value)
@@ -38,10 +36,8 @@ def fmt_pct(value):
     return f"{v:.0f}"
 
 
-
 def fmt_int(value):
     return str(round(float(value)))
-
 
 
 def fmt_p(value):
@@ -49,9 +45,7 @@ def fmt_p(value):
     return compare.format_p(float(value))
 
 
-
 FORMATS = {"sig": fmt_sig, "pct": fmt_pct, "int": fmt_int, "p": fmt_p}
-
 
 
 class Cells:
@@ -106,10 +100,8 @@ class Cells:
         return f"{self.span(row, column, 'sig')} {interval}"
 
 
-
 def escape(text):
     return html.escape(str(text), quote=True)
-
 
 
 def number(value):

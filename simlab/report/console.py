@@ -16,17 +16,14 @@ def duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
-
 def pct_interval(value, low, high) -> str:
     """A share and its interval as the report prints them: ``86.5 % [74-94 %]``."""
     return f"{fmt_pct(value)} % [{fmt_pct(low)}-{fmt_pct(high)} %]"
 
 
-
 def budget_text(value, *, above: int) -> str:
     """A budget, or "> last simulated trial" where the curve never gets there."""
     return f">{above}" if pd.isna(value) else f"{int(value)}"
-
 
 
 def budget_table(study, summary) -> str:

@@ -33,7 +33,6 @@ def _question(study, success):
     )
 
 
-
 def _prior_rows(prior, study):
     ls = ", ".join(f"{escape(n)} {number(v)}" for n, v in zip(study.space.names, prior.lengthscale))
     return (
@@ -43,7 +42,6 @@ def _prior_rows(prior, study):
         f"<tr><th>mean</th><td>{number(prior.mean)}</td></tr>"
         f"<tr><th>observation noise sd</th><td>{number(prior.noise)}</td></tr>"
     )
-
 
 
 def _noise_words(w):
@@ -56,7 +54,6 @@ def _noise_words(w):
     if lost:
         words += f"; each trial is lost (budget spent, nothing observed) with probability {number(lost)}"
     return words
-
 
 
 def _world_section(study):
@@ -85,7 +82,6 @@ def _world_section(study):
                 "toward the budgets.</p>")
     return (f"<p>Each replicate's objective is a draw from this Gaussian-process prior, made with "
             f"{escape(how)}:</p><table class='kv'>{rows}</table>{past}")
-
 
 
 def _assumptions(study, version):
@@ -133,7 +129,6 @@ def _assumptions(study, version):
     )
 
 
-
 def _settings(spec):
     """A policy's settings that differ from the rule's defaults, e.g. ``width = 3``."""
     options = POLICIES[spec.rule].options
@@ -144,7 +139,6 @@ def _settings(spec):
         shown.append(f"{key} = {value:g}" if isinstance(value, (int, float)) and not isinstance(value, bool)
                      else f"{key} = {value}")
     return ", ".join(shown) or "defaults"
-
 
 
 def _limits(study):
@@ -177,14 +171,12 @@ def _limits(study):
     )
 
 
-
 def _noise_limit(w):
     if w.noise_kind == "gaussian" and not w.noise_growth:
         return ("<li><b>Noise is Gaussian with a fixed standard deviation.</b> Outliers, drift of equipment or "
                 "materials over the campaign, and noise that depends on the setting are not modelled.</li>")
     return (f"<li><b>The noise model is the one stated</b> ({_noise_words(w)}). Drift of equipment or "
             "materials over the campaign, and other noise shapes, are not modelled.</li>")
-
 
 
 def _cautions():

@@ -24,22 +24,17 @@ OKABE_ITO = (
 )
 
 
-
 # Beyond eight policies colours repeat; the repeat gets another line style.
 LINESTYLES = ("-", "--", "-.", ":")
-
 
 
 GREY = "#6b6b6b"
 
 
-
 DPI = 150
 
 
-
 Z95 = 1.959963984540054  # standard normal 97.5% quantile (common practice)
-
 
 
 # Regret is clipped at a floor on log axes (exact zeros are common: a policy that
@@ -48,13 +43,10 @@ Z95 = 1.959963984540054  # standard normal 97.5% quantile (common practice)
 FLOOR_BELOW_TARGET = 1e-3
 
 
-
 JITTER_SEED = 7
 
 
-
 KIND_WIDTH = 7.6  # inches; fits an A4 page with margins at 100 %
-
 
 
 # ---------------------------------------------------------------------------
@@ -81,16 +73,13 @@ def policy_colors(labels):
     return {label: OKABE_ITO[i % len(OKABE_ITO)] for i, label in enumerate(labels)}
 
 
-
 def linestyles(labels):
     return {str(label): LINESTYLES[(i // len(OKABE_ITO)) % len(LINESTYLES)] for i, label in enumerate(labels)}
-
 
 
 def display_label(label):
     """A label as matplotlib should draw it: a literal "$" must not start mathematics."""
     return str(label).replace("$", r"\$")
-
 
 
 def policy_ticks(axis, labels, colors, *, offset=0.0, fontsize=None):
@@ -102,7 +91,6 @@ def policy_ticks(axis, labels, colors, *, offset=0.0, fontsize=None):
             tick.set_fontsize(fontsize)
 
 
-
 @contextmanager
 def quiet_seaborn():
     """Silence deprecation notices raised by seaborn's own calls into matplotlib (not ours to fix)."""
@@ -112,17 +100,14 @@ def quiet_seaborn():
         yield
 
 
-
 def band_alpha(labels):
     """Fainter bands when many overlap, so that the lines stay readable."""
     return 0.14 if len(labels) <= 4 else 0.08
 
 
-
 def policies_in(frame, column="policy"):
     """Policy labels in order of first appearance (metrics tables keep study order)."""
     return [str(p) for p in pd.unique(frame[column].astype(str))]
-
 
 
 def colors_for(labels, colors):
@@ -132,7 +117,6 @@ def colors_for(labels, colors):
     if missing:
         raise ValueError(f"`colors` has no colour for policies {missing}")
     return colors
-
 
 
 def new_axes(ax, size):
@@ -150,7 +134,6 @@ def new_axes(ax, size):
     return fig, fig.add_subplot()
 
 
-
 def regret_floor(values, target):
     """Positive floor for log-scale regret axes."""
     if target > 0:
@@ -162,7 +145,6 @@ def regret_floor(values, target):
     return 10.0 ** np.floor(np.log10(positive.min()))
 
 
-
 def floor_note(floor, values):
     """Second line of a regret axis label; says so when values below the floor are drawn at it."""
     values = np.asarray(values, dtype=float)
@@ -171,13 +153,11 @@ def floor_note(floor, values):
     return "log scale"
 
 
-
 def legend_outside(ax, **kw):
     handles, labels = ax.get_legend_handles_labels()
     if handles:
         ax.legend(handles, labels, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False,
                   fontsize=9, **kw)
-
 
 
 def check_columns(frame, name, columns):
@@ -188,12 +168,10 @@ def check_columns(frame, name, columns):
         raise ValueError(f"`{name}` lacks column(s) {missing}; it has {list(frame.columns)}")
 
 
-
 def percent_axis(axis):
     from matplotlib.ticker import PercentFormatter
 
     axis.set_major_formatter(PercentFormatter(1.0, decimals=0))
-
 
 
 def save_figure(fig, folder, stem):

@@ -25,10 +25,8 @@ def toml_value(v) -> str:
     raise TypeError(f"cannot write {type(v).__name__} as TOML")
 
 
-
 def toml_key(k: str) -> str:
     return k if re.match(r"^[A-Za-z0-9_-]+$", k) else toml_value(k)
-
 
 
 def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_file: str | None = None) -> str:
@@ -71,12 +69,10 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
     return "\n".join(lines) + "\n"
 
 
-
 def _noise_lines(w: WorldSpec) -> list[str]:
     out = [f"noise_kind = {toml_value(w.noise_kind)}"]
     out += [f"{key} = {toml_value(value)}" for key, value in w.noise_settings]
     return out + [f"noise_growth = {w.noise_growth!r}", f"lost = {w.lost!r}"]
-
 
 
 def _prior_lines(p: Prior) -> list[str]:

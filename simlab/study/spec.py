@@ -178,8 +178,6 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
                  history=history, refit_every=refit_every, difference=difference, source=source)
 
 
-
-
 def _read_noise(r: "_Reader", wt: dict) -> dict:
     kind = r.choice(wt, "world.noise_kind", tuple(NOISE_SHAPES), default="gaussian")
     shape = NOISE_SHAPES[kind]

@@ -26,8 +26,6 @@ class StudyError(ValueError):
         super().__init__(f"{file}: {field}: {message}" if field else f"{file}: {message}")
 
 
-
-
 @dataclass(frozen=True)
 class Space:
     """The box of inputs in the user's units; maps to and from the unit cube."""
@@ -53,7 +51,6 @@ class Space:
         return np.asarray(self.low) + np.asarray(u, dtype=float) * self.width
 
 
-
 @dataclass(frozen=True)
 class Prior:
     """A Gaussian-process prior in the user's units and orientation."""
@@ -63,7 +60,6 @@ class Prior:
     amplitude: float
     mean: float
     noise: float
-
 
 
 @dataclass(frozen=True)
@@ -83,7 +79,6 @@ class WorldSpec:
     lost: float = 0.0                # probability that a trial is lost
 
 
-
 @dataclass(frozen=True)
 class HistorySpec:
     """Trials already run: campaigns start from them and worlds are conditioned on them."""
@@ -98,7 +93,6 @@ class HistorySpec:
         return len(self.y)
 
 
-
 @dataclass(frozen=True)
 class SweepSpec:
     """Belief misspecification grid: factors applied to the belief's lengthscales and amplitude."""
@@ -106,7 +100,6 @@ class SweepSpec:
     lengthscale: tuple[float, ...] = (0.25, 0.5, 1.0, 2.0, 4.0)
     amplitude: tuple[float, ...] = (0.25, 0.5, 1.0, 2.0, 4.0)
     replicates: int = 50
-
 
 
 @dataclass(frozen=True)
@@ -123,7 +116,6 @@ class CampaignSpec:
         return max(self.budgets)
 
 
-
 @dataclass(frozen=True)
 class PolicySpec:
     rule: str
@@ -133,7 +125,6 @@ class PolicySpec:
     @property
     def options(self) -> dict[str, Any]:
         return dict(self.settings)
-
 
 
 @dataclass(frozen=True)

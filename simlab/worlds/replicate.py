@@ -27,7 +27,6 @@ def unit_kernel(prior: Prior, study: Study):
     return make_kernel(prior.kernel, np.asarray(prior.lengthscale) / study.space.width, prior.amplitude)
 
 
-
 def make_world(study: Study, replicate: int) -> World:
     """The replicate's true objective (internal orientation, unit cube)."""
     w = study.world
@@ -45,13 +44,11 @@ def make_world(study: Study, replicate: int) -> World:
     return world
 
 
-
 def history_arrays(study: Study) -> tuple[np.ndarray, np.ndarray] | None:
     """Past trials on the unit cube and in the internal orientation, or None."""
     if study.history is None:
         return None
     return study.space.to_unit(np.array(study.history.X)), study.sign * np.array(study.history.y)
-
 
 
 def _uncertain(kernel, w, rng):
@@ -66,12 +63,10 @@ def _uncertain(kernel, w, rng):
     return type(kernel)(ls, amp)
 
 
-
 def _sobol(d: int, n: int, rng) -> np.ndarray:
     # Draw a power of two and keep the first n points: prefixes of a scrambled Sobol'
     # sequence keep their low discrepancy and this avoids SciPy's balance warning.
     return qmc.Sobol(d, seed=rng).random_base2(max(int(np.ceil(np.log2(max(n, 2)))), 1))[:n]
-
 
 
 @dataclass
@@ -87,7 +82,6 @@ class Replicate:
     lost: np.ndarray        # (B,) bool: the trial is lost
     pool: np.ndarray        # (m, d)
     optimum_gap: float = 0.0   # |first search - second search| >= 0, objective units
-
 
 
 def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float, float]:
@@ -107,14 +101,12 @@ def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float
     return u, v, abs(v1 - v2)
 
 
-
 def make_observer(study: Study) -> Observer:
     """The study's observation model (noise shape, growth, lost trials)."""
     w = study.world
     ref = w.prior if w.prior is not None else study.belief
     return Observer(sd=w.noise, kind=w.noise_kind, settings=w.noise_settings, growth=w.noise_growth,
                     center=ref.mean, scale=ref.amplitude, lost=w.lost, sign=study.sign)
-
 
 
 def make_replicate(study: Study, r: int) -> Replicate:
