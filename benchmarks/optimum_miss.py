@@ -23,6 +23,7 @@ previous   the search simlab used before issue 11 (kept verbatim below).
 main       the first scaled search of issue 11 (float32 ranking of the full world at every
            step; kept verbatim below), for a side-by-side view of the last change.
 current    ``World.optimum`` as simlab has it now.
+pair       the better of two independent current searches, as ``runner.world_optimum`` uses.
 
 miss = searched value - best known value (>= 0, in units of the amplitude), and the cost per
 world (seconds, one thread). Prints the worst miss and the median cost per (inputs, kernel)
@@ -204,16 +205,44 @@ def current(world, rng):
     return world.optimum(rng)
 
 
+def pair(world, rng):
+    """What simlab's regret uses (runner.world_optimum): the better of two independent searches."""
+    u1, v1 = world.optimum(rng)
+    u2, v2 = world.optimum(np.random.default_rng(rng.integers(2**63)))
+    return (u1, v1) if v1 <= v2 else (u2, v2)
+
+
 def timed(fn, world, rng):
     t0 = time.perf_counter()
     u, v = fn(world, rng)
     return float(v), time.perf_counter() - t0
 
 
-METHODS = {"previous": previous, "main": main_search, "current": current}
+METHODS = {"previous": previous, "main": main_search, "current": current, "pair": pair}
 
 
 # --------------------------------------------------------------------------- driver
+def common_case(n: int = 12) -> None:
+    """Cost of main's search and the current one on the worlds the configs use, interleaved."""
+    print("# common case: lengthscales log-uniform in 0.13-0.6 of the range; median seconds per world, one thread")
+    for d in (2, 4):
+        for kernel in ("matern52", "sqexp"):
+            t = {"main": [], "current": []}
+            values = {"main": [], "current": []}
+            for i in range(n):
+                rng = np.random.default_rng([SEED + 3, d, KERNEL_NAMES.index(kernel), i])
+                world = FeatureWorld(KERNELS[kernel](np.exp(rng.uniform(np.log(0.13), np.log(0.6), d)), 1.0), 0.0, rng)
+                for name in (("main", "current") if i % 2 == 0 else ("current", "main")):
+                    v, sec = timed(METHODS[name], world, np.random.default_rng([SEED + 4, d, i]))
+                    t[name].append(sec)
+                    values[name].append(v)
+            gap = np.max(np.abs(np.subtract(values["main"], values["current"])))
+            m, c = np.median(t["main"]), np.median(t["current"])
+            print(f"d={d} {kernel:9s} main {m:.3f} s | current {c:.3f} s | ratio current/main {c / m:.2f} "
+                  f"| median of per-world ratios {np.median(np.divide(t['current'], t['main'])):.2f} "
+                  f"| largest value difference {gap:.1e}", flush=True)
+
+
 def load_cache(path: Path) -> dict:
     out = {}
     if path.is_file():
@@ -235,7 +264,12 @@ def main() -> None:
     ap.add_argument("--rows", type=Path, help="append every measured world here (JSON lines)")
     ap.add_argument("--cached-only", action="store_true", help="skip worlds whose reference is not cached yet")
     ap.add_argument("--reference-only", action="store_true", help="only compute and store the references")
+    ap.add_argument("--common", action="store_true", help="only time main's and the current search on the configs' lengthscales")
     args = ap.parse_args()
+    if args.common:
+        with threadpool_limits(1):
+            common_case()
+        return
 
     cache = load_cache(args.cache)
     print(f"# {platform.processor() or platform.machine()}, numpy {np.__version__}, one BLAS thread")

@@ -67,6 +67,7 @@ class SearchPlan:
     half: np.ndarray         # (d,) half-width of the first zoom box, per input
     separation: np.ndarray   # (d,) starts differ by more than this in some input
     descend: int = 0         # with band values: descend from this many points per start, add their best
+    banded: bool = False     # rank on band values (the part each box resolves) where the world has them
 
 
 # Search sizes (measured by benchmarks/optimum_miss.py: 30 worlds per kernel in 1, 2, 4 and
@@ -110,8 +111,11 @@ def search_plan(dim: int, lengthscale=None, nu: float = np.inf) -> SearchPlan:
     n_polish = (8 + 4 * dim) * (2 if nu <= 0.5 else 1)
     zoom, zoom_points = (14, 256) if nu <= 0.5 else (14, 128) if nu <= 1.5 else (8, 64)
     descend = 8 if 0.5 < nu <= 1.5 else 0
+    # In 1 or 2 inputs the Sobol' points resolve even the fine features, and ranking on the smooth
+    # part only cost misses (2-D Matern 1/2: 3 of 10 worlds, by up to 0.025); in 4 and 6 inputs
+    # they are coarser than the lengthscale, and it missed less (benchmarks/optimum_miss.py).
     return SearchPlan(n_search=n_search, n_polish=n_polish, zoom=zoom, zoom_points=zoom_points, half=0.5 * ls,
-                      separation=0.5 * ls, descend=descend)
+                      separation=0.5 * ls, descend=descend, banded=dim >= 4)
 
 
 def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, rank=None,
@@ -139,7 +143,8 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
         ``band(U, cutoff)`` gives ranking values of the function's components of frequency
         norm at most ``cutoff`` only (the function seen at a coarser resolution), and
         ``band(U, cutoff, grad=True)`` values and gradients; e.g. a random-feature world's
-        :meth:`FeatureWorld.band_values`. Without it every ranking uses ``rank``.
+        :meth:`FeatureWorld.band_values`. Used where ``plan.banded``; otherwise every
+        ranking uses ``rank``.
 
     Returns
     -------
@@ -149,6 +154,8 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
 
     Notes
     -----
+    (``band`` in steps 1-2 only where ``plan.banded``: 4 or more inputs by default.)
+
     1. ``plan.n_search`` scrambled Sobol' points, plus any ``extra`` points, are ranked; the
        ``2 n_polish`` best in distinct basins (:func:`simlab.optimize.separated_best`) are
        kept as starts. With ``band`` and ``plan.descend``, as many more starts come from
@@ -175,6 +182,7 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     """
     plan = plan or search_plan(dim, lengthscale, nu)
     rank = rank or f
+    band = band if plan.banded else None
 
     def rank_at(U, half):
         # the function as resolved at a box of this half-width (all of it without ``band``)
