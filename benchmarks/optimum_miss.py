@@ -20,7 +20,10 @@ reference  an independent thorough search, sharing no code with ``simlab.worlds.
            around the 8 best, polished again (the fine wiggles of rough worlds).
            The reference value is the best of all of it *and* of the searches being measured.
 previous   the search simlab used before issue 11 (kept verbatim below).
+main       the first scaled search of issue 11 (float32 ranking of the full world at every
+           step; kept verbatim below), for a side-by-side view of the last change.
 current    ``World.optimum`` as simlab has it now.
+pair       the better of two independent current searches, as ``runner.world_optimum`` uses.
 
 miss = searched value - best known value (>= 0, in units of the amplitude), and the cost per
 world (seconds, one thread). Prints the worst miss and the median cost per (inputs, kernel)
@@ -41,7 +44,7 @@ from scipy.stats import qmc
 from threadpoolctl import threadpool_limits
 
 from simlab.model.kernels import KERNELS
-from simlab.model.optimize import distinct_best, polish
+from simlab.model.optimize import distinct_best, polish, separated_best
 from simlab.worlds.draws import FeatureWorld
 
 HARD = {1: (0.03, 0.1), 2: (0.05, 0.15), 4: (0.1, 0.2), 6: (0.15, 0.25)}
@@ -160,6 +163,40 @@ def previous_find_minimum(f, fg, dim, rng, *, n_search=None, n_polish=8, extra=N
     return Up[best], float(vp[best])
 
 
+def main_find_minimum(f, fg, dim, rng, *, lengthscale, nu, rank):
+    """simlab.worlds.draws.search_plan + find_minimum as merged for issue 11 (verbatim, before band ranking)."""
+    ls = np.minimum(np.asarray(lengthscale, dtype=float), 1.0)
+    want = 64 * {0.5: 4.0, 1.5: 2.0}.get(float(nu), 1.0) * float(np.prod(1.0 / ls))
+    n_search = 2 ** int(np.ceil(np.log2(np.clip(want, 2**12, 2**18))))
+    n_polish = (8 + 4 * dim) * (2 if nu <= 0.5 else 1)
+    zoom, zoom_points = (14, 256) if nu <= 0.5 else (14, 128) if nu <= 1.5 else (8, 64)
+    half, separation = 0.5 * ls, 0.5 * ls
+    U = qmc.Sobol(dim, seed=rng).random_base2(int(np.log2(n_search)))
+    v = rank(U)
+    starts = U[separated_best(U, v, 2 * n_polish, separation)].copy()
+    best_v = rank(starts)
+    half = half.copy()
+    for _ in range(zoom):
+        cand = starts[:, None, :] + half * (2.0 * rng.random((len(starts), zoom_points, dim)) - 1.0)
+        cand = np.clip(cand, 0.0, 1.0)
+        vc = rank(cand.reshape(-1, dim)).reshape(len(starts), zoom_points)
+        j = np.argmin(vc, axis=1)
+        better = vc[np.arange(len(starts)), j] < best_v
+        starts[better] = cand[better, j[better]]
+        best_v[better] = vc[better, j[better]]
+        half /= 2.0
+    exact = f(starts)
+    keep = np.argsort(exact, kind="stable")[:n_polish]
+    Up, vp = polish(fg, starts[keep], maxiter=500)
+    best = int(np.argmin(vp))
+    return Up[best], float(vp[best])
+
+
+def main_search(world, rng):
+    ls, nu = world.roughness()
+    return main_find_minimum(world, world.value_grad, world.dim, rng, lengthscale=ls, nu=nu, rank=world.rank_values)
+
+
 def previous(world, rng):
     return previous_find_minimum(world, world.value_grad, world.dim, rng)
 
@@ -168,13 +205,44 @@ def current(world, rng):
     return world.optimum(rng)
 
 
+def pair(world, rng):
+    """What simlab's regret uses (runner.world_optimum): the better of two independent searches."""
+    u1, v1 = world.optimum(rng)
+    u2, v2 = world.optimum(np.random.default_rng(rng.integers(2**63)))
+    return (u1, v1) if v1 <= v2 else (u2, v2)
+
+
 def timed(fn, world, rng):
     t0 = time.perf_counter()
     u, v = fn(world, rng)
     return float(v), time.perf_counter() - t0
 
 
+METHODS = {"previous": previous, "main": main_search, "current": current, "pair": pair}
+
+
 # --------------------------------------------------------------------------- driver
+def common_case(n: int = 12) -> None:
+    """Cost of main's search and the current one on the worlds the configs use, interleaved."""
+    print("# common case: lengthscales log-uniform in 0.13-0.6 of the range; median seconds per world, one thread")
+    for d in (2, 4):
+        for kernel in ("matern52", "sqexp"):
+            t = {"main": [], "current": []}
+            values = {"main": [], "current": []}
+            for i in range(n):
+                rng = np.random.default_rng([SEED + 3, d, KERNEL_NAMES.index(kernel), i])
+                world = FeatureWorld(KERNELS[kernel](np.exp(rng.uniform(np.log(0.13), np.log(0.6), d)), 1.0), 0.0, rng)
+                for name in (("main", "current") if i % 2 == 0 else ("current", "main")):
+                    v, sec = timed(METHODS[name], world, np.random.default_rng([SEED + 4, d, i]))
+                    t[name].append(sec)
+                    values[name].append(v)
+            gap = np.max(np.abs(np.subtract(values["main"], values["current"])))
+            m, c = np.median(t["main"]), np.median(t["current"])
+            print(f"d={d} {kernel:9s} main {m:.3f} s | current {c:.3f} s | ratio current/main {c / m:.2f} "
+                  f"| median of per-world ratios {np.median(np.divide(t['current'], t['main'])):.2f} "
+                  f"| largest value difference {gap:.1e}", flush=True)
+
+
 def load_cache(path: Path) -> dict:
     out = {}
     if path.is_file():
@@ -191,9 +259,17 @@ def main() -> None:
     ap.add_argument("--kernels", nargs="+", default=list(KERNEL_NAMES))
     ap.add_argument("--cache", type=Path, default=Path("/tmp/optimum-miss-reference.jsonl"),
                     help="reference values are stored here and reused (JSON lines)")
-    ap.add_argument("--skip-previous", action="store_true", help="measure the current search only")
+    ap.add_argument("--methods", nargs="+", default=list(METHODS), choices=list(METHODS),
+                    help="searches to measure (the reference is always used)")
+    ap.add_argument("--rows", type=Path, help="append every measured world here (JSON lines)")
+    ap.add_argument("--cached-only", action="store_true", help="skip worlds whose reference is not cached yet")
     ap.add_argument("--reference-only", action="store_true", help="only compute and store the references")
+    ap.add_argument("--common", action="store_true", help="only time main's and the current search on the configs' lengthscales")
     args = ap.parse_args()
+    if args.common:
+        with threadpool_limits(1):
+            common_case()
+        return
 
     cache = load_cache(args.cache)
     print(f"# {platform.processor() or platform.machine()}, numpy {np.__version__}, one BLAS thread")
@@ -205,6 +281,8 @@ def main() -> None:
                 for i in range(args.worlds):
                     world = make_world(d, kernel, i)
                     key = (d, kernel, i)
+                    if key not in cache and args.cached_only:
+                        continue
                     if key not in cache:
                         t0 = time.perf_counter()
                         _, vref = reference(world, d, np.random.default_rng([SEED + 1, d, i]))
@@ -216,26 +294,28 @@ def main() -> None:
                         continue
                     row = {"d": d, "kernel": kernel, "i": i, "ref": cache[key]["ref"],
                            "ref_seconds": cache[key]["seconds"]}
-                    for name, fn in (("previous", previous), ("current", current)):
-                        if name == "previous" and args.skip_previous:
-                            continue
+                    for name in args.methods:
+                        fn = METHODS[name]
                         row[name], row[name + "_seconds"] = timed(fn, world, np.random.default_rng([SEED + 2, d, i]))
                     rows.append(row)
-                if rows:
+                    if args.rows:
+                        with args.rows.open("a") as fh:
+                            fh.write(json.dumps(row) + "\n")
+                if any(r["d"] == d and r["kernel"] == kernel for r in rows):
                     report_cell(rows, d, kernel)
     if rows:
         report_dims(rows)
 
 
 def _misses(rows, name):
-    best = np.array([min(r["ref"], *(r[k] for k in ("previous", "current") if k in r)) for r in rows])
+    best = np.array([min(r["ref"], *(r[k] for k in METHODS if k in r)) for r in rows])
     return np.array([r[name] for r in rows]) - best
 
 
 def report_cell(rows, d, kernel):
     cell = [r for r in rows if r["d"] == d and r["kernel"] == kernel]
     parts = [f"d={d} {kernel:9s} n={len(cell):3d}"]
-    for name in ("previous", "current"):
+    for name in METHODS:
         if name in cell[0]:
             m = _misses(cell, name)
             cost = np.median([r[name + "_seconds"] for r in cell])
@@ -250,7 +330,7 @@ def report_dims(rows):
     for d in sorted({r["d"] for r in rows}):
         cell = [r for r in rows if r["d"] == d]
         line = [f"d={d} ({len(cell)} worlds)"]
-        for name in ("previous", "current"):
+        for name in METHODS:
             if name in cell[0]:
                 line.append(f"{name}: {_misses(cell, name).max():.2e}, "
                             f"{np.median([r[name + '_seconds'] for r in cell]):.3f} s")

@@ -35,11 +35,20 @@ def separated_best(U, values, k: int, scale) -> np.ndarray:
     head = np.argpartition(values, m - 1)[:m] if m < len(values) else np.arange(len(values))
     head = head[np.argsort(values[head], kind="stable")]
     chosen: list[int] = []
-    for i in head:
-        if not chosen or np.all(np.max(np.abs(U[chosen] - U[i]) / scale, axis=1) > 1.0):
-            chosen.append(int(i))
-            if len(chosen) == k:
-                return np.asarray(chosen, dtype=int)
+    # Blocks of candidates are first screened against every point already taken in one
+    # array operation; only the survivors are checked one by one (against the points taken
+    # within the block). The result is the one-at-a-time greedy choice.
+    for a in range(0, len(head), 256):
+        block = head[a:a + 256]
+        if chosen:
+            far = np.max(np.abs(U[block][:, None, :] - U[chosen][None, :, :]) / scale, axis=2) > 1.0
+            block = block[far.all(axis=1)]
+        first = len(chosen)
+        for i in block:
+            if len(chosen) == first or np.all(np.max(np.abs(U[chosen[first:]] - U[i]) / scale, axis=1) > 1.0):
+                chosen.append(int(i))
+                if len(chosen) == k:
+                    return np.asarray(chosen, dtype=int)
     for i in head:
         if len(chosen) == k:
             break

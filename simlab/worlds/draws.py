@@ -45,11 +45,16 @@ class World:
         """Values good enough to rank candidates (default: the exact values)."""
         return self(U)
 
+    # Optional ``band_values(U, cutoff)``: ranking values of the world with only its components of
+    # frequency norm at most ``cutoff`` (the world seen at a coarser resolution); None if it has none.
+    band_values = None
+
     def optimum(self, rng: np.random.Generator) -> tuple[np.ndarray, float]:
         """The minimiser (d,) and minimum: see :func:`find_minimum`."""
         rough = self.roughness()
         ls, nu = rough if rough is not None else (None, np.inf)
-        return find_minimum(self, self.value_grad, self.dim, rng, lengthscale=ls, nu=nu, rank=self.rank_values)
+        return find_minimum(self, self.value_grad, self.dim, rng, lengthscale=ls, nu=nu, rank=self.rank_values,
+                            band=self.band_values)
 
 
 @dataclass(frozen=True)
@@ -62,6 +67,8 @@ class SearchPlan:
     zoom_points: int         # uniform points per start and round
     half: np.ndarray         # (d,) half-width of the first zoom box, per input
     separation: np.ndarray   # (d,) starts differ by more than this in some input
+    descend: int = 0         # with band values: descend from this many points per start, add their best
+    banded: bool = False     # rank on band values (the part each box resolves) where the world has them
 
 
 # Search sizes (measured by benchmarks/optimum_miss.py: 30 worlds per kernel in 1, 2, 4 and
@@ -69,6 +76,9 @@ class SearchPlan:
 _POINTS_PER_CELL = 64        # Sobol' points per lengthscale cell, before the roughness factor
 _MIN_SEARCH, _MAX_SEARCH = 2**12, 2**18
 _ROUGH = {0.5: 4.0, 1.5: 2.0}   # more points for rough kernels (Matern 1/2, 3/2)
+# With ``band``, a ranking step sees the components of frequency norm up to this many radians per
+# half-width of its box (tried 1, 2, 3, 6 and 10 on 4-D and 6-D Matern 1/2 and 3/2 worlds: 3 missed least).
+_BAND_RADIANS = 3.0
 
 
 def search_plan(dim: int, lengthscale=None, nu: float = np.inf) -> SearchPlan:
@@ -101,12 +111,16 @@ def search_plan(dim: int, lengthscale=None, nu: float = np.inf) -> SearchPlan:
     n_search = 2 ** int(np.ceil(np.log2(np.clip(want, _MIN_SEARCH, _MAX_SEARCH))))
     n_polish = (8 + 4 * dim) * (2 if nu <= 0.5 else 1)
     zoom, zoom_points = (14, 256) if nu <= 0.5 else (14, 128) if nu <= 1.5 else (8, 64)
+    descend = 8 if 0.5 < nu <= 1.5 else 0
+    # In 1 or 2 inputs the Sobol' points resolve even the fine features, and ranking on the smooth
+    # part only cost misses (2-D Matern 1/2: 3 of 10 worlds, by up to 0.025); in 4 and 6 inputs
+    # they are coarser than the lengthscale, and it missed less (benchmarks/optimum_miss.py).
     return SearchPlan(n_search=n_search, n_polish=n_polish, zoom=zoom, zoom_points=zoom_points, half=0.5 * ls,
-                      separation=0.5 * ls)
+                      separation=0.5 * ls, descend=descend, banded=dim >= 4)
 
 
 def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, rank=None,
-                 plan: SearchPlan | None = None, extra=None) -> tuple[np.ndarray, float]:
+                 plan: SearchPlan | None = None, extra=None, band=None) -> tuple[np.ndarray, float]:
     """Global minimum of a function on [0, 1]^dim.
 
     Parameters
@@ -126,6 +140,12 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
         Overrides :func:`search_plan`.
     extra : ndarray of shape (k, dim), optional
         More points to rank (e.g. a grid world's own grid).
+    band : callable, optional
+        ``band(U, cutoff)`` gives ranking values of the function's components of frequency
+        norm at most ``cutoff`` only (the function seen at a coarser resolution), and
+        ``band(U, cutoff, grad=True)`` values and gradients; e.g. a random-feature world's
+        :meth:`FeatureWorld.band_values`. Used where ``plan.banded``; otherwise every
+        ranking uses ``rank``.
 
     Returns
     -------
@@ -135,12 +155,20 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
 
     Notes
     -----
-    1. ``plan.n_search`` scrambled Sobol' points, plus any ``extra`` points, are ranked.
-    2. The ``2 n_polish`` best in distinct basins (:func:`simlab.model.optimize.separated_best`)
-       start ``plan.zoom`` rounds of ``plan.zoom_points`` uniform points in a box around each
-       start that halves every round: a derivative-free local search for rough worlds
-       (Matern 1/2) where gradients say little, each start moving to the best point found.
-    3. The ``n_polish`` best, by their float64 values, are polished with L-BFGS-B.
+    (``band`` in steps 1-2 only where ``plan.banded``: 4 or more inputs by default.)
+
+    1. ``plan.n_search`` scrambled Sobol' points, plus any ``extra`` points, are ranked; the
+       ``2 n_polish`` best in distinct basins (:func:`simlab.model.optimize.separated_best`) are
+       kept as starts. With ``band`` and ``plan.descend``, as many more starts come from
+       ``descend`` times as many good points after 24 normalised gradient steps on the
+       smooth part, so that basins compete by (nearly) their floors.
+    2. Every start runs ``plan.zoom`` rounds of ``plan.zoom_points`` uniform points in a box
+       around it that halves every round, moving to the best point found: a derivative-free
+       local search for rough worlds, where gradients say little. With ``band``, each ranking
+       sees only the components that turn by at most 3 radians across the box's half-width:
+       a coarse box is not misled by wiggles far finer than itself (the fine features of
+       rough kernels), and the last rounds see the whole function.
+    3. The ``n_polish`` best starts, by their float64 values, are polished with L-BFGS-B.
 
     A missed optimum makes regret too *small*: the reference f* is too high, so every
     recommendation looks closer to it than it is. simlab measures regret against the
@@ -148,20 +176,38 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     evaluated on the replicate; a campaign that found a better point than the search
     then has regret 0 there, but a policy that never went near the missed optimum still
     has its regret understated, by an amount that depends on which other policies ran.
+    The search is a heuristic, not a certificate: ``benchmarks/optimum_miss.py`` measures
+    its miss. Matern 1/2 random-feature worlds in 4 or more inputs with lengthscales near
+    0.1-0.2 of the range are still missed by up to about 0.05-0.15 x amplitude on a few
+    worlds in ten (their optimum is where a handful of very high-frequency features line up).
     """
     plan = plan or search_plan(dim, lengthscale, nu)
     rank = rank or f
+    band = band if plan.banded else None
+
+    def rank_at(U, half):
+        # the function as resolved at a box of this half-width (all of it without ``band``)
+        return rank(U) if band is None else band(U, _BAND_RADIANS / float(np.min(half)))
+
     U = qmc.Sobol(dim, seed=rng).random_base2(int(np.log2(plan.n_search)))
     if extra is not None:
         U = np.vstack([U, extra])
-    v = rank(U)
-    starts = U[separated_best(U, v, 2 * plan.n_polish, plan.separation)].copy()
-    best_v = rank(starts)
     half = plan.half.copy()
-    for _ in range(plan.zoom):
+    v = rank_at(U, half)
+    starts = U[separated_best(U, v, 2 * plan.n_polish, plan.separation)].copy()
+    if band is not None and plan.descend > 0:
+        # More starts: descend from many good points on the smooth part, so that basins are
+        # ranked by (nearly) their floors rather than by wherever a sample fell in them.
+        head = separated_best(U, v, plan.descend * 2 * plan.n_polish, 0.5 * plan.separation)
+        X, vx = _descend(band, U[head], _BAND_RADIANS / float(np.min(half)), plan.half)
+        starts = np.vstack([starts, X[separated_best(X, vx, 2 * plan.n_polish, plan.separation)]])
+    best_v = rank_at(starts, half)
+    for r in range(plan.zoom):
+        if band is not None and r > 0:
+            best_v = rank_at(starts, half)        # the starts seen at the finer resolution
         cand = starts[:, None, :] + half * (2.0 * rng.random((len(starts), plan.zoom_points, dim)) - 1.0)
         cand = np.clip(cand, 0.0, 1.0)
-        vc = rank(cand.reshape(-1, dim)).reshape(len(starts), plan.zoom_points)
+        vc = rank_at(cand.reshape(-1, dim), half).reshape(len(starts), plan.zoom_points)
         j = np.argmin(vc, axis=1)
         better = vc[np.arange(len(starts)), j] < best_v
         starts[better] = cand[better, j[better]]
@@ -172,6 +218,30 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     Up, vp = polish(fg, starts[keep], maxiter=500)
     best = int(np.argmin(vp))
     return Up[best], float(vp[best])
+
+
+_DESCEND_STEPS = 24
+
+
+def _descend(band, X, cutoff, scale):
+    """Normalised gradient steps (in units of ``scale`` per input) on ``band(., cutoff)``.
+
+    Each point steps along its preconditioned steepest-descent direction; a step that lowers
+    the value is taken and the next one is 1.5 times longer, one that does not is not taken
+    and the next is 0.3 times as long (common practice for adaptive step sizes).
+    """
+    x = np.array(X, dtype=float)
+    v, g = band(x, cutoff, grad=True)
+    step = np.full(len(x), 0.2)
+    for _ in range(_DESCEND_STEPS):
+        p = g * scale
+        p /= np.maximum(np.linalg.norm(p, axis=1), 1e-300)[:, None]
+        trial = np.clip(x - step[:, None] * p * scale, 0.0, 1.0)
+        vt, gt = band(trial, cutoff, grad=True)
+        ok = vt < v
+        x[ok], v[ok], g[ok] = trial[ok], vt[ok], gt[ok]
+        step = np.where(ok, 1.5 * step, 0.3 * step)
+    return x, v
 
 
 class FeatureSample:
@@ -234,28 +304,44 @@ class FeatureSample:
         P = np.atleast_2d(U) @ self.omega.T - phase
         return (-self.scale * amp * np.sin(P)) @ self.omega
 
-    def values32(self, U, *, chunk: int = 512) -> np.ndarray:
+    def values32(self, U, *, chunk: int = 512, below: float = np.inf, grad: bool = False):
         """Values in float32 arithmetic (returned as float64), for ranking many candidates.
 
         NumPy's float32 cosine is vectorised and about 12-19 times faster here than the
         float64 one; the result is off by about 1e-6 of the amplitude (rounding of the
         phases and of the sum), which is plenty to rank candidates that float64 then polishes.
         Chunks of 512 inputs keep the (chunk, F) phase matrix in cache: 2.5 times faster than
-        chunks of 4096 here.
+        chunks of 4096 here. ``below``: only the features whose frequency norm ``|omega_j|``
+        is at most this (the draw seen at a coarser resolution; fewer features, cheaper).
+        ``grad``: also the gradients (n, d), in the same arithmetic.
         """
         amp, phase = self.polar()
         if getattr(self, "_f32_of", None) is not self.w:
-            self._f32 = (self.omega.T.astype(np.float32), phase.astype(np.float32), amp.astype(np.float32))
+            order = np.argsort(self.frequency_norms(), kind="stable")
+            self._f32 = (self.omega[order].astype(np.float32), phase[order].astype(np.float32),
+                         amp[order].astype(np.float32), self.frequency_norms()[order])
             self._f32_of = self.w
-        omega_t, ph, am = self._f32
+        omega, ph, am, norms = self._f32
+        k = len(norms) if below >= norms[-1] else int(np.searchsorted(norms, below, side="right"))
+        omega, ph, am = omega[:k], ph[:k], am[:k]
         U = np.atleast_2d(U)
         out = np.empty(len(U))
+        G = np.empty(U.shape) if grad else None
         for a in range(0, len(U), chunk):
-            P = U[a:a + chunk].astype(np.float32) @ omega_t
+            P = U[a:a + chunk].astype(np.float32) @ omega.T
             P -= ph
+            if grad:
+                S = np.sin(P)
+                S *= am
+                G[a:a + chunk] = -self.scale * (S @ omega)
             np.cos(P, out=P)
             out[a:a + chunk] = P @ am
-        return self.mean + self.scale * out
+        values = self.mean + self.scale * out
+        return (values, G) if grad else values
+
+    def frequency_norms(self) -> np.ndarray:
+        """``|omega_j|`` of every feature, shape (F,)."""
+        return np.linalg.norm(self.omega, axis=1)
 
 
 def feature_values(omega, amp, phase, scale, mean, U) -> np.ndarray:
@@ -317,6 +403,9 @@ class FeatureWorld(World):
 
     def rank_values(self, U):
         return self.sample.values32(U)
+
+    def band_values(self, U, cutoff, grad=False):
+        return self.sample.values32(U, below=cutoff, grad=grad)
 
 
 class GridWorld(World):
@@ -438,6 +527,20 @@ class ConditionedWorld(World):
     def rank_values(self, U):
         U = np.atleast_2d(U)
         return self.base.rank_values(U) + self.kernel(U, self.H) @ self.beta
+
+    @property
+    def band_values(self):
+        if self.base.band_values is None:
+            return None
+        def band(U, cutoff, grad=False):
+            # The base at the coarser resolution; the correction to the past trials in full.
+            U = np.atleast_2d(U)
+            if not grad:
+                return self.base.band_values(U, cutoff) + self.kernel(U, self.H) @ self.beta
+            v, g = self.base.band_values(U, cutoff, grad=True)
+            return (v + self.kernel(U, self.H) @ self.beta,
+                    g + np.einsum("qnd,n->qd", self.kernel.grad(U, self.H), self.beta))
+        return band
 
     def optimum(self, rng):
         if isinstance(self.base, GridWorld):
