@@ -6,7 +6,7 @@ resolved study; nothing here knows a default."""
 from __future__ import annotations
 
 from ..model.kernels import KERNELS
-from ..policies import POLICIES
+from ..policies import POLICIES, Policy
 from ..worlds.kinds import WORLD_KINDS
 from ..worlds.noise import NOISE_SHAPES
 from .cells import escape, fmt_pct, number
@@ -140,9 +140,9 @@ def _settings(spec):
     options = POLICIES[spec.rule].options
     if not spec.settings:
         return "none (the rule has no settings)"
-    # the rule's own settings first, then those every rule of its kind shares (fill, lie, ...)
-    rule = POLICIES[spec.rule]
-    shared = {key for base in rule.__mro__[1:] for key in getattr(base, "options", {})}
+    # the rule's own settings first, then those every acquisition has (fill, lie, exploit_last: policies/base.py)
+    shared = {key for base in POLICIES[spec.rule].__mro__[1:] if base.__module__ == Policy.__module__
+              for key in getattr(base, "options", {})}
     ordered = sorted(spec.settings, key=lambda item: item[0] in shared)
     shown = []
     for key, value in ordered:
