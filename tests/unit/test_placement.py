@@ -140,3 +140,13 @@ def test_a_sentence_only_past_a_third_of_the_trials_on_the_boundary():
     sentence = page[page.index('id="boundary-heavy"'):]
     assert ">P0<" in sentence and ">P1<" not in sentence
     assert 'id="boundary-heavy"' not in _page([0.2, 100 / 300])   # control: nobody past a third
+
+
+def test_placement_files_are_simlabs_own_for_fresh():
+    """--fresh may delete placement.csv and the placement figures, and nothing of the same stem elsewhere."""
+    from simlab.replay.store import _own_names
+
+    files, folders = _own_names()
+    assert PLACEMENT in files
+    assert folders["figures"]("placement.png") and folders["figures"]("placement.svg")
+    assert not folders["figures"]("placement.pdf")            # control: only the formats simlab writes
