@@ -444,6 +444,8 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
     from matplotlib.figure import Figure
     from matplotlib.ticker import MaxNLocator
 
+    from .cells import fmt_pct
+
     check_columns(trials, "trials", ["policy", *names])
     labels = policies_in(trials)
     colors = colors_for(labels, colors)
@@ -463,7 +465,8 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
             heights, edges = np.histogram(x, bins=bins, range=(lo, hi))
             ax.bar(edges[:-1], heights / n, width=np.diff(edges), align="edge", color=colors[label], alpha=0.45,
                    edgecolor=colors[label], linewidth=0.8)
-            ends = [np.count_nonzero(x <= lo + width) / n, np.count_nonzero(x >= hi - width) / n]
+            reach = width * (1 + 1e-9)   # the allowance of simlab.evidence.placement.edge_flags for rounding
+            ends = [np.count_nonzero(x - lo <= reach) / n, np.count_nonzero(hi - x <= reach) / n]
             ax.bar([lo, hi - width], ends, width=width, align="edge", color="#000000", linewidth=0,
                    gid=f"band:{label}:{name}")
             top = max(top, float(heights.max(initial=0)) / n, *ends)
@@ -478,8 +481,8 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
             row = placement[placement["policy"].astype(str) == label]
             if len(row):
                 r = row.iloc[0]
-                axes[i, -1].text(0.5, 0.95, f"boundary {100 * r['boundary_share']:.0f} %, "
-                                 f"corners {100 * r['corner_share']:.0f} %", transform=axes[i, -1].transAxes,
+                axes[i, -1].text(0.5, 0.95, f"boundary {fmt_pct(r['boundary_share'])} %, "
+                                 f"corners {fmt_pct(r['corner_share'])} %", transform=axes[i, -1].transAxes,
                                  ha="center", va="top", fontsize=8)
     axes[0, 0].set_ylim(0, 1.15 * top if top > 0 else 1.0)
     for ax in axes.flat:

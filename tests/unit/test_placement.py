@@ -150,3 +150,22 @@ def test_placement_files_are_simlabs_own_for_fresh():
     assert PLACEMENT in files
     assert folders["figures"]("placement.png") and folders["figures"]("placement.svg")
     assert not folders["figures"]("placement.pdf")            # control: only the formats simlab writes
+
+
+def test_the_figure_draws_the_band_shares_it_counts(traces):
+    """The dark end bars of the histograms are the hand-counted shares within 1 % of each bound."""
+    from simlab.report.plots import placement_figure
+
+    table = placement_table(traces, names=NAMES, low=LOW, high=HIGH)
+    fig = placement_figure(own_trials(traces), names=NAMES, low=LOW, high=HIGH, placement=table)
+    heights = {}
+    for ax in fig.axes:
+        for patch in ax.patches:
+            if (patch.get_gid() or "").startswith("band:"):
+                heights.setdefault(patch.get_gid(), []).append(patch.get_height())
+    # hand count of A_POINTS: temp low band {0.1, 0.0}, high {9.9}; speed low {102}, high {298, 300}
+    assert heights["band:A:temp"] == pytest.approx([2 / 6, 1 / 6], abs=1e-15)
+    assert heights["band:A:speed"] == pytest.approx([1 / 6, 2 / 6], abs=1e-15)
+    assert heights["band:B:temp"] == pytest.approx([1 / 2, 0.0], abs=1e-15)
+    texts = [t.get_text() for ax in fig.axes for t in ax.texts]
+    assert "boundary 67 %, corners 33 %" in texts
