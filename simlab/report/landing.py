@@ -6,6 +6,7 @@ from __future__ import annotations
 __all__ = ["BOUNDARY_HEAVY", "placement_section"]
 
 from .cells import fmt_pct
+from .files import PLACEMENT
 
 # More than this share of a policy's own trials on the boundary earns a sentence (the issue's
 # "more than a third"; a judgement, not a published constant).
@@ -31,8 +32,8 @@ def placement_section(study, placement, figures_html):
             continue
         rows.append(f"<tr><td>{placement.text(i, 'policy')}</td>"
                     f"<td class='n'>{placement.span(i, 'trials', 'int')}</td>"
-                    f"<td class='n'>{placement.pct(i, 'boundary_share', 'boundary_low', 'boundary_high', stacked=True)}</td>"
-                    f"<td class='n'>{placement.pct(i, 'corner_share', 'corner_low', 'corner_high', stacked=True)}</td></tr>")
+                    f"<td class='n'>{placement.pct(i, 'boundary_share', 'boundary_worlds_low', 'boundary_worlds_high', stacked=True)}</td>"
+                    f"<td class='n'>{placement.pct(i, 'corner_share', 'corner_worlds_low', 'corner_worlds_high', stacked=True)}</td></tr>")
         if float(frame.at[i, "boundary_share"]) > BOUNDARY_HEAVY:
             heavy.append(i)
     if not rows:
@@ -43,19 +44,21 @@ def placement_section(study, placement, figures_html):
         (f"<p>Of the trials each policy chose itself (after the shared initial design; past trials left out), the "
          f"share <i>on the boundary</i> of the search box — within {band} % of an input's range of its low or "
          f"high bound, on any input — and <i>in a corner</i> — that close to a bound on every input. Uniformly "
-         f"random trials would land on the boundary {fmt_pct(random_edge)} % of the time. Intervals are exact "
-         "(Clopper–Pearson) over the trials; trials of one campaign are not independent, so they are narrower "
-         "than an interval over worlds would be.</p>"),
-        "<table><thead><tr><th>policy</th><th class='n'>own trials</th>"
-        "<th class='n'>on the boundary<span class='ci'>[95 % interval]</span></th>"
-        "<th class='n'>in a corner<span class='ci'>[95 % interval]</span></th>"
-        f"</tr></thead><tbody>{''.join(rows)}</tbody></table>",
+         f"random trials would land on the boundary {fmt_pct(random_edge)} % of the time. The intervals allow "
+         "for campaigns that differ from one another: a campaign that goes to the edge tends to stay there, so "
+         "the trials are not independent. They are Clopper–Pearson intervals at the effective number of "
+         "trials (Korn &amp; Graubard 1998); the plain intervals over trials, several times narrower, are in "
+         f"<code>{PLACEMENT}</code> too.</p>"),
+        ("<table><thead><tr><th>policy</th><th class='n'>own trials</th>"
+         "<th class='n'>on the boundary<span class='ci'>[95 % interval]</span></th>"
+         "<th class='n'>in a corner<span class='ci'>[95 % interval]</span></th>"
+         f"</tr></thead><tbody>{''.join(rows)}</tbody></table>"),
     ]
     if heavy:
         said = "".join(
             f"<li><b>{placement.text(i, 'policy')}</b> spends "
-            f"{placement.pct(i, 'boundary_share', 'boundary_low', 'boundary_high')} of its own trials on the "
-            f"boundary and {placement.pct(i, 'corner_share', 'corner_low', 'corner_high')} in corners.</li>"
+            f"{placement.pct(i, 'boundary_share', 'boundary_worlds_low', 'boundary_worlds_high')} of its own trials on the "
+            f"boundary and {placement.pct(i, 'corner_share', 'corner_worlds_low', 'corner_worlds_high')} in corners.</li>"
             for i in heavy)
         who = "These policies spend more than a third of their" if len(heavy) > 1 else \
             "This policy spends more than a third of its"

@@ -201,8 +201,9 @@ def test_every_tagged_number_equals_its_csv_cell(written, page):
                           "choice.csv": ("leader", "leader_value", "runner_up_value", "lead", "evidence"),
                           "budget_plan.csv": ("policy", "budget", "share", "status"),
                           "pairwise.csv": ("win_rate", "regret_p_holm", "failure_p_holm"),
-                          "placement.csv": ("trials", "boundary_share", "boundary_low", "boundary_high",
-                                            "corner_share", "corner_low", "corner_high")}.items():
+                          "placement.csv": ("trials", "boundary_share", "boundary_worlds_low",
+                                            "boundary_worlds_high", "corner_share", "corner_worlds_low",
+                                            "corner_worlds_high")}.items():
         frame = pd.read_csv(files.folder / name)
         for row in range(len(frame)):
             for column in columns:
