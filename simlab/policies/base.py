@@ -84,6 +84,23 @@ class Policy:
         """True when early choices depend on the budget (the runner then runs one campaign per budget)."""
         return False
 
+    @classmethod
+    def caution(cls, settings, study) -> str | None:
+        """A sentence for the report when these settings make the rule a weak baseline, else None.
+
+        Parameters
+        ----------
+        settings : dict
+            The rule's resolved settings (``PolicySpec.options``: every option, defaults filled in).
+        study : Study
+            The whole study (the belief's amplitude, the other policies), for rules whose
+            caution depends on them.
+
+        The report prints the sentence under the policies table; the rule itself, not the
+        report, knows which settings make it weak. Default: no caution.
+        """
+        return None
+
     def hold(self, post: Posterior, u) -> None:
         """Account for a trial chosen in this round whose result is not back yet.
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import ClassVar
+
 import numpy as np
 from scipy.special import log_ndtr
 
@@ -66,6 +68,25 @@ class ConfidenceBound(Acquisition):
     description = "optimistic confidence bound"
     lockstep = True
     options = {"width": Option(2.0, float, 0.0, 100.0, "multiple of the posterior sd")}
+    small_width: ClassVar[float] = 1.0   # below this many posterior sd the bound barely explores
+
+    @classmethod
+    def caution(cls, settings, study):
+        """A small width is close to pure exploitation; one width alone is one setting of the rule, not the rule."""
+        width = settings["width"]
+        widths = {dict(p.settings).get("width") for p in study.policies if p.rule == cls.rule}
+        words = []
+        if width < cls.small_width:
+            words.append(f"width = {width:g} posterior sd explores little: the rule is close to taking the lowest "
+                         "posterior mean, and widths of about 2 to 3 are common practice")
+        if len(widths) == 1:
+            words.append(f"the study runs the confidence bound at this one width only ({width:g}); how well the rule "
+                         "does depends on the width, so its result here is that of one setting (add, e.g., "
+                         "widths 1 and 3 as further policies to see how much it matters)")
+        if not words:
+            return None
+        text = "; ".join(words)
+        return text[0].upper() + text[1:] + "."
 
     def _from_moments(self, mu, sd):
         return -(mu - self.width * sd), -np.ones_like(mu), np.full_like(sd, self.width)
@@ -101,6 +122,21 @@ class ProbabilityOfImprovement(_Improvement):
     rule = "pi"
     description = "probability of improvement"
     log_score = True
+    greedy_margin: ClassVar[float] = 1e-3   # margins below this × the belief's amplitude count as none
+
+    @classmethod
+    def caution(cls, settings, study):
+        """PI with no margin is greedy: it prefers a near-certain tiny improvement next to the incumbent."""
+        margin, amplitude = settings["margin"], study.belief.amplitude
+        if margin >= cls.greedy_margin * amplitude:
+            return None
+        # The 0.01 rule: Lizotte (2008), Practical Bayesian Optimization, PhD thesis, University of
+        # Alberta, found xi = 0.01 (scaled by the signal's size) to work well for PI; as summarised by
+        # Brochu, Cora & de Freitas (2010), arXiv:1012.2599, section 2.3. Cited from memory.
+        return (f"Greedy: with margin = {margin:g} probability of improvement prefers a near-certain tiny gain next "
+                "to the current best over exploring, so it is a weak baseline. A margin of about 0.01 × the prior "
+                f"amplitude (here {0.01 * amplitude:g} objective units) is common practice (Lizotte 2008, PhD "
+                "thesis; cited from memory).")
 
     def _value(self, mu, sd):
         return log_ndtr((self.best - self.margin - mu) / sd)
@@ -211,6 +247,18 @@ class ThompsonSampling(Acquisition):
         "fill": Option("samples", str, help="how a round of several trials is filled",
                        choices=("samples", "believer", "liar", "penalize")),
     }
+    few_features: ClassVar[int] = 128   # below this the prior draw is a coarse approximation
+
+    @classmethod
+    def caution(cls, settings, study):
+        """Few spectral frequencies make each sample a coarse random-feature approximation of a prior draw."""
+        features = settings["features"]
+        if features >= cls.few_features:
+            return None
+        return (f"Only {features} spectral frequencies per sample: each posterior sample is a coarse "
+                "random-feature approximation of a draw from the belief, so the rule departs from Thompson "
+                f"sampling; {cls.few_features} or more (the default is "
+                f"{cls.options['features'].default}) is common practice.")
 
     def start(self, ctx):
         super().start(ctx)

@@ -6,7 +6,7 @@ resolved study; nothing here knows a default."""
 from __future__ import annotations
 
 from ..model.kernels import KERNELS
-from ..policies import POLICIES
+from ..policies import POLICIES, Policy
 from ..worlds.kinds import WORLD_KINDS
 from ..worlds.noise import NOISE_SHAPES
 from .cells import escape, fmt_pct, number
@@ -100,7 +100,7 @@ def _assumptions(study, version):
                     for n, lo, hi in zip(study.space.names, study.space.low, study.space.high))
     policies = "".join(
         f"<tr><td>{escape(p.label)}</td><td>{escape(p.rule)}</td><td>{escape(POLICIES[p.rule].description)}</td>"
-        f"<td>{escape(_settings(p))}</td></tr>"
+        f"<td>{_settings(p)}</td></tr>"
         for p in study.policies
     )
     c = study.campaign
@@ -112,8 +112,9 @@ def _assumptions(study, version):
         "<h3>Worlds</h3>" + _world_section(study) + "<h3>Belief</h3>" + belief +
         "<h3>Search space</h3><table><thead><tr><th>input</th><th class='n'>low</th><th class='n'>high</th>"
         f"</tr></thead><tbody>{space}</tbody></table>"
-        "<h3>Policies</h3><table><thead><tr><th>label</th><th>rule</th><th>what it does</th><th>settings</th>"
-        f"</tr></thead><tbody>{policies}</tbody></table>"
+        "<h3>Policies</h3><table><thead><tr><th>label</th><th>rule</th><th>what it does</th>"
+        "<th>settings it ran with (every one, defaults included)</th>"
+        f"</tr></thead><tbody>{policies}</tbody></table>" + _policy_cautions(study) +
         "<h3>Campaigns</h3><table class='kv'>"
         f"<tr><th>goal</th><td>{escape(study.goal)}</td></tr>"
         f"<tr><th>initial design</th><td>{c.initial} trials ({escape(c.design)}), shared by every policy and "
@@ -130,15 +131,37 @@ def _assumptions(study, version):
 
 
 def _settings(spec):
-    """A policy's settings that differ from the rule's defaults, e.g. ``width = 3``."""
+    """Every setting a policy ran with, resolved (``margin = 0``), each with its help text (HTML)."""
     options = POLICIES[spec.rule].options
+    if not spec.settings:
+        return "none (the rule has no settings)"
+    # the rule's own settings first, then those every acquisition has (fill, lie, exploit_last: policies/base.py)
+    shared = {key for base in POLICIES[spec.rule].__mro__[1:] if base.__module__ == Policy.__module__
+              for key in getattr(base, "options", {})}
+    ordered = sorted(spec.settings, key=lambda item: item[0] in shared)
     shown = []
-    for key, value in spec.settings:
-        if key in options and value == options[key].default:
-            continue
-        shown.append(f"{key} = {value:g}" if isinstance(value, (int, float)) and not isinstance(value, bool)
-                     else f"{key} = {value}")
-    return ", ".join(shown) or "defaults"
+    for key, value in ordered:
+        text = (f"{key} = {value:g}" if isinstance(value, (int, float)) and not isinstance(value, bool)
+                else f"{key} = {value}")
+        default = " (default)" if key in options and value == options[key].default else ""
+        what = f"<span class='ci'>{escape(options[key].help)}{default}</span>" if key in options else ""
+        shown.append(f"<div><code>{escape(text)}</code>{what}</div>")
+    return "".join(shown)
+
+
+
+def _policy_cautions(study):
+    """The rules' own warnings (``Policy.caution``) for policies run with settings that make them weak."""
+    items = []
+    for p in study.policies:
+        words = POLICIES[p.rule].caution(p.options, study)
+        if words:
+            items.append(f"<li><b>{escape(p.label)}</b>: {escape(words)}</li>")
+    if not items:
+        return ""
+    return ('<div class="caution" id="policy-cautions"><p><b>Weak baselines.</b> These policies ran with settings '
+            "that hold them back; read their results as those of the settings, not of the rule:</p>"
+            f"<ul>{''.join(items)}</ul></div>")
 
 
 def _limits(study):

@@ -18,11 +18,12 @@ from typing import Any, ClassVar
 import pandas as pd
 
 from .cells import fmt_pct
-from .files import PAIRWISE, SUMMARY, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
+from .files import PAIRWISE, PLACEMENT, SUMMARY, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
 
 # Where the page shows figures: after the budget table, after the first-passage table, after
-# the pairwise table, at the end of the results, and in the sweep's own section.
-SECTIONS = ("results", "first_passage", "pairwise", "snapshot", "sweep")
+# the pairwise table, after the table of where trials land, at the end of the results, and in
+# the sweep's own section.
+SECTIONS = ("results", "first_passage", "pairwise", "placement", "snapshot", "sweep")
 
 
 @dataclass(frozen=True)
@@ -169,6 +170,27 @@ class WinRateFigure(Figure):
         return plots.win_rate_figure(given.tables[PAIRWISE], colors=given.colors)
 
 
+class PlacementFigure(Figure):
+    stem, section, alt = "placement", "placement", "Histograms of each policy's own trials along every input"
+
+    def applies(self, study, tables):
+        # no own trials when the initial design uses the whole budget
+        return study.campaign.initial < study.campaign.horizon
+
+    def caption(self, study, success):
+        return ("Where each policy put the trials it chose itself (after the shared initial design, up to "
+                f"{study.campaign.horizon} trials, every campaign pooled): one histogram per input, bars of "
+                "5 % of the range, height the share of the policy's trials. The dark bar at each end is the "
+                "share within 1 % of that bound; the numbers are those of the table above.")
+
+    def draw(self, given):
+        from ..evidence.placement import BAND, own_trials
+        from . import plots
+        space = given.study.space
+        return plots.placement_figure(own_trials(given.traces), names=space.names, low=space.low, high=space.high,
+                                      band=BAND, placement=given.tables.get(PLACEMENT), colors=given.colors)
+
+
 class SnapshotFigure(Figure):
     stem, section, alt = "snapshot", "snapshot", "Campaign snapshot of one replicate"
 
@@ -208,5 +230,5 @@ class SweepFigure(Figure):
 
 FIGURES: dict[str, Figure] = {f.stem: f for f in (
     RegretFigure(), RoundsFigure(), FailureFigure(), WithinTargetFigure(), FinalRegretFigure(),
-    FirstPassageFigure(), WinRateFigure(), SnapshotFigure(), SweepFigure(),
+    FirstPassageFigure(), WinRateFigure(), PlacementFigure(), SnapshotFigure(), SweepFigure(),
 )}

@@ -12,6 +12,7 @@ TRIALS_TO_TARGET_SUMMARY = "trials_to_target_summary.csv"
 PAIRWISE = "pairwise.csv"
 CHOICE = "choice.csv"
 BUDGET_PLAN = "budget_plan.csv"
+PLACEMENT = "placement.csv"
 REPORT = "report.html"
 SWEEP_SUMMARY = "sweep/sweep.csv"
 SWEEP_RANKING = "sweep/ranking.csv"
@@ -19,5 +20,6 @@ WORLDS = "worlds.csv"
 FIGURES = "figures"
 
 # what a report writes at the top of the folder (worlds.csv and the sweep's files are the runner's)
-TABLES = (SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, PAIRWISE, CHOICE, BUDGET_PLAN, WITHIN_TARGET, REPORT)
+TABLES = (SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, PAIRWISE, CHOICE, BUDGET_PLAN, WITHIN_TARGET, PLACEMENT,
+          REPORT)
 FIGURE_FORMATS = ("png", "svg")

@@ -10,11 +10,12 @@ from pathlib import Path
 import pandas as pd
 
 from ..evidence import choice, compare, frame, metrics, reach
+from ..evidence.placement import placement_table
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
 from .figures import FigureInput
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, REPORT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
-                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, PLACEMENT, REPORT, SUMMARY, SWEEP_RANKING,
+                    SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
 from .page import render
 
 
@@ -32,17 +33,18 @@ class ReportFiles:
     report: Path
     figures: tuple[Path, ...] = field(default=())
     within_target: Path | None = None   # within_target.csv (always written; a default keeps old callers working)
+    placement: Path | None = None       # placement.csv (always written; a default keeps old callers working)
 
     def paths(self) -> tuple[Path, ...]:
         """Every file written, CSVs first, then figures, then the report."""
         tables = (self.summary, self.within_target, self.trials_to_target, self.trials_to_target_summary,
-                  self.budget_plan, self.pairwise, self.choice)
+                  self.budget_plan, self.pairwise, self.choice, self.placement)
         return tuple(p for p in tables if p is not None) + self.figures + (self.report,)
 
 
 def report_steps(*, figures=True):
     """Number of times :func:`write_outputs` calls its `progress` callback."""
-    return 7 + (len(FIGURE_REGISTRY) if figures else 0) + 1
+    return 8 + (len(FIGURE_REGISTRY) if figures else 0) + 1
 
 
 # ---------------------------------------------------------------------------
@@ -127,6 +129,10 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         step(1)
     else:
         step(2)  # nothing to compare with a single policy
+    space = study.space
+    tables[PLACEMENT] = placement_table(traces, names=space.names, low=space.low, high=space.high)
+    paths[PLACEMENT] = _write_csv(tables[PLACEMENT], PLACEMENT)
+    step(1)
 
     if (folder / SWEEP_RANKING).is_file() and (folder / SWEEP_SUMMARY).is_file():
         # a misspecification sweep of this study was run (simlab sweep): report it too
@@ -155,7 +161,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
         trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
         pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
-        within_target=paths[WITHIN_TARGET],
+        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT],
     )
 
 

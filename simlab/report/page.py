@@ -13,8 +13,9 @@ from ..evidence import choice
 from .cells import Cells, escape, fmt_pct, is_missing, number
 from .describe import _assumptions, _cautions, _limits, _question
 from .figures import FIGURES as FIGURE_REGISTRY
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, PLACEMENT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
                     TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
+from .landing import placement_section
 
 _ATTITUDE_REGRET, _ATTITUDE_FAILURE, _ATTITUDE_TRIALS = choice.ATTITUDES
 
@@ -73,6 +74,7 @@ def render(study, tables, images, *, success):
     pairs = Cells(PAIRWISE, tables[PAIRWISE]) if PAIRWISE in tables else None
     choice = Cells(CHOICE, tables[CHOICE]) if CHOICE in tables else None
     sweep = Cells(SWEEP_RANKING, tables[SWEEP_RANKING]) if SWEEP_RANKING in tables else None
+    placement = Cells(PLACEMENT, tables[PLACEMENT]) if PLACEMENT in tables else None
     title = f"Choosing a policy and a trial budget: {study.name}"
     parts = [
         "<!DOCTYPE html>",
@@ -86,13 +88,13 @@ def render(study, tables, images, *, success):
         _question(study, success),
         _assumptions(study, __version__),
         _optimum_warning(study, tables.get(WORLDS)),
-        _results(study, summary, reach, pairs, images, success),
+        _results(study, summary, reach, pairs, images, success, placement),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
         _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
         _limits(study),
         _cautions(),
-        _files_section(pairs is not None, bool(images), sweep is not None),
+        _files_section(pairs is not None, bool(images), sweep is not None, placement is not None),
         (f"<footer>Written by simlab {escape(__version__)} from the stored traces of study "
          f"“{escape(study.name)}”. Rebuilding it from the same traces and seed gives the same numbers.</footer>"),
         "</body></html>",
@@ -279,7 +281,7 @@ def _pairwise_table(pairs):
     )
 
 
-def _results(study, summary, reach, pairs, images, success):
+def _results(study, summary, reach, pairs, images, success, placement=None):
     horizon = study.campaign.horizon
     parts = [
         '<section id="results"><h2>3. Results</h2>',
@@ -318,6 +320,8 @@ def _results(study, summary, reach, pairs, images, success):
             _pairwise_table(pairs),
             _figures_in("pairwise", study, images, success),
         ]
+    if placement is not None:
+        parts.append(placement_section(study, placement, _figures_in("placement", study, images, success)))
     parts.append(_figures_in("snapshot", study, images, success))
     parts.append("</section>")
     return "".join(parts)
@@ -467,7 +471,7 @@ def _plan_section(study, plan, success):
     )
 
 
-def _files_section(has_pairs, has_figures, has_sweep=False):
+def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False):
     files = [
         (SUMMARY, "regret, within-target share, failure risk and CVaR-90 per policy and budget"),
         (WITHIN_TARGET, "share of campaigns within target after each trial, with its interval: budgets are "
@@ -482,6 +486,8 @@ def _files_section(has_pairs, has_figures, has_sweep=False):
     if has_pairs:
         files += [(PAIRWISE, "paired comparison of every two policies at the largest budget"),
                   (CHOICE, "the leading policy under each attitude to risk")]
+    if has_placement:
+        files.append((PLACEMENT, "share of each policy's own trials on the boundary of the box and in its corners"))
     if has_sweep:
         files += [(SWEEP_SUMMARY, "failure risk and median regret per policy, budget and cell of the sweep"),
                   (SWEEP_RANKING, "policies ranked by their worst shortfall against each cell's best policy "

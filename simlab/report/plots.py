@@ -11,6 +11,7 @@ __all__ = [
     "final_regret_figure",
     "win_rate_figure",
     "sweep_figure",
+    "placement_figure",
     "save_figure",
 ]
 
@@ -414,3 +415,79 @@ def sweep_figure(summary, *, budget, colors=None):
     return fig
 
 
+
+
+def placement_figure(trials, *, names, low, high, band=0.01, placement=None, colors=None):
+    """Where each policy's own trials land: one histogram per policy (rows) and input (columns).
+
+    Parameters
+    ----------
+    trials : DataFrame
+        The policies' own trials (`simlab.evidence.placement.own_trials`), inputs in user units.
+    names : sequence of str
+        The input columns.
+    low, high : sequence of float
+        The box in user units.
+    band : float, default 0.01
+        The boundary band, a fraction of each input's range; drawn as a dark narrow bar at
+        each end whose height is the share of trials within it.
+    placement : DataFrame, optional
+        `simlab.evidence.placement.placement_table` output; its boundary and corner shares
+        are written in each row.
+    colors : dict, optional
+        `policy_colors` mapping.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.figure import Figure
+    from matplotlib.ticker import MaxNLocator
+
+    from .cells import fmt_pct
+
+    check_columns(trials, "trials", ["policy", *names])
+    labels = policies_in(trials)
+    colors = colors_for(labels, colors)
+    names = list(names)
+    fig = Figure(figsize=(KIND_WIDTH, 0.7 + 1.0 * len(labels)), layout="constrained")
+    axes = fig.subplots(len(labels), len(names), sharex="col", sharey=True, squeeze=False)
+    bins = 20
+    top = 0.0
+    for i, label in enumerate(labels):
+        mine = trials[trials["policy"].astype(str) == label]
+        n = max(len(mine), 1)
+        for j, name in enumerate(names):
+            ax = axes[i, j]
+            x = mine[name].to_numpy(dtype=float)
+            lo, hi = float(low[j]), float(high[j])
+            width = band * (hi - lo)
+            heights, edges = np.histogram(x, bins=bins, range=(lo, hi))
+            ax.bar(edges[:-1], heights / n, width=np.diff(edges), align="edge", color=colors[label], alpha=0.45,
+                   edgecolor=colors[label], linewidth=0.8)
+            reach = width * (1 + 1e-9)   # the allowance of simlab.evidence.placement.edge_flags for rounding
+            ends = [np.count_nonzero(x - lo <= reach) / n, np.count_nonzero(hi - x <= reach) / n]
+            ax.bar([lo, hi - width], ends, width=width, align="edge", color="#000000", linewidth=0,
+                   gid=f"band:{label}:{name}")
+            top = max(top, float(heights.max(initial=0)) / n, *ends)
+            ax.set_xlim(lo, hi)
+            ax.tick_params(labelsize=8)
+            if i == len(labels) - 1:
+                ax.set_xlabel(display_label(name), fontsize=9)
+            if j == 0:
+                ax.set_ylabel(display_label(label), fontsize=9, color=colors[label], rotation=0, ha="right",
+                              va="center")
+        if placement is not None:
+            row = placement[placement["policy"].astype(str) == label]
+            if len(row):
+                r = row.iloc[0]
+                axes[i, -1].text(0.5, 0.95, f"boundary {fmt_pct(r['boundary_share'])} %, "
+                                 f"corners {fmt_pct(r['corner_share'])} %", transform=axes[i, -1].transAxes,
+                                 ha="center", va="top", fontsize=8)
+    axes[0, 0].set_ylim(0, 1.15 * top if top > 0 else 1.0)
+    for ax in axes.flat:
+        percent_axis(ax.yaxis)
+        ax.yaxis.set_major_locator(MaxNLocator(2))
+    fig.suptitle(f"Where each policy's own trials land (dark bars: within {100 * band:g} % of a bound)",
+                 fontsize=10, x=0.01, ha="left")
+    return fig

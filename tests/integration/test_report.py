@@ -101,7 +101,7 @@ def test_files_and_their_contract_columns(written):
         assert path.is_file() and path.stat().st_size > 0, path
     assert {p.name for p in files.figures} == {f"{stem}.{ext}" for ext in ("png", "svg") for stem in
                                                ("regret", "failure_risk", "within_target", "trials_to_target",
-                                                "final_regret", "win_rates", "snapshot")}
+                                                "final_regret", "win_rates", "placement", "snapshot")}
     summary = pd.read_csv(files.summary)
     assert {"policy", "budget", "replicates", "regret_median", "regret_q25", "regret_q75", "failure_risk",
             "failure_low", "failure_high", "cvar90"} <= set(summary.columns)
@@ -200,13 +200,32 @@ def test_every_tagged_number_equals_its_csv_cell(written, page):
                                           "within_target", "within_low", "within_high", "cvar90", "cvar90_low"),
                           "choice.csv": ("leader", "leader_value", "runner_up_value", "lead", "evidence"),
                           "budget_plan.csv": ("policy", "budget", "share", "status"),
-                          "pairwise.csv": ("win_rate", "regret_p_holm", "failure_p_holm")}.items():
+                          "pairwise.csv": ("win_rate", "regret_p_holm", "failure_p_holm"),
+                          "placement.csv": ("trials", "boundary_share", "boundary_worlds_low",
+                                            "boundary_worlds_high", "corner_share", "corner_worlds_low",
+                                            "corner_worlds_high")}.items():
         frame = pd.read_csv(files.folder / name)
         for row in range(len(frame)):
             for column in columns:
                 if name == "choice.csv" and column == "lead":
                     continue  # shown as "Clear lead" / "Tie"
                 assert (name, row, column) in seen, (name, row, column)
+
+
+@pytest.mark.slow
+def test_placement_file_counts_the_traces_and_its_figure_is_shown(written, page):
+    """placement.csv against a plain count from the traces (own trials within 1 % of a bound's range)."""
+    study, traces, files, _ = written
+    placement = pd.read_csv(files.placement)
+    low, high = study.space.low[0], study.space.high[0]
+    for row in placement.itertuples():
+        own = traces[(traces["policy"].astype(str) == row.policy) & (traces["trial"] > study.campaign.initial)]
+        x = own["feed_rate"].to_numpy()
+        near = np.minimum(x - low, high - x) <= 0.01 * (high - low) * (1 + 1e-9)
+        assert row.trials == len(own) and row.on_boundary == int(near.sum())
+        assert row.in_corner == row.on_boundary                # one input: every boundary trial is a corner
+    assert 'id="fig-placement"' in page and "placement.png" in {p.name for p in files.figures}
+    assert page.index("Where the policies put their trials") < page.index('id="fig-placement"')
 
 
 @pytest.mark.slow
@@ -239,7 +258,7 @@ def test_report_is_self_contained_and_escaped(page):
     tags = [t for t, _ in parsed.tags]
     assert "script" not in tags and "link" not in tags and "iframe" not in tags
     images = [a for t, a in parsed.tags if t == "img"]
-    assert len(images) == 7
+    assert len(images) == 8     # every figure of the tiny study, the placement histograms included
     for attrs in images:
         assert attrs["src"].startswith("data:image/png;base64,")
         assert base64.b64decode(attrs["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
