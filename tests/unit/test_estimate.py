@@ -27,3 +27,23 @@ def test_others_inverts_the_share_the_timed_process_got():
 def test_makespan_hands_tasks_to_the_first_free_worker():
     # five equal chunks on two workers end after three (hand-computed)
     assert _makespan([1.0] * 5, 2) == 3.0 and _makespan([1.0] * 5, 1) == 5.0
+
+
+def _workers_alive(psutil) -> list:
+    """joblib's worker processes among this process's children (its resource trackers aside)."""
+    return [p for p in psutil.Process().children(recursive=True)
+            if p.status() != psutil.STATUS_ZOMBIE and "popen_loky" in " ".join(p.cmdline())]
+
+
+def test_timing_the_workers_start_leaves_no_worker_behind():
+    psutil = pytest.importorskip("psutil")
+    from joblib import Parallel, delayed
+
+    from simlab.estimate import worker_startup
+    from simlab.runner import _stop_local_workers
+    Parallel(n_jobs=2)(delayed(abs)(i) for i in range(2))
+    assert len(_workers_alive(psutil)) == 2            # negative control: joblib keeps its workers
+    _stop_local_workers()
+    worker_startup.cache_clear()
+    assert worker_startup(2) > 0
+    assert _workers_alive(psutil) == []
