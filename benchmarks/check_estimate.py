@@ -5,11 +5,14 @@
 For each study (default: every configs/*.toml) and each --jobs, runs `simlab check STUDY
 --replicates N --jobs J` and then `simlab run STUDY --replicates N --jobs J --out TMP --quiet`
 in fresh interpreters, timing the run's wall clock from outside (interpreter start-up, world
-optima, workers, report and all, as a user waits for it). Prints one row per study and jobs.
+optima, workers, report and all, as a user waits for it). Prints one row per study and jobs,
+with the machine's 1-minute load average after the run (other workers share the cores: the
+ratios are only as steady as that load).
 The aim (issue 12) is a ratio within 0.7-1.3. Benchmarks never run in the test suite.
 """
 
 import argparse
+import os
 import re
 import subprocess
 import sys
@@ -50,12 +53,12 @@ def main(argv=None) -> int:
     p.add_argument("--jobs", type=int, nargs="+", default=[1, 2])
     args = p.parse_args(argv)
     studies = args.studies or sorted((ROOT / "configs").glob("*.toml"))
-    print(f"{'study':<28} {'jobs':>4} {'estimate s':>10} {'actual s':>9} {'ratio':>6}", flush=True)
+    print(f"{'study':<28} {'jobs':>4} {'estimate s':>10} {'actual s':>9} {'ratio':>6} {'load':>5}", flush=True)
     for study in studies:
         for jobs in args.jobs:
             est = estimate(study, args.replicates, jobs)
             real = actual(study, args.replicates, jobs)
-            print(f"{study.stem:<28} {jobs:>4} {est:>10.1f} {real:>9.1f} {est / real:>6.2f}", flush=True)
+            print(f"{study.stem:<28} {jobs:>4} {est:>10.1f} {real:>9.1f} {est / real:>6.2f} {os.getloadavg()[0]:>5.1f}", flush=True)
     return 0
 
 

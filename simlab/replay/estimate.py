@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 import os
 import tempfile
 import time
@@ -10,7 +11,7 @@ from dataclasses import dataclass
 from .runner import _workers, chunk_plan
 from ..study.spec import Study
 
-__all__ = ["Estimate", "measure", "process_age"]
+__all__ = ["Estimate", "measure", "process_age", "worker_startup"]
 
 
 @dataclass(frozen=True)
@@ -30,12 +31,17 @@ class Estimate:
     report : float
         Seconds to write the decision CSVs, figures and report.html (mostly figures: nearly
         independent of the number of replicates).
+    others : float
+        Other runnable processes sharing the machine's cores while the chunk was timed
+        (from the CPU share this process got; 0 on an idle machine). On a shared machine a
+        second worker does not get a core of its own: see ``_slowdown``.
     """
 
     per_replicate: float
     timed: int
     startup: float
     report: float
+    others: float = 0.0
 
     def run(self, study: Study, jobs: int) -> float:
         """Wall seconds of ``simlab run STUDY --jobs jobs`` (report included)."""
@@ -53,12 +59,34 @@ class Estimate:
         plan = chunk_plan(study)
         workers = min(_workers(jobs), len(plan))
         costs = [self.per_replicate * len(c) for c in plan]
-        span = _makespan(costs, workers)
+        span = _makespan(costs, workers) * _slowdown(workers, self.others, _cores())
         return span + (self._start_workers(study, jobs) if start else 0.0)
 
     def _start_workers(self, study: Study, jobs: int) -> float:
-        # worker processes start together, each importing simlab as the command did
-        return self.startup if min(_workers(jobs), len(chunk_plan(study))) > 1 else 0.0
+        # worker processes start together, each importing simlab: timed for real (first use)
+        workers = min(_workers(jobs), len(chunk_plan(study)))
+        return worker_startup(workers) if workers > 1 else 0.0
+
+
+@functools.cache
+def worker_startup(workers: int) -> float:
+    """Seconds for ``workers`` joblib worker processes to start and import simlab's runner, as
+    a run's workers do. Timed, not derived from the command's own start-up: the workers
+    spawn interpreters, import joblib and then simlab together: two took 3.9-4.9 s where the
+    command imported simlab in 1.5 s (2-core machine, other work running; measured once, by
+    hand). The workers are stopped afterwards."""
+    from joblib import Parallel, delayed
+
+    from .runner import _stop_local_workers
+    t0 = time.perf_counter()
+    Parallel(n_jobs=workers)(delayed(_import_runner)() for _ in range(workers))
+    seconds = time.perf_counter() - t0
+    _stop_local_workers()
+    return seconds
+
+
+def _import_runner() -> None:
+    import simlab.runner  # noqa: F401
 
 
 def _makespan(costs: list[float], workers: int) -> float:
@@ -68,6 +96,28 @@ def _makespan(costs: list[float], workers: int) -> float:
         i = min(range(len(free)), key=free.__getitem__)
         free[i] += c
     return max(free)
+
+
+def _cores() -> int:
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+
+
+def _slowdown(workers: int, others: float, cores: int) -> float:
+    """How much slower each of ``workers`` processes runs than the one process that was timed.
+
+    Fair sharing (`common practice`: Linux's scheduler gives runnable processes of equal
+    priority equal CPU time): with ``others`` other runnable processes on ``cores`` cores, each
+    of w processes gets min(1, cores / (w + others)) of a core. The chunk was timed at w = 1.
+    """
+    share = lambda w: min(1.0, cores / (w + others))   # noqa: E731
+    return share(1) / share(max(workers, 1))
+
+
+def _others(cpu: float, wall: float, cores: int) -> float:
+    """Other runnable processes implied by getting ``cpu`` seconds of CPU in ``wall`` seconds:
+    the inverse of ``_slowdown``'s share, min(1, cores / (1 + others)); 0 when a whole core was had."""
+    share = cpu / wall if wall > 0 else 1.0
+    return max(cores / share - 1.0, 0.0) if share < 0.95 else 0.0
 
 
 def process_age() -> float:
@@ -100,12 +150,13 @@ def measure(study: Study, *, replicates: int = 4) -> Estimate:
         if n >= replicates:
             break
     frames = []
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     for block in blocks:
         frame = _replay_chunk(study, block)
         frame.attrs.clear()   # the chunk's worlds rows and warnings; pandas cannot concat frames in attrs
         frames.append(frame)
-    per = (time.perf_counter() - t0) / n
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
+    per = wall / n
     traces = pd.concat(frames, ignore_index=True)
     traces["policy"] = pd.Categorical(traces["policy"], categories=list(study.labels))
     from ..report.outputs import write_outputs
@@ -113,4 +164,4 @@ def measure(study: Study, *, replicates: int = 4) -> Estimate:
     with tempfile.TemporaryDirectory(prefix="simlab-check-") as tmp:
         write_outputs(tmp, study, traces)
     report = time.perf_counter() - t0
-    return Estimate(per_replicate=per, timed=n, startup=startup, report=report)
+    return Estimate(per_replicate=per, timed=n, startup=startup, report=report, others=_others(cpu, wall, _cores()))

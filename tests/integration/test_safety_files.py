@@ -72,6 +72,39 @@ def test_every_file_a_run_report_and_sweep_write_is_known_to_fresh(small):
     assert foreign_entries(small / "r", manifest=True) == ["figures/"]
 
 
+# --------------------------------------------------------------------------- 2. ragged first row
+# The reproduction: pandas took the extra field of the *first* data row as the row's
+# index and shifted its values one column (exit 0, the traces held 0.9 for a and 7 for b).
+RAGGED = "a,b,y\n0.5,0.9,7,0.4\n0.2,0.1,6.5\n0.8,0.3,7.1\n0.4,0.6,6.9\n"
+
+
+def test_ragged_first_row_of_a_history_is_one_line_and_nothing_written(tmp_path):
+    study = (SMALL.replace("dose = [0.0, 1.0]", "a = [0.0, 1.0]\nb = [0.0, 10.0]")
+             .replace("[campaign]", '[history]\nfile = "past.csv"\nresponse = "y"\n[campaign]'))
+    (tmp_path / "s.toml").write_text(study)
+    (tmp_path / "past.csv").write_text(RAGGED)
+    for command in (["check", "s.toml", "--no-timing"], ["run", "s.toml", "--out", "r", "--quiet"]):
+        out = simlab(*command, cwd=tmp_path)
+        line = one_line(out)
+        assert "past.csv" in line and "row 2" in line and "4 fields but the header has 3" in line, line
+        assert out.stdout == ""
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["past.csv", "s.toml"]
+    # positive control: the same file with the stray field removed is accepted
+    (tmp_path / "past.csv").write_text(RAGGED.replace("0.5,0.9,7,0.4", "0.5,0.9,7"))
+    assert simlab("check", "s.toml", "--no-timing", cwd=tmp_path).returncode == 0
+
+
+def test_ragged_first_row_of_a_calibration_file_is_one_line_and_prints_no_prior(tmp_path):
+    rows = RAGGED + "".join(f"{i / 10},{(i * 3 % 10) / 10},{6 + i / 5}\n" for i in range(10))
+    (tmp_path / "runs.csv").write_text(rows)
+    out = simlab("calibrate", "runs.csv", "--response", "y", cwd=tmp_path)
+    line = one_line(out)
+    assert "runs.csv" in line and "row 2" in line and "4 fields but the header has 3" in line, line
+    assert out.stdout == "" and sorted(p.name for p in tmp_path.iterdir()) == ["runs.csv"]
+    (tmp_path / "runs.csv").write_text(rows.replace("0.5,0.9,7,0.4", "0.5,0.9,7"))   # positive control
+    assert simlab("calibrate", "runs.csv", "--response", "y", cwd=tmp_path).returncode == 0
+
+
 # --------------------------------------------------------------------------- 8. one line, nothing written
 def test_calibration_response_of_1e308_is_one_line(tmp_path):
     rows = ["temp,y"] + [f"{20 + i},{i}" for i in range(10)] + ["31,1e308"]

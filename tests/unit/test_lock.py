@@ -3,6 +3,7 @@
 import multiprocessing
 import os
 import socket
+import time
 
 import pytest
 
@@ -16,8 +17,25 @@ RACERS = 4
 TRIALS = 100
 
 
-def _racer(base, trials, start, held, wins):
+def _slow_lock_files():
+    """A slow file system: opening the lock file takes 20 ms before the caller gets it back.
+    Whatever an implementation does between making the file visible and owning it then
+    takes long enough for every other racer to see it in that state."""
+    real = os.open
+
+    def slow(path, *args, **kwargs):
+        fd = real(path, *args, **kwargs)
+        if os.path.basename(path) == ".lock":
+            time.sleep(0.02)
+        return fd
+
+    os.open = slow                       # in a forked racer only
+
+
+def _racer(base, trials, start, held, wins, slow):
     """Enter each trial's folder together with the other racers; hold the lock until all have tried."""
+    if slow:
+        _slow_lock_files()
     for t in range(trials):
         folder = RunFolder(base / f"trial-{t:03d}", STUDY, "test", chunks=1)
         start.wait()
@@ -34,13 +52,16 @@ def _racer(base, trials, start, held, wins):
             folder.__exit__(None, None, None)
 
 
-def test_exactly_one_of_many_simultaneous_writers_takes_the_lock(tmp_path):
+@pytest.mark.parametrize("slow", [False, True], ids=["plain", "slow-file-system"])
+def test_exactly_one_of_many_simultaneous_writers_takes_the_lock(tmp_path, slow):
     """Atomic creation is the whole point (common practice: O_EXCL or an OS file lock); a lock
-    that is visible before its owner is written let three racers in together in 67 of 100 trials."""
+    that is visible before its owner is written let three racers in together in 67 of 100 trials.
+    On a loaded machine the racers rarely meet inside that window, so the slow-file-system
+    case widens it (the race then shows in nearly every trial on the code before the fix)."""
     ctx = multiprocessing.get_context("fork")
     start, held = ctx.Barrier(RACERS, timeout=60), ctx.Barrier(RACERS, timeout=60)
     wins = ctx.Array("i", TRIALS)
-    procs = [ctx.Process(target=_racer, args=(tmp_path, TRIALS, start, held, wins)) for _ in range(RACERS)]
+    procs = [ctx.Process(target=_racer, args=(tmp_path, TRIALS, start, held, wins, slow)) for _ in range(RACERS)]
     for p in procs:
         p.start()
     for p in procs:
