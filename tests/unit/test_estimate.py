@@ -2,7 +2,7 @@
 
 import pytest
 
-from simlab.estimate import _makespan, _others, _slowdown
+from simlab.replay.estimate import _makespan, _others, _slowdown
 
 
 def test_an_idle_machine_gives_each_worker_a_core():
@@ -39,8 +39,8 @@ def test_timing_the_workers_start_leaves_no_worker_behind():
     psutil = pytest.importorskip("psutil")
     from joblib import Parallel, delayed
 
-    from simlab.estimate import worker_startup
-    from simlab.runner import _stop_local_workers
+    from simlab.replay.estimate import worker_startup
+    from simlab.replay.runner import _stop_local_workers
     Parallel(n_jobs=2)(delayed(abs)(i) for i in range(2))
     assert len(_workers_alive(psutil)) == 2            # negative control: joblib keeps its workers
     _stop_local_workers()
