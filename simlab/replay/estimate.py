@@ -86,7 +86,7 @@ def worker_startup(workers: int) -> float:
 
 
 def _import_runner() -> None:
-    import simlab.runner  # noqa: F401
+    import simlab.replay.runner  # noqa: F401
 
 
 def _makespan(costs: list[float], workers: int) -> float:
