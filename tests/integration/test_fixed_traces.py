@@ -22,193 +22,16 @@ from __future__ import annotations
 
 import hashlib
 import sys
-import textwrap
+from pathlib import Path
 
 import numpy as np
 import pytest
 
 import simlab
 
-STUDIES = {
-    "lockstep-and-alone": """
-        [study]
-        name = "fixed-a"
-        goal = "maximize"
-        replicates = 4
-        seed = 2024
-
-        [space]
-        screw_speed = [100.0, 400.0]
-        barrel_temperature = [180.0, 240.0]
-
-        [world]
-        kernel = "matern52"
-        lengthscale = [90.0, 20.0]
-        amplitude = 2.0
-        mean = 10.0
-        noise = 0.1
-
-        [campaign]
-        initial = 4
-        budgets = [8, 12]
-        pool = 256
-
-        [target]
-        regret = 0.3
-
-        [[policy]]
-        rule = "random"
-        [[policy]]
-        rule = "sobol"
-        [[policy]]
-        rule = "mean"
-        [[policy]]
-        rule = "lcb"
-        [[policy]]
-        rule = "pi"
-        [[policy]]
-        rule = "ei"
-        [[policy]]
-        rule = "gp-ucb"
-        [[policy]]
-        rule = "thompson"
-        [[policy]]
-        rule = "pbest"
-        [[policy]]
-        rule = "mes"
-        [[policy]]
-        rule = "kg"
-        [[policy]]
-        rule = "hedge"
-    """,
-    "rounds-noise-horizon": """
-        [study]
-        name = "fixed-b"
-        goal = "minimize"
-        replicates = 3
-        seed = 77
-
-        [space]
-        feed_rate = [0.5, 4.0]
-        temperature = [28.0, 37.0]
-        ph = [5.5, 7.5]
-
-        [world]
-        kernel = "matern32"
-        lengthscale = [1.5, 4.0, 1.0]
-        amplitude = 1.0
-        mean = 0.0
-        noise = 0.2
-        noise_kind = "student"
-        noise_df = 4.0
-        noise_growth = 0.2
-        lost = 0.15
-
-        lengthscale_within = 1.5
-        amplitude_within = 1.3
-
-        [campaign]
-        initial = 5
-        budgets = [9, 13]
-        batch = 2
-        pool = 256
-
-        [target]
-        regret = 0.2
-
-        [[policy]]
-        rule = "ei"
-        label = "EI, last two exploit"
-        exploit_last = 2
-        [[policy]]
-        rule = "ei"
-        label = "EI, liar"
-        fill = "liar"
-        [[policy]]
-        rule = "ei"
-        label = "EI, penalized"
-        fill = "penalize"
-        [[policy]]
-        rule = "thompson"
-        [[policy]]
-        rule = "lcb"
-    """,
-    "history-grid-refit": """
-        [study]
-        name = "fixed-c"
-        goal = "maximize"
-        replicates = 3
-        seed = 5
-
-        [space]
-        vent_opening = [0.0, 100.0]
-
-        [world]
-        kernel = "matern52"
-        method = "grid"
-        lengthscale = 15.0
-        amplitude = 1.0
-        mean = 0.0
-        noise = 0.05
-
-        [belief]
-        kernel = "sqexp"
-        lengthscale = 25.0
-        refit_every = 3
-
-        [history]
-        file = "past-vents.csv"
-        response = "yield"
-
-        [campaign]
-        initial = 0
-        budgets = [6, 10]
-        pool = 128
-
-        [target]
-        regret = 0.1
-
-        [[policy]]
-        rule = "ei"
-        [[policy]]
-        rule = "mes"
-        [[policy]]
-        rule = "random"
-    """,
-    "published-function": """
-        [study]
-        name = "fixed-d"
-        goal = "minimize"
-        replicates = 3
-        seed = 9
-
-        [world]
-        function = "branin"
-        noise = 1.0
-
-        [belief]
-        kernel = "matern52"
-        lengthscale = [4.0, 4.0]
-        amplitude = 50.0
-        mean = 50.0
-
-        [campaign]
-        initial = 5
-        design = "lhs"
-        budgets = [10]
-        pool = 256
-
-        [target]
-        regret = 1.0
-
-        [[policy]]
-        rule = "ei"
-        [[policy]]
-        rule = "pi"
-    """,
-}
-
-HISTORY = "vent_opening,yield\n12.5,0.31\n48.0,-0.20\n81.0,0.74\n"
+# The studies are files (tests/fixed_studies/NAME.toml), with the history one of them reads.
+FOLDER = Path(__file__).resolve().parents[1] / "fixed_studies"
+STUDIES = sorted(p.stem for p in FOLDER.glob("*.toml"))
 
 # sha256 of the traces as text (see the module docstring); regenerate only on purpose.
 EXPECTED = {
@@ -228,24 +51,21 @@ def traces_hash(frame) -> str:
     return hashlib.sha256(text.encode()).hexdigest()
 
 
-def run(name: str, tmp_dir) -> "simlab.StudyResult":
-    (tmp_dir / "past-vents.csv").write_text(HISTORY, encoding="utf-8")
-    path = tmp_dir / f"{name}.toml"
-    path.write_text(textwrap.dedent(STUDIES[name]), encoding="utf-8")
-    return simlab.run_study(simlab.load_study(path), write=False)
+def run(name: str) -> "simlab.StudyResult":
+    return simlab.run_study(simlab.load_study(FOLDER / f"{name}.toml"), write=False)
 
 
-@pytest.mark.parametrize("name", sorted(STUDIES))
-def test_traces_match_the_stored_hash(name, tmp_path):
-    result = run(name, tmp_path)
+@pytest.mark.parametrize("name", STUDIES)
+def test_traces_match_the_stored_hash(name):
+    result = run(name)
     assert len(result.traces) > 0 and np.isfinite(result.traces["y"].to_numpy(float)).any()
     assert traces_hash(result.traces) == EXPECTED[name], (
         f"{name}: the traces changed; if that is intended, regenerate the hashes (module docstring)")
 
 
-def test_hash_sees_a_one_ulp_change_in_a_chosen_input(tmp_path):
+def test_hash_sees_a_one_ulp_change_in_a_chosen_input():
     """Negative control: the hash must notice a change far smaller than any real one."""
-    traces = run("rounds-noise-horizon", tmp_path).traces
+    traces = run("rounds-noise-horizon").traces
     before = traces_hash(traces)
     changed = traces.copy()
     col = next(c for c in changed.columns if c == "feed_rate")
@@ -255,9 +75,6 @@ def test_hash_sees_a_one_ulp_change_in_a_chosen_input(tmp_path):
 
 
 if __name__ == "__main__":
-    import pathlib
-    import tempfile
-    with tempfile.TemporaryDirectory() as tmp:
-        for name in sorted(STUDIES):
-            print(f'    "{name}": "{traces_hash(run(name, pathlib.Path(tmp)).traces)}",')
+    for name in STUDIES:
+        print(f'    "{name}": "{traces_hash(run(name).traces)}",')
     sys.exit(0)
