@@ -39,7 +39,10 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
     for k, v in (header or {}).items():
         lines.append(f"# {k}: {v}")
     lines += ["[study]", f"name = {toml_value(study.name)}", f"goal = {toml_value(study.goal)}",
-              f"replicates = {study.replicates}", f"seed = {study.seed}", "", "[space]"]
+              f"replicates = {study.replicates}", f"seed = {study.seed}"]
+    if study.units:   # written only when set: without it the text (and the results folder's hash) is unchanged
+        lines.append(f"units = {toml_value(study.units)}")
+    lines += ["", "[space]"]
     for n, lo, hi in zip(study.space.names, study.space.low, study.space.high):
         lines.append(f"{toml_key(n)} = [{lo!r}, {hi!r}]")
     lines += ["", "[world]"]

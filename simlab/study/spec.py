@@ -17,7 +17,7 @@ from ..policies import POLICIES
 from ..worlds.kinds import WORLD_KINDS, world_options
 from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
-from .types import (DESIGNS, GOALS, MAX_REPLICATES, NAME_LENGTH, CampaignSpec, HistorySpec, PolicySpec, Prior,
+from .types import (DESIGNS, GOALS, MAX_REPLICATES, NAME_LENGTH, UNITS_LENGTH, CampaignSpec, HistorySpec, PolicySpec, Prior,
                     Space, Study, StudyError, SweepSpec, WorldSpec)
 
 __all__ = ["load_study", "parse_study", "advice", "RESERVED",
@@ -43,7 +43,7 @@ def _section_keys() -> dict[str, tuple[str, ...]]:
     """The keys each section allows; read from the registries when asked, so a registered world
     kind or noise shape brings its settings with it."""
     return {
-        "study": ("name", "goal", "replicates", "seed"),
+        "study": ("name", "goal", "replicates", "seed", "units"),
         "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", *world_options(1), "function",
                   "lengthscale_within", "amplitude_within", *_noise_keys()),
         "campaign": ("initial", "design", "budgets", "pool", "batch"),
@@ -105,6 +105,10 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     goal = r.choice(st, "study.goal", GOALS, default="minimize")
     replicates = r.integer(st, "study.replicates", low=1, high=MAX_REPLICATES, default=100)
     seed = r.integer(st, "study.seed", low=0, high=2**63 - 1, default=0)
+    units = r.string(st, "study.units", default="")
+    if len(units) > UNITS_LENGTH or not units.isprintable() or units != units.strip():
+        r.fail("study.units", f"must be a short printable label of at most {UNITS_LENGTH} characters, without "
+               f"leading or trailing spaces (e.g. \"MPa\"); got {units!r}")
 
     wt = r.table(data, "world")
     function = r.string(wt, "world.function", default=None)
@@ -175,7 +179,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     )
     return Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                  belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
-                 history=history, refit_every=refit_every, difference=difference, source=source)
+                 history=history, refit_every=refit_every, difference=difference, units=units, source=source)
 
 
 def _read_noise(r: "_Reader", wt: dict) -> dict:

@@ -14,6 +14,7 @@ DESIGNS = ("sobol", "lhs", "random")
 # A study name becomes a folder name: most file systems allow 255 bytes, and the folder's
 # own files add their names below it; 100 leaves room and is plenty for a person to read.
 NAME_LENGTH = 100
+UNITS_LENGTH = 20    # [study] units: a short label such as "MPa" or "g/L"
 # The most replicates a study may ask for, in the study file and with --replicates alike.
 MAX_REPLICATES = 10_000_000
 
@@ -143,6 +144,7 @@ class Study:
     history: HistorySpec | None = None
     refit_every: int = 0         # [belief] refit_every: refit the belief by maximum likelihood every k trials
     difference: float | None = None  # [target] difference, objective units; None: target / 10
+    units: str = ""              # [study] units: the objective's unit for the report ("" : "objective units")
     source: str = field(default="<study>", compare=False)
 
     @property
