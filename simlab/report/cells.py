@@ -45,7 +45,12 @@ def fmt_p(value):
     return compare.format_p(float(value))
 
 
-FORMATS = {"sig": fmt_sig, "pct": fmt_pct, "int": fmt_int, "p": fmt_p}
+def fmt_miss(value):
+    """The complement of a share as a percentage (a miss risk read from a within-target share)."""
+    return fmt_pct(1.0 - float(value))
+
+
+FORMATS = {"sig": fmt_sig, "pct": fmt_pct, "int": fmt_int, "p": fmt_p, "miss": fmt_miss}
 
 
 class Cells:
@@ -70,7 +75,9 @@ class Cells:
     def span(self, row, column, kind, *, missing="—"):
         """The cell as ``<span class="v" data-src data-row data-col [data-unit]>text</span>``."""
         value = self.frame.at[row, column]
-        unit = ' data-unit="%"' if kind == "pct" else ""
+        unit = ' data-unit="%"' if kind in ("pct", "miss") else ""
+        if kind == "miss":
+            unit += ' data-fmt="complement"'   # shown as 1 - the cell
         text = html.escape(missing) if is_missing(value) else html.escape(FORMATS[kind](value))
         return (f'<span class="v" data-src="{self.name}" data-row="{row}" data-col="{html.escape(column)}"'
                 f'{unit}>{text}</span>')
@@ -102,6 +109,19 @@ class Cells:
 
 def escape(text):
     return html.escape(str(text), quote=True)
+
+
+def unit_words(study, value=None):
+    """The objective's unit for the page: ``[study] units`` as written, else "objective unit(s)"
+    (singular when `value` is exactly 1)."""
+    if getattr(study, "units", ""):
+        return escape(study.units)
+    return "objective unit" if value is not None and float(value) == 1.0 else "objective units"
+
+
+def unit_label(study):
+    """The objective's unit as plain text for a figure's axis ("objective units" when none; "$" kept literal)."""
+    return (getattr(study, "units", "") or "objective units").replace("$", r"\$")
 
 
 def number(value):

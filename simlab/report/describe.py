@@ -9,7 +9,7 @@ from ..model.kernels import KERNELS
 from ..policies import POLICIES, Policy
 from ..worlds.kinds import WORLD_KINDS
 from ..worlds.noise import NOISE_SHAPES
-from .cells import escape, fmt_pct, number
+from .cells import escape, fmt_pct, number, unit_words
 
 
 def _question(study, success):
@@ -18,12 +18,12 @@ def _question(study, success):
                        for n, lo, hi in zip(study.space.names, study.space.low, study.space.high))
     budgets = ", ".join(str(b) for b in study.campaign.budgets)
     return (
-        '<section id="question"><h2>1. The question</h2>'
+        '<section id="question"><h2>1. Appendix: the question as asked</h2>'
         f'<div class="box"><p>A campaign will {goal} an objective by choosing settings of '
         f"{len(study.space.names)} input{'s' if study.space.dim > 1 else ''}: {inputs} "
         "(in the units of the study file). "
         f"Which acquisition policy should it use, and how many trials should it ask for: {budgets}?</p>"
-        f"<p>Success means the recommended setting ends within <b>{number(study.target)}</b> objective units "
+        f"<p>Success means the recommended setting ends within <b>{number(study.target)}</b> {unit_words(study, study.target)} "
         "of the best value the process can reach (simple regret ≤ target). "
         f"The requested chance of success for the budget plan is {fmt_pct(success)} %.</p></div>"
         "<p>To answer it, simlab drew many possible objectives (“worlds”) from the prior below, replayed "
@@ -108,7 +108,7 @@ def _assumptions(study, version):
     rounds = (f"<tr><th>trials per round</th><td>{batch}, all chosen before any result of the round is "
               "back</td></tr>" if batch > 1 else "")
     return (
-        '<section id="assumptions"><h2>2. Assumptions</h2>'
+        '<section id="assumptions"><h2>2. Appendix: assumptions and method</h2>'
         "<h3>Worlds</h3>" + _world_section(study) + "<h3>Belief</h3>" + belief +
         "<h3>Search space</h3><table><thead><tr><th>input</th><th class='n'>low</th><th class='n'>high</th>"
         f"</tr></thead><tbody>{space}</tbody></table>"
@@ -121,7 +121,7 @@ def _assumptions(study, version):
         "counted in the budget</td></tr>"
         f"<tr><th>budgets</th><td>{', '.join(str(b) for b in c.budgets)} trials</td></tr>"
         f"{rounds}"
-        f"<tr><th>target</th><td>simple regret ≤ {number(study.target)} objective units</td></tr>"
+        f"<tr><th>target</th><td>simple regret ≤ {number(study.target)} {unit_words(study, study.target)}</td></tr>"
         f"<tr><th>candidate pool</th><td>{c.pool} quasi-random inputs, best few polished</td></tr>"
         f"<tr><th>replicates</th><td>{study.replicates} worlds</td></tr>"
         f"<tr><th>root seed</th><td>{study.seed}</td></tr>"

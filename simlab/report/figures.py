@@ -17,7 +17,7 @@ from typing import Any, ClassVar
 
 import pandas as pd
 
-from .cells import fmt_pct
+from .cells import fmt_pct, unit_label
 from .files import PAIRWISE, PLACEMENT, SUMMARY, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
 
 # Where the page shows figures: after the budget table, after the first-passage table, after
@@ -71,7 +71,8 @@ class RegretFigure(Figure):
         from . import plots
         s = given.study
         return plots.regret_figure(metrics.regret_curves(given.traces, seed=given.seed), target=s.target,
-                                   budgets=s.campaign.budgets, initial=s.campaign.initial, colors=given.colors)
+                                   budgets=s.campaign.budgets, initial=s.campaign.initial, colors=given.colors,
+                                   units=unit_label(s))
 
 
 class RoundsFigure(Figure):
@@ -94,7 +95,7 @@ class RoundsFigure(Figure):
         by_round = ends.assign(trial=(ends["trial"] - 1) // q + 1)
         rounds = sorted({-(-b // q) for b in s.campaign.budgets})
         return plots.regret_figure(metrics.regret_curves(by_round, seed=given.seed), target=s.target, budgets=rounds,
-                                   colors=given.colors, unit="round",
+                                   colors=given.colors, unit="round", units=unit_label(s),
                                    initial=-(-s.campaign.initial // q) if s.campaign.initial else None)
 
 
@@ -137,7 +138,8 @@ class FinalRegretFigure(Figure):
         from . import plots
         s = given.study
         final = metrics.regret_at_budget(given.traces, budget=s.campaign.horizon)
-        return plots.final_regret_figure(final, target=s.target, budget=s.campaign.horizon, colors=given.colors)
+        return plots.final_regret_figure(final, target=s.target, budget=s.campaign.horizon, colors=given.colors,
+                                         units=unit_label(s))
 
 
 class FirstPassageFigure(Figure):

@@ -125,6 +125,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         step(1)
         tables[CHOICE] = choice.choice_table(traces, budget=horizon, target=target, success=success, seed=seed,
                                               difference=study.lead_difference)
+        tables[CHOICE] = _in_units(tables[CHOICE], study)
         paths[CHOICE] = _write_csv(tables[CHOICE], CHOICE)
         step(1)
     else:
@@ -163,6 +164,17 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
         within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT],
     )
+
+
+def _in_units(table, study):
+    """The choice table's evidence sentences in the study's own unit (``[study] units``), if it has one:
+    the CSV and the page then say "0.1 MPa" where the evidence code writes "objective units"."""
+    if not study.units or "evidence" not in table:
+        return table
+    words = table["evidence"].astype(object)
+    return table.assign(evidence=words.map(lambda t: t if not isinstance(t, str) else
+                                           t.replace("objective units", study.units)
+                                           .replace("objective unit", study.units)))
 
 
 def _levels(success):

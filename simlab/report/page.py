@@ -10,7 +10,8 @@ import re
 import numpy as np
 
 from ..evidence import choice
-from .cells import Cells, escape, fmt_pct, is_missing, number
+from .answer import MISS_RISK_WORDS, answer_section
+from .cells import Cells, escape, fmt_pct, is_missing, number, unit_words
 from .describe import _assumptions, _cautions, _limits, _question
 from .figures import FIGURES as FIGURE_REGISTRY
 from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, PLACEMENT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
@@ -85,15 +86,16 @@ def render(study, tables, images, *, success):
         f"<header><h1>{escape(title)}</h1>",
         (f'<p class="meta">simlab {escape(__version__)} · root seed {study.seed} · {study.replicates} simulated '
          "worlds, each met by every policy</p></header>"),
-        _question(study, success),
-        _assumptions(study, __version__),
-        _optimum_warning(study, tables.get(WORLDS)),
-        _results(study, summary, reach, pairs, images, success, placement),
+        answer_section(study, tables, summary, plan, choice, sweep, success),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
+        _optimum_warning(study, tables.get(WORLDS)),
+        _results(study, summary, reach, pairs, images, success, placement),
         _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
         _limits(study),
         _cautions(),
+        _question(study, success),     # the appendix: the question as asked, the assumptions and method
+        _assumptions(study, __version__),
         _files_section(pairs is not None, bool(images), sweep is not None, placement is not None),
         (f"<footer>Written by simlab {escape(__version__)} from the stored traces of study "
          f"“{escape(study.name)}”. Rebuilding it from the same traces and seed gives the same numbers.</footer>"),
@@ -115,7 +117,7 @@ def _optimum_warning(study, worlds):
     worst = int(np.argmax(gaps))
     return (f'<div class="caution"><p><b>World optima may be missed.</b> On {wide.size} of {len(gaps)} '
             f"replicates two independent searches for the world's optimum disagreed by more than 1 % of the "
-            f"target ({number(limit)}); the largest gap is {cells.span(worst, 'optimum_gap', 'sig')} on replicate "
+            f"target ({number(limit)} {unit_words(study, limit)}); the largest gap is {cells.span(worst, 'optimum_gap', 'sig')} {unit_words(study)} on replicate "
             f"{cells.span(worst, 'replicate', 'int')} (column <code>optimum_gap</code> of <code>{WORLDS}</code>). "
             "Regret is measured against the better search and every input a campaign evaluated, but where the "
             "searches disagree the true optimum may be better still: regret there may be understated, "
@@ -165,19 +167,19 @@ def _sweep_section(study, ranking, images, cells=None):
         f"<p>The study was replayed with the belief's lengthscales scaled by {escape(factors(sw.lengthscale))} and its "
         f"amplitude by {escape(factors(sw.amplitude))}, on the same {worlds} worlds in every cell, to see which "
         "policy still meets the target when the team's prior is wrong.</p>"
-        "<p>In each cell the best policy is the one with the lowest failure risk there; a policy's "
-        "<i>shortfall</i> in the cell is how many percentage points of failure risk it gives away to that best "
+        "<p>In each cell the best policy is the one with the lowest miss risk (failure risk: the share of campaigns ending outside the target) there; a policy's "
+        "<i>shortfall</i> in the cell is how many percentage points of miss risk it gives away to that best "
         "policy. The safest policy is the one whose largest shortfall over the grid is smallest (minimax "
         "regret, Savage 1951): whichever way the belief is wrong, choosing it costs least against the choice "
         "that would have been best. The raw worst cell is shown beside it; ranking on it alone can favour a "
         "policy that is mediocre everywhere, such as random search.</p>"
         f"<p><strong>Safest across the grid: {ranking.text(first, 'policy')}</strong> — it falls at most "
         f"{ranking.span(first, 'worst_shortfall', 'pct')} percentage points short of the best policy of any "
-        f"cell after {study.campaign.horizon} trials (its worst failure risk is "
+        f"cell after {study.campaign.horizon} trials (its worst miss risk is "
         f"{ranking.pct(first, 'worst_failure_risk', 'worst_failure_low', 'worst_failure_high')}); "
         f"{escape(verdict)}.</p>"
         "<table><thead><tr><th>rank</th><th>policy</th><th class='n'>worst shortfall<br><small>against the "
-        "cell's best</small></th><th class='n'>worst failure risk<br><small>[95 % interval]</small></th>"
+        "cell's best</small></th><th class='n'>worst miss risk<br><small>[95 % interval]</small></th>"
         "<th class='n'>worst cell<br><small>(lengthscale, amplitude)</small></th><th class='n'>mean over the grid</th>"
         "<th class='n'>with the study's own belief</th></tr></thead>"
         f"<tbody>{rows}</tbody></table>"
@@ -217,11 +219,11 @@ def _summary_table(study, summary):
             )
     return (
         "<table><thead><tr><th>policy</th><th class='n'>campaigns</th>"
-        "<th class='n'>median regret<span class='ci'>[95 % interval]</span></th>"
-        "<th class='n'>middle 50 % of campaigns</th>"
+        f"<th class='n'>median regret ({unit_words(study)})<span class='ci'>[95 % interval]</span></th>"
+        f"<th class='n'>middle 50 % of campaigns ({unit_words(study)})</th>"
         "<th class='n'>within target<span class='ci'>[95 % interval]</span></th>"
-        "<th class='n'>failure risk<span class='ci'>[95 % interval]</span></th>"
-        "<th class='n'>mean of worst 10 % (CVaR-90)<span class='ci'>95 % lower bound</span></th>"
+        "<th class='n'>miss risk (failure risk)<span class='ci'>[95 % interval]</span></th>"
+        f"<th class='n'>worst 10 % average, CVaR-90 ({unit_words(study)})<span class='ci'>95 % lower bound</span></th>"
         f"</tr></thead><tbody>{''.join(rows)}</tbody></table>"
     )
 
@@ -257,7 +259,7 @@ def _reach_table(reach):
     return (f"<table><thead><tr><th>policy</th>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>")
 
 
-def _pairwise_table(pairs):
+def _pairwise_table(study, pairs):
     frame = pairs.frame
     rows = []
     for i in range(len(frame)):
@@ -273,8 +275,9 @@ def _pairwise_table(pairs):
         )
     return (
         "<table><thead><tr><th>policy A</th><th>policy B</th>"
-        "<th class='n'>A wins<span class='ci'>[95 % interval]</span></th>"
-        "<th class='n'>median regret A − B<span class='ci'>[95 % interval]</span></th><th>favoured</th>"
+        "<th class='n'>A wins (win rate: share of worlds A ends lower)<span class='ci'>[95 % interval]</span></th>"
+        f"<th class='n'>median regret A − B ({unit_words(study)})<span class='ci'>[95 % interval]</span></th>"
+        "<th>favoured</th>"
         "<th class='n'>sign test p (Holm)</th><th class='n'>Wilcoxon p (Holm)</th>"
         "<th class='n'>only A / only B miss</th><th class='n'>McNemar p (Holm)</th></tr></thead>"
         f"<tbody>{''.join(rows)}</tbody></table>"
@@ -284,11 +287,13 @@ def _pairwise_table(pairs):
 def _results(study, summary, reach, pairs, images, success, placement=None):
     horizon = study.campaign.horizon
     parts = [
-        '<section id="results"><h2>3. Results</h2>',
-        ("<p>Regret is the shortfall of the recommended setting from the world's best value, in objective "
-         "units (0 is perfect). <i>Within target</i> is the share of campaigns whose recommendation after "
-         "the budget's last trial is within the target: what a team that stops there would ship. Failure "
-         "risk is the rest, the share still above the target when the budget is spent. Intervals are 95 % "
+        '<section id="results"><h2>3. Results and risks</h2>',
+        (f"<p><i>Regret</i> is the shortfall of the recommended setting from the world's best value, in "
+         f"{unit_words(study)} (0 is perfect). <i>Within target</i> is the share of campaigns whose recommendation "
+         "after the budget's last trial is within the target: what a team that stops there would ship. "
+         f"<i>Miss risk</i> (<code>failure_risk</code> in the files) is the rest: {MISS_RISK_WORDS}. "
+         "<i>Worst 10 % average</i> (CVaR-90) is the mean regret of the worst tenth of campaigns. "
+         f"The target is {number(study.target)} {unit_words(study, study.target)}. Intervals are 95 % "
          "intervals of the simulation's own uncertainty (a finite number of worlds); they do not cover "
          "doubts about the prior. They are built to hold at the study's size: the median's from order "
          "statistics (binomial, distribution-free), the shares' exact (Clopper–Pearson). For the mean of "
@@ -296,7 +301,7 @@ def _results(study, summary, reach, pairs, images, success, placement=None):
          "inequality; Thomas &amp; Learned-Miller 2019): no method gives an upper bound that holds without "
          "knowing the largest possible regret, which these worlds do not have. The tail may be worse than "
          "the figure shown; it is at least as bad as the bound.</p>"),
-        "<h3>Regret, within-target share and failure risk at each budget</h3>",
+        "<h3>Regret, within-target share and miss risk at each budget</h3>",
         _summary_table(study, summary),
         _figures_in("results", study, images, success),
         "<h3>First passage (descriptive only)</h3>",
@@ -317,7 +322,7 @@ def _results(study, summary, reach, pairs, images, success, placement=None):
              "interval. p-values are Holm-adjusted over all pairs: the exact sign test of A's wins against "
              "B's (ties left out) for the win rate, Wilcoxon signed-rank for regret, McNemar's exact test "
              "for missing the target.</p>"),
-            _pairwise_table(pairs),
+            _pairwise_table(study, pairs),
             _figures_in("pairwise", study, images, success),
         ]
     if placement is not None:
@@ -359,7 +364,7 @@ def _choice_section(study, summary, choice, success):
                            else f"{who} in {risk}")
         items.append(f"<li>With {b} trials, {'; '.join(phrases)}.</li>")
     parts = ['<section id="choice"><h2>4. The choice</h2>',
-             "<h3>Failure risk at each budget</h3>", f'<ul class="choice">{"".join(items)}</ul>']
+             "<h3>Miss risk at each budget</h3>", f'<ul class="choice">{"".join(items)}</ul>']
     if choice is None:
         parts.append("<p>The study has a single policy, so there is nothing to choose between.</p></section>")
         return "".join(parts)
@@ -370,11 +375,11 @@ def _choice_section(study, summary, choice, success):
         leader, runner = choice.text(i, "leader"), choice.text(i, "runner_up")
         if attitude == _ATTITUDE_REGRET:
             s = (f"<b>If the typical outcome matters most</b> (lowest median regret): {leader} ends with a "
-                 f"median regret of {choice.sig(i, 'leader_value', 'leader_low', 'leader_high')} objective "
-                 f"units after {horizon} trials; the runner-up, {runner}, "
+                 f"median regret of {choice.sig(i, 'leader_value', 'leader_low', 'leader_high')} "
+                 f"{unit_words(study)} after {horizon} trials; the runner-up, {runner}, "
                  f"{choice.sig(i, 'runner_up_value', 'runner_up_low', 'runner_up_high')}.")
         elif attitude == _ATTITUDE_FAILURE:
-            s = (f"<b>If missing the target is what must be avoided</b> (lowest failure risk): with "
+            s = (f"<b>If missing the target is what must be avoided</b> (lowest miss risk): with "
                  f"{horizon} trials, {leader} misses the target in "
                  f"{choice.pct(i, 'leader_value', 'leader_low', 'leader_high')} of simulated campaigns; "
                  f"{runner} in {choice.pct(i, 'runner_up_value', 'runner_up_low', 'runner_up_high')}.")
@@ -407,8 +412,8 @@ def _clear_rule(study, success):
         f"widened to {100 * (1 - level):.1f} % for the trials attitude. With policies that are really equally "
         "good, some “clear” lead then appears in at most about 5 % of studies. On top of that, for the typical "
         "outcome the 95 % interval of the median paired regret difference must lie beyond "
-        f"<b>{number(study.lead_difference)}</b> objective units (<code>[target] difference</code>), and for "
-        "failure risk the 95 % interval of the paired difference in failure shares must lie beyond "
+        f"<b>{number(study.lead_difference)}</b> {unit_words(study, study.lead_difference)} (<code>[target] difference</code>), and for "
+        "miss risk the 95 % interval of the paired difference in failure shares must lie beyond "
         f"{number(100 * (1 - success) / 10)} percentage points (a tenth of the {fmt_pct(1 - success)} % failure "
         "risk accepted); for trials the ranges must be apart, i.e. by at least one whole trial. Otherwise the "
         "report says “tie” and gives the reason: more replicates may separate the policies, the difference may "

@@ -26,7 +26,8 @@ from .style import (GREY, JITTER_SEED, KIND_WIDTH, band_alpha, check_columns, co
 # ---------------------------------------------------------------------------
 # results figures
 # ---------------------------------------------------------------------------
-def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=None, unit="trial"):
+def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=None, unit="trial",
+                  units="objective units"):
     """Simple regret of the recommendation against trial (or round): median and interquartile band.
 
     Parameters
@@ -47,6 +48,8 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
         What the ``trial`` column counts; "round" when the curves are taken at the end of
         each round of trials evaluated together (the budgets and initial design are then
         given in rounds too).
+    units : str
+        The objective's unit for the regret axis (``[study] units``; "objective units" when none).
 
     Returns
     -------
@@ -92,7 +95,7 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     trials = curves["trial"].to_numpy()
     ax.set_xlim(min(trials.min(), 1) - 0.5, trials.max() + 0.5)
     ax.set_xlabel("round (trials evaluated together)" if unit == "round" else "trial")
-    ax.set_ylabel(f"simple regret (objective units)\n{floor_note(floor, values)}", fontsize=9.5)
+    ax.set_ylabel(f"simple regret ({units})\n{floor_note(floor, values)}", fontsize=9.5)
     ax.set_title("Regret after each round: median (line) and middle 50 % of campaigns (band)" if unit == "round"
                  else "Regret of the recommendation: median (line) and middle 50 % of campaigns (band)",
                  fontsize=10, loc="left")
@@ -139,8 +142,8 @@ def failure_figure(summary, *, colors=None, ax=None):
     percent_axis(ax.yaxis)
     ax.grid(axis="y", color="#dddddd", lw=0.6)
     ax.set_xlabel("budget (trials)")
-    ax.set_ylabel("failure risk\n(share of campaigns above the target)")
-    ax.set_title("Failure risk at each budget, with exact 95 % intervals (Clopper–Pearson)", fontsize=10, loc="left")
+    ax.set_ylabel("miss risk (failure risk)\n(share of campaigns above the target)")
+    ax.set_title("Miss risk at each budget, with exact 95 % intervals (Clopper–Pearson)", fontsize=10, loc="left")
     legend_outside(ax)
     return fig
 
@@ -239,7 +242,7 @@ def reach_figure(reach, *, success=0.9, colors=None, ax=None):
     return fig
 
 
-def final_regret_figure(final, *, target, budget=None, colors=None, ax=None):
+def final_regret_figure(final, *, target, budget=None, colors=None, ax=None, units="objective units"):
     """Distribution of regret at one budget per policy: box plot with every campaign shown.
 
     Parameters
@@ -253,6 +256,8 @@ def final_regret_figure(final, *, target, budget=None, colors=None, ax=None):
     colors : dict, optional
         `policy_colors` mapping.
     ax : matplotlib Axes, optional
+    units : str
+        The objective's unit for the regret axis.
 
     Returns
     -------
@@ -286,7 +291,7 @@ def final_regret_figure(final, *, target, budget=None, colors=None, ax=None):
         ax.text(target, 1.0, f" target {target:g}", transform=ax.get_xaxis_transform(), fontsize=8,
                 va="bottom", ha="left")
     policy_ticks(ax.yaxis, labels, colors)
-    ax.set_xlabel(f"simple regret (objective units)\n{floor_note(floor, final['regret'])}")
+    ax.set_xlabel(f"simple regret ({units})\n{floor_note(floor, final['regret'])}")
     ax.set_ylabel("policy")
     when = f" after {budget} trials" if budget is not None else ""
     ax.set_title(f"Regret of every campaign{when} (box: quartiles; dots: campaigns)", fontsize=10, loc="left",

@@ -9,6 +9,7 @@ from numbers import Integral
 
 import numpy as np
 
+from .cells import unit_label
 from .style import GREY, KIND_WIDTH, Z95, check_columns, colors_for, display_label, linestyles, policy_ticks
 
 # The snapshot's Monte Carlo minimiser distribution has its own fixed generator so that
@@ -263,7 +264,7 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     if not snap.fixed:
         top.plot([snap.best_x], [snap.best_y], ls="none", marker="*", ms=13, color="#E69F00", mec="#000000",
                  mew=0.6, label="true best input", gid="true-best")
-    top.set_ylabel(f"objective ({goal})")
+    top.set_ylabel(f"objective, {unit_label(study)} ({goal})")
     top.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=8.5)
 
     for label in labels:
