@@ -100,7 +100,7 @@ def _assumptions(study, version):
                     for n, lo, hi in zip(study.space.names, study.space.low, study.space.high))
     policies = "".join(
         f"<tr><td>{escape(p.label)}</td><td>{escape(p.rule)}</td><td>{escape(POLICIES[p.rule].description)}</td>"
-        f"<td>{_settings(p)}</td></tr>"
+        f"<td>{_settings(p, study)}</td></tr>"
         for p in study.policies
     )
     c = study.campaign
@@ -130,7 +130,7 @@ def _assumptions(study, version):
     )
 
 
-def _settings(spec):
+def _settings(spec, study=None):
     """Every setting a policy ran with, resolved (``margin = 0``), each with its help text (HTML)."""
     options = POLICIES[spec.rule].options
     if not spec.settings:
@@ -144,7 +144,10 @@ def _settings(spec):
         text = (f"{key} = {value:g}" if isinstance(value, (int, float)) and not isinstance(value, bool)
                 else f"{key} = {value}")
         default = " (default)" if key in options and value == options[key].default else ""
-        what = f"<span class='ci'>{escape(options[key].help)}{default}</span>" if key in options else ""
+        words = options[key].help if key in options else ""
+        if getattr(study, "units", ""):
+            words = words.replace("objective units", study.units)   # a setting in the objective's own unit
+        what = f"<span class='ci'>{escape(words)}{default}</span>" if key in options else ""
         shown.append(f"<div><code>{escape(text)}</code>{what}</div>")
     return "".join(shown)
 
