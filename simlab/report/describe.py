@@ -158,6 +158,8 @@ def _policy_cautions(study):
     items = []
     for p in study.policies:
         words = POLICIES[p.rule].caution(p.options, study)
+        if words and study.units:
+            words = words.replace("objective units", study.units)   # the rule's words, in the study's unit
         if words:
             items.append(f"<li><b>{escape(p.label)}</b>: {escape(words)}</li>")
     if not items:

@@ -37,7 +37,7 @@ def _study(*, units=None, replicates, target, seed):
         "world": {"kernel": "matern52", "lengthscale": 15.0, "amplitude": 1.0, "mean": 80.0, "noise": 0.05},
         "campaign": {"initial": 3, "budgets": [5, 8], "pool": 128},
         "target": {"regret": target},
-        "policy": [{"rule": "ei", "label": "EI"}, {"rule": "lcb", "label": "UCB"},
+        "policy": [{"rule": "ei", "label": "EI"}, {"rule": "lcb", "label": "UCB"}, {"rule": "pi", "label": "PI"},
                    {"rule": "random", "label": "Random"}],
     }
     if units is not None:
