@@ -42,8 +42,18 @@ def _who(study, choice, i):
         return (f"<b>Use {leader}</b>: it misses the target least often of the policies tried, and clearly so "
                 f"(runner-up {runner}).")
     return (f"<b>Use {leader} or {runner}</b>: they are tied on the lowest miss risk — {leader} is "
-            f"{choice.text(i, 'evidence')}. Other grounds separate them (the choice section); "
-            f"the numbers below are {leader}'s.")
+            f"{choice.text(i, 'evidence')}.{_other_attitudes(choice, i)} The numbers below are {leader}'s.")
+
+
+def _other_attitudes(choice, skip):
+    """What else separates a tie: the other attitudes' leaders and whether their leads are clear."""
+    said = []
+    for j in range(len(choice.frame)):
+        if j == skip or is_missing(choice.value(j, "leader")):
+            continue
+        verdict = "a clear lead" if choice.value(j, "lead") == "clear" else "also a tie"
+        said.append(f"on {choice.text(j, 'attitude')} {choice.text(j, 'leader')} leads ({verdict})")
+    return (" Other grounds: " + "; ".join(said) + " (section “The choice”).") if said else ""
 
 
 def _residual(summary, within, policy, budget):
