@@ -13,7 +13,7 @@ import numpy as np
 
 from ..evidence import choice as choice_rules
 from .cells import Cells, escape, fmt_pct, is_missing, number, unit_words
-from .files import SUMMARY, WITHIN_TARGET
+from .files import WITHIN_TARGET
 
 _, _ATTITUDE_FAILURE, _ = choice_rules.ATTITUDES
 

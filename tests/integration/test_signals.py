@@ -65,8 +65,11 @@ def _start_and_stop(folder: Path, sig: int, *, group: bool):
         time.sleep(0.05)
     assert proc.poll() is None, "the run finished before it could be stopped; make SLOW longer"
     os.killpg(proc.pid, sig) if group else os.kill(proc.pid, sig)
-    _, err = proc.communicate(timeout=120)
+    out, err = proc.communicate(timeout=120)
     time.sleep(0.5)
+    if proc.returncode == 0:   # diagnose a stop that did not take (seen once under load): what did the run do?
+        err += (f"\n[exit 0 after the signal; stdout: {out[-500:]!r}; folder: "
+                f"{sorted(p.name for p in (folder / 'cut').rglob('*'))}]")
     return proc, err
 
 
