@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__version__ = "0.3.0"
+__version__ = "0.4.0"
 
 from .api import StudyResult, SweepResult, WorldView, load_results, run_study, run_sweep_study, world  # noqa: E402
 from .study.spec import Study, StudyError, load_study  # noqa: E402
