@@ -26,6 +26,7 @@ class WorldKind:
 
     name: ClassVar[str] = ""
     options: ClassVar[dict[str, Option]] = {}
+    words: ClassVar[str] = ""     # how the worlds are made, for the report; {setting} fields are filled in
 
     @classmethod
     def options_for(cls, dim: int) -> dict[str, Option]:
@@ -39,8 +40,8 @@ class WorldKind:
 
     @classmethod
     def describe(cls, settings: dict) -> str:
-        """How the worlds are made, in words for the report."""
-        raise NotImplementedError
+        """How the worlds are made, in words for the report (``words`` with the settings filled in)."""
+        return cls.words.format(**settings)
 
     @classmethod
     def draw(cls, kernel: Kernel, mean: float, rng: np.random.Generator, settings: dict) -> World:
@@ -51,10 +52,7 @@ class WorldKind:
 class FeatureKind(WorldKind):
     name = "features"
     options = {"features": Option(1024, int, 16, 65536, "spectral frequencies per draw (2x as many basis functions)")}
-
-    @classmethod
-    def describe(cls, settings):
-        return f"random Fourier features ({settings['features']} frequencies: continuous functions)"
+    words = "random Fourier features ({features} frequencies: continuous functions)"
 
     @classmethod
     def draw(cls, kernel, mean, rng, settings):
@@ -63,6 +61,7 @@ class FeatureKind(WorldKind):
 
 class GridKind(WorldKind):
     name = "grid"
+    words = "exact joint draws on a grid of {grid} points per input"
 
     @classmethod
     def options_for(cls, dim):
@@ -77,10 +76,6 @@ class GridKind(WorldKind):
             return "world.lengthscale_within", ("uncertain lengthscales need method = \"features\" (a grid draw "
                                                 "factors one covariance matrix for all replicates)")
         return None
-
-    @classmethod
-    def describe(cls, settings):
-        return f"exact joint draws on a grid of {settings['grid']} points per input"
 
     @classmethod
     def draw(cls, kernel, mean, rng, settings):

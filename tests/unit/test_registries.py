@@ -65,10 +65,7 @@ class CoarseKind(kinds.WorldKind):
 
     name = "coarse"
     options = {"coarse_features": Option(64, int, 4, 1024, "frequencies per draw")}
-
-    @classmethod
-    def describe(cls, settings):
-        return f"coarse random features ({settings['coarse_features']} frequencies)"
+    words = "coarse random features ({coarse_features} frequencies)"
 
     @classmethod
     def draw(cls, kernel, mean, rng, settings):
@@ -86,6 +83,7 @@ def test_a_registered_world_kind_is_read_written_drawn_and_replayed(monkeypatch)
     assert rep.optimum[1] <= world(np.random.default_rng(1).random((4096, 2))).min() + 1e-12
     traces = replay(s)
     assert (traces["regret"] >= 0).all()
+    assert CoarseKind.describe(dict(s.world.method_settings)) == "coarse random features (32 frequencies)"
     with pytest.raises(StudyError, match="world.method"):   # negative control: unknown without the entry
         monkeypatch.delitem(kinds.WORLD_KINDS, "coarse")
         study(method="coarse")
