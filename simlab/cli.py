@@ -278,7 +278,7 @@ def _report(args) -> int:
 
 
 def _plan(args) -> int:
-    from .report.console import budget_text, pct_interval
+    from .report.console import budget_text, pct_interval, unit_label
     import pandas as pd
 
     from .api import load_results, run_study
@@ -314,7 +314,7 @@ def _plan(args) -> int:
             print(f"simlab: warning: {msg}", file=sys.stderr)
     plan = budget_plan(result.traces, target=study.target, success=args.success)
     print(f"smallest budget at which {args.success:.0%} of campaigns end within the target "
-          f"(recommendation after the budget's last trial: regret <= {study.target:g})\n")
+          f"(recommendation after the budget's last trial: regret <= {study.target:g} {unit_label(study)})\n")
     header = (f"{'policy':<20} {'budget':>7}  {'range (optimistic to conservative)':<36} "
               f"{'within target at that budget':>30}  {'stays from':>10}")
     print(header)

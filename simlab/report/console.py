@@ -4,7 +4,10 @@ from __future__ import annotations
 
 import pandas as pd
 
-from .cells import fmt_pct
+from .cells import fmt_pct, unit_label
+
+__all__ = ["budget_table", "budget_text", "duration", "pct_interval", "unit_label"]
+
 
 def duration(seconds: float) -> str:
     if seconds < 10:
@@ -28,7 +31,7 @@ def budget_text(value, *, above: int) -> str:
 
 def budget_table(study, summary) -> str:
     """Median regret with quartiles, and the share within the target with its exact (Clopper-Pearson) interval."""
-    lines = [f"simple regret of the recommendation (objective units; target: regret <= {study.target:g})", ""]
+    lines = [f"simple regret of the recommendation ({unit_label(study)}; target: regret <= {study.target:g})", ""]
     header = (f"{'policy':<20} {'budget':>6}  {'median regret [q25, q75]':<30} "
               f"{'within target [95% interval]':>28}")
     lines += [header, "-" * len(header)]
