@@ -108,8 +108,9 @@ def answer_section(study, tables, summary, plan, choice, sweep, success):
     else:
         parts.append(
             "<b>The assumption most likely to change this is the prior</b> (how rough and how large the real "
-            "objective's variation is). It has <b>not</b> been checked here: <code>simlab sweep STUDY.toml</code> "
-            "replays the study under wrong priors and adds the result to this report.")
+            "objective's variation is). It has <b>not</b> been checked here: "
+            f"<code>simlab sweep {escape(_study_file(study))}</code> replays the study under wrong priors and adds "
+            "the result to this report.")
     parts.append(" Simulated advice only: read the cautions before running any trial.</p>")
     lines = []
     for b in study.campaign.budgets:
@@ -120,3 +121,11 @@ def answer_section(study, tables, summary, plan, choice, sweep, success):
     return ('<section id="answer"><h2>0. The answer</h2><div class="box answer">' + "".join(parts)
             + f"<p>The budgets asked about ({asked} trials), for {escape(policy)}:</p>"
             + f'<ul class="budgets">{"".join(lines)}</ul></div></section>')
+
+
+def _study_file(study) -> str:
+    """The study file the user named (shell-quoted when it needs it), or a placeholder when the
+    study did not come from a file."""
+    import shlex
+    source = str(study.source)
+    return shlex.quote(source) if source.endswith(".toml") else "STUDY.toml"

@@ -294,3 +294,14 @@ def test_answer_is_on_the_first_screen_in_chromium(easy, tmp_path):
     answer = re.search(r'<section id="answer">.*?</section>', page, re.S).group(0)
     moved = page.replace(answer, "", 1).replace("</body>", answer + "</body>")
     assert _measure(binary, moved, tmp_path, "moved")[0] > 900
+
+
+def test_the_sweep_command_names_the_study_file_the_user_gave():
+    # common practice: a command to copy names the user's own file, shell-quoted (shlex) when it needs it
+    import dataclasses
+
+    from simlab.report.answer import _study_file
+    demo = load_study(ROOT / "configs" / "demo.toml")
+    assert _study_file(demo) == str(ROOT / "configs" / "demo.toml")
+    assert _study_file(dataclasses.replace(demo, source="my runs/extruder.toml")) == "'my runs/extruder.toml'"
+    assert _study_file(dataclasses.replace(demo, source="<study>")) == "STUDY.toml"   # not from a file
