@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 import signal
 import sys
 import time
@@ -77,10 +76,8 @@ def _warn_jobs(jobs: int) -> None:
 
 
 def _cores() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):   # not on Linux
-        return os.cpu_count() or 1
+    from .replay.runner import cores
+    return cores()
 
 
 def _load(args):
@@ -278,7 +275,8 @@ def _report(args) -> int:
 
 
 def _plan(args) -> int:
-    from .report.console import budget_text, pct_interval, unit_label
+    from .report.cells import unit_label
+    from .report.console import budget_text, pct_interval
     import pandas as pd
 
     from .api import load_results, run_study

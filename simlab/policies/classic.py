@@ -74,7 +74,7 @@ class ConfidenceBound(Acquisition):
     def caution(cls, settings, study):
         """A small width is close to pure exploitation; one width alone is one setting of the rule, not the rule."""
         width = settings["width"]
-        widths = {dict(p.settings).get("width") for p in study.policies if p.rule == cls.rule}
+        widths = {p.options["width"] for p in study.policies if p.rule == cls.rule}
         words = []
         if width < cls.small_width:
             words.append(f"width = {width:g} posterior sd explores little: the rule is close to taking the lowest "

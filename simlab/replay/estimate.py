@@ -8,7 +8,7 @@ import tempfile
 import time
 from dataclasses import dataclass
 
-from .runner import _workers, chunk_plan
+from .runner import _workers, chunk_plan, cores
 from ..study.spec import Study
 
 __all__ = ["Estimate", "measure", "process_age", "worker_startup"]
@@ -59,7 +59,7 @@ class Estimate:
         plan = chunk_plan(study)
         workers = min(_workers(jobs), len(plan))
         costs = [self.per_replicate * len(c) for c in plan]
-        span = _makespan(costs, workers) * _slowdown(workers, self.others, _cores())
+        span = _makespan(costs, workers) * _slowdown(workers, self.others, cores())
         return span + (self._start_workers(study, jobs) if start else 0.0)
 
     def _start_workers(self, study: Study, jobs: int) -> float:
@@ -96,10 +96,6 @@ def _makespan(costs: list[float], workers: int) -> float:
         i = min(range(len(free)), key=free.__getitem__)
         free[i] += c
     return max(free)
-
-
-def _cores() -> int:
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
 def _slowdown(workers: int, others: float, cores: int) -> float:
@@ -164,4 +160,4 @@ def measure(study: Study, *, replicates: int = 4) -> Estimate:
     with tempfile.TemporaryDirectory(prefix="simlab-check-") as tmp:
         write_outputs(tmp, study, traces)
     report = time.perf_counter() - t0
-    return Estimate(per_replicate=per, timed=n, startup=startup, report=report, others=_others(cpu, wall, _cores()))
+    return Estimate(per_replicate=per, timed=n, startup=startup, report=report, others=_others(cpu, wall, cores()))

@@ -247,11 +247,17 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
             client.close()
 
 
+def cores() -> int:
+    """The cores this process may run on (its CPU affinity where the system has one)."""
+    import os
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):   # not on Linux
+        return os.cpu_count() or 1
+
+
 def _workers(jobs: int) -> int:
-    if jobs == -1:
-        import os
-        return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    return max(int(jobs), 1)
+    return cores() if jobs == -1 else max(int(jobs), 1)
 
 
 def _stop_local_workers() -> None:

@@ -114,14 +114,22 @@ def escape(text):
 def unit_words(study, value=None):
     """The objective's unit for the page: ``[study] units`` as written, else "objective unit(s)"
     (singular when `value` is exactly 1)."""
-    if getattr(study, "units", ""):
+    if study.units:
         return escape(study.units)
     return "objective unit" if value is not None and float(value) == 1.0 else "objective units"
 
 
 def unit_label(study):
     """The objective's unit as plain text for a figure's axis ("objective units" when none; "$" kept literal)."""
-    return (getattr(study, "units", "") or "objective units").replace("$", r"\$")
+    return (study.units or "objective units").replace("$", r"\$")
+
+
+def in_units(text, study):
+    """Text written by the evidence or a rule in "objective unit(s)", in the study's own unit
+    (``[study] units``) when it has one; other values (None, NaN) pass through."""
+    if not study.units or not isinstance(text, str):
+        return text
+    return text.replace("objective units", study.units).replace("objective unit", study.units)
 
 
 def number(value):

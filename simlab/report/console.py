@@ -6,7 +6,7 @@ import pandas as pd
 
 from .cells import fmt_pct, unit_label
 
-__all__ = ["budget_table", "budget_text", "duration", "pct_interval", "unit_label"]
+__all__ = ["budget_table", "budget_text", "duration", "pct_interval"]
 
 
 def duration(seconds: float) -> str:

@@ -9,7 +9,7 @@ from ..model.kernels import KERNELS
 from ..policies import POLICIES, Policy
 from ..worlds.kinds import WORLD_KINDS
 from ..worlds.noise import NOISE_SHAPES
-from .cells import escape, fmt_pct, number, unit_words
+from .cells import escape, fmt_pct, in_units, number, unit_words
 
 
 def _question(study, success):
@@ -130,7 +130,7 @@ def _assumptions(study, version):
     )
 
 
-def _settings(spec, study=None):
+def _settings(spec, study):
     """Every setting a policy ran with, resolved (``margin = 0``), each with its help text (HTML)."""
     options = POLICIES[spec.rule].options
     if not spec.settings:
@@ -145,21 +145,17 @@ def _settings(spec, study=None):
                 else f"{key} = {value}")
         default = " (default)" if key in options and value == options[key].default else ""
         words = options[key].help if key in options else ""
-        if getattr(study, "units", ""):
-            words = words.replace("objective units", study.units)   # a setting in the objective's own unit
+        words = in_units(words, study)   # a setting in the objective's own unit
         what = f"<span class='ci'>{escape(words)}{default}</span>" if key in options else ""
         shown.append(f"<div><code>{escape(text)}</code>{what}</div>")
     return "".join(shown)
-
 
 
 def _policy_cautions(study):
     """The rules' own warnings (``Policy.caution``) for policies run with settings that make them weak."""
     items = []
     for p in study.policies:
-        words = POLICIES[p.rule].caution(p.options, study)
-        if words and study.units:
-            words = words.replace("objective units", study.units)   # the rule's words, in the study's unit
+        words = in_units(POLICIES[p.rule].caution(p.options, study), study)   # the rule's words, in the study's unit
         if words:
             items.append(f"<li><b>{escape(p.label)}</b>: {escape(words)}</li>")
     if not items:

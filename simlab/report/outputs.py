@@ -13,6 +13,7 @@ from ..evidence import choice, compare, frame, metrics, reach
 from ..evidence.placement import placement_table
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
+from .cells import in_units
 from .figures import FigureInput
 from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, PLACEMENT, REPORT, SUMMARY, SWEEP_RANKING,
                     SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
@@ -171,10 +172,7 @@ def _in_units(table, study):
     the CSV and the page then say "0.1 MPa" where the evidence code writes "objective units"."""
     if not study.units or "evidence" not in table:
         return table
-    words = table["evidence"].astype(object)
-    return table.assign(evidence=words.map(lambda t: t if not isinstance(t, str) else
-                                           t.replace("objective units", study.units)
-                                           .replace("objective unit", study.units)))
+    return table.assign(evidence=table["evidence"].astype(object).map(lambda t: in_units(t, study)))
 
 
 def _levels(success):
