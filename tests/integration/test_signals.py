@@ -15,11 +15,13 @@ import pandas as pd
 import pytest
 from command_line import simlab
 
-# Long enough to be stopped part-way with --jobs 2 (8 chunks of 6 replicates).
+# Long enough to be stopped part-way with --jobs 2 (8 chunks of 12 replicates): the stop must land while
+# chunks remain. With 6 replicates a chunk, the run finished before the signal took effect (exit 0,
+# every file written) in two of five full-suite runs under load.
 SLOW = """
 [study]
 name = "safe-slow"
-replicates = 48
+replicates = 96
 seed = 77
 [space]
 dose = [0.0, 1.0]
@@ -89,4 +91,4 @@ def test_a_stopped_run_keeps_its_chunks_removes_its_lock_and_its_workers(tmp_pat
         return                               # resuming is the same after either signal
     resumed = simlab("run", "s.toml", "--out", "cut", "--resume", "--quiet", "--no-report", cwd=tmp_path)
     assert resumed.returncode == 0, resumed.stderr
-    assert len(pd.read_parquet(tmp_path / "cut" / "traces.parquet")) == 48 * 2 * 20
+    assert len(pd.read_parquet(tmp_path / "cut" / "traces.parquet")) == 96 * 2 * 20
