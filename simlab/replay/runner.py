@@ -19,6 +19,7 @@ from ..worlds.replicate import (Replicate, history_arrays, make_observer, make_r
                                 world_optimum)
 from .campaign import run_campaign
 from .trace import Trace
+from .workers import workers as _workers
 
 __all__ = ["make_belief", "make_policy", "replay_replicate", "replay", "replay_study", "replay_chunks",
            "chunk_plan", "connect",
@@ -245,19 +246,6 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     finally:
         if isinstance(cluster, str):
             client.close()
-
-
-def cores() -> int:
-    """The cores this process may run on (its CPU affinity where the system has one)."""
-    import os
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):   # not on Linux
-        return os.cpu_count() or 1
-
-
-def _workers(jobs: int) -> int:
-    return cores() if jobs == -1 else max(int(jobs), 1)
 
 
 def _stop_local_workers() -> None:
