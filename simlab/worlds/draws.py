@@ -88,7 +88,7 @@ _ROUGH = {0.5: 4.0, 1.5: 2.0}   # more points for rough kernels (Matern 1/2, 3/2
 # lengthscale cell and is smooth inside it, so a few Sobol' points per cell find the basins
 # and quasi-Newton steps on the float32 values find their floors.
 _SMOOTH_PER_CELL = 32
-_SMOOTH_MIN, _SMOOTH_MAX = 2**9, 2**16
+_SMOOTH_MIN, _SMOOTH_MAX = 2**9, 2**18
 # With ``band``, a ranking step sees the components of frequency norm up to this many radians per
 # half-width of its box (tried 1, 2, 3, 6 and 10 on 4-D and 6-D Matern 1/2 and 3/2 worlds: 3 missed least).
 _BAND_RADIANS = 3.0
@@ -113,13 +113,14 @@ def search_plan(dim: int, lengthscale=None, nu: float = np.inf) -> SearchPlan:
     *Random Fields and Geometry*, chapter 11, from memory).
 
     *Smooth* kernels (Matern 5/2, squared exponential, and Matern 3/2 in 1 or 2 inputs):
-    ``32 x cells`` Sobol' points (2^9 to 2^16), 8 + 8 d separated starts, up to 40 damped
+    ``32 x cells`` Sobol' points (2^9 to 2^18), 8 + 8 d separated starts, up to 40 damped
     Newton steps on the float32 values from every start (no zoom: gradients are informative
     inside a basin), then the best 2 + d/2 starts polished in float64. Measured by
     benchmarks/world_optima.py (lengthscale 0.2): with 16 points per cell and 8 + 4 d starts,
     one 6-D Matern 5/2 world of five was missed by 0.22 and one 4-D world by 0.12; Matern 3/2
     in 4 inputs on this path missed one world of eight by 0.07, so from 4 inputs it keeps the
-    rough search.
+    rough search; with at most 2^16 points, one 6-D squared-exponential world of nine was
+    missed by 0.45 (2^18 found it).
 
     *Rough* kernels' random-feature draws are wiggly on scales far below the lengthscale
     (their spectral densities have heavy tails): ``64 x roughness x cells`` Sobol' points
