@@ -15,6 +15,7 @@ from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
 from ..worlds.kinds import WORLD_KINDS, world_options
+from ..worlds.mixed import MAX_ENUMERATED, MAX_SEARCHED, discrete_combinations, needs_mixed
 from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
 from .types import (CATEGORICAL, CONTINUOUS, DESIGNS, GOALS, LOG, MAX_REPLICATES, NAME_LENGTH, STEPPED, UNITS_LENGTH,
@@ -149,6 +150,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         refusal = WORLD_KINDS[method].refuse(space.dim, uncertain_lengthscale=within["lengthscale_within"] != 1.0)
         if refusal is not None:
             r.fail(*refusal)
+        if needs_mixed(space):
+            _refuse_mixed(r, space, method, within)
         settings = r.options(wt, "world", world_options(space.dim))
         world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise, method=method,
                           method_settings=settings, **within, **_read_noise(r, wt))
@@ -288,6 +291,28 @@ def _read_space(r: "_Reader", data: dict, *, fn, base_dir: Path | None = None) -
     if "candidates" in data:
         space = _make_space(names, low, high, kinds, steps, levels, _read_library(r, data, space, base_dir))
     return space
+
+
+def _refuse_mixed(r: "_Reader", space: Space, method: str, within: dict) -> None:
+    """What the worlds over stepped or categorical inputs and libraries (worlds/mixed.py) cannot do yet."""
+    if method != "features":
+        r.fail("world.method", f"\"{method}\" worlds are for boxes of reals; stepped or categorical inputs and "
+               "libraries are drawn with method = \"features\"")
+    for key, value in within.items():
+        if value != 1.0:
+            r.fail(f"world.{key}", "uncertain hyperparameters are not supported yet with stepped or categorical "
+                   "inputs or a library (issue 15 lands them later)")
+    if space.library is not None:
+        return      # a library's world is evaluated at its rows: no search, no limit
+    total = discrete_combinations(space)
+    continuous = [j for j in range(space.dim) if space.kind(j) not in (STEPPED, CATEGORICAL)]
+    if continuous and total > MAX_SEARCHED:
+        r.fail("space", f"{total:,} combinations of levels and stepped values; the world's optimum search covers at "
+               f"most {MAX_SEARCHED} beside continuous inputs yet (each gets a full search): use fewer levels or "
+               "coarser steps, or a [candidates] library")
+    if not continuous and total > MAX_ENUMERATED:
+        r.fail("space", f"{total:,} allowed points; at most {MAX_ENUMERATED:,} are enumerated for the world's "
+               "optimum yet: use fewer levels or coarser steps, or a [candidates] library")
 
 
 def _make_space(names, low, high, kinds, steps, levels, library=None) -> Space:
@@ -718,9 +743,9 @@ class _Reader:
 # slices), and which parts those are. A study using one is refused as a whole, in one line, by
 # load_study: never run with a part that would treat a stepped or categorical input as a real number.
 NOT_YET: dict[str, str] = {
-    STEPPED: "the world draws and the policies",
-    CATEGORICAL: "the world draws and the policies",
-    "library": "the world draws and the policies",
+    STEPPED: "the policies, the belief and the report",
+    CATEGORICAL: "the policies, the belief and the report",
+    "library": "the policies and the report",
 }
 
 

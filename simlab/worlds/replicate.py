@@ -16,6 +16,7 @@ from ..study.types import Prior, Study
 from . import functions
 from .draws import ConditionedWorld, FunctionWorld, World
 from .kinds import WORLD_KINDS
+from .mixed import make_mixed_world, needs_mixed
 from .noise import Observer
 
 __all__ = ["Replicate", "make_replicate", "make_world", "world_optimum", "make_observer", "history_arrays",
@@ -32,6 +33,9 @@ def make_world(study: Study, replicate: int) -> World:
     w = study.world
     if w.function is not None:
         return FunctionWorld(functions.FUNCTIONS[w.function])
+    if needs_mixed(study.space):   # stepped or categorical inputs, or a library (simlab.worlds.mixed)
+        return make_mixed_world(study, w.prior, study.sign * w.prior.mean, stream(study.seed, replicate, "world"),
+                                dict(w.method_settings)["features"])
     kernel = unit_kernel(w.prior, study)
     if w.lengthscale_within != 1.0 or w.amplitude_within != 1.0:
         kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
