@@ -745,16 +745,23 @@ class _Reader:
 NOT_YET: dict[str, str] = {
     STEPPED: "the policies, the belief and the report",
     CATEGORICAL: "the policies, the belief and the report",
-    "library": "the policies and the report",
 }
+# Rules that choose a library's rows (every row scored exactly, or drawn without replacement).
+LIBRARY_RULES = ("random", "sobol", "ei")
 
 
 def unsupported(study: Study) -> tuple[str, str] | None:
     """(field, message) when the study uses an input kind some part of simlab does not support yet."""
     space = study.space
-    if space.library is not None and "library" in NOT_YET:
-        return "candidates.file", (f"a [candidates] library is not supported yet by {NOT_YET['library']} (issue 15 "
-                                   "is landing in slices); the study file is valid but cannot run yet")
+    if space.library is not None:
+        for i, p in enumerate(study.policies):
+            if p.rule not in LIBRARY_RULES:
+                return f"policy[{i}].rule", (f"\"{p.rule}\" does not choose from a [candidates] library yet (issue 15 "
+                                             f"is landing in slices); with a library use {', '.join(LIBRARY_RULES)}")
+            if p.options.get("exploit_last", 0):
+                return f"policy[{i}].exploit_last", "is not supported yet with a [candidates] library"
+        if study.campaign.batch != 1:
+            return "campaign.batch", "rounds of several trials are not supported yet with a [candidates] library"
     for j in range(space.dim):
         kind = space.kind(j)
         if kind in NOT_YET:

@@ -113,6 +113,18 @@ def make_observer(study: Study) -> Observer:
                     center=ref.mean, scale=ref.amplitude, lost=w.lost, sign=study.sign)
 
 
+def _library_material(study: Study, r: int):
+    """A library's design, sequence and pool: the rows in a random order of the replicate's own
+    (permutations joined end to end, so rows come without replacement until the library is
+    exhausted), the design its first rows whatever ``[campaign] design`` says, and the pool every row."""
+    rows = study.space.library_unit()
+    rng = stream(study.seed, r, "library")
+    n = study.campaign.horizon
+    order = np.concatenate([rng.permutation(len(rows)) for _ in range(-(-n // len(rows)))])[:n]
+    sequence = rows[order]
+    return sequence[: study.campaign.initial], sequence, rows
+
+
 def make_replicate(study: Study, r: int) -> Replicate:
     d, c = study.space.dim, study.campaign
     B = c.horizon
@@ -127,6 +139,9 @@ def make_replicate(study: Study, r: int) -> Replicate:
     else:
         design = rng.random((c.initial, d))
     shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
-    pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
+    if study.space.library is not None:
+        design, sequence, pool = _library_material(study, r)
+    else:
+        pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
     return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,
                      shocks=shocks, lost=lost, pool=pool, optimum_gap=gap)
