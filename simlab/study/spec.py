@@ -764,6 +764,8 @@ def unsupported(study: Study) -> tuple[str, str] | None:
             return "campaign.batch", "rounds of several trials are not supported yet with a [candidates] library"
     for j in range(space.dim):
         kind = space.kind(j)
+        if kind == STEPPED and space.library is not None:
+            continue    # a library's rows lie on the grid already: the prior at the rows needs no rounding
         if kind in NOT_YET:
             return f"space.{space.names[j]}", (f"{kind} inputs are not supported yet by {NOT_YET[kind]} (issue 15 is "
                                                 "landing in slices); the study file is valid but cannot run yet")

@@ -75,3 +75,15 @@ def test_library_refuses_rules_that_cannot_choose_rows_yet(tmp_path):
     (tmp_path / "s.toml").write_text(STUDY.replace('rule = "random"', 'rule = "lcb"'), encoding="utf-8")
     with pytest.raises(StudyError, match=r"policy\[1\].rule: \"lcb\" does not choose from a \[candidates\] library"):
         load_study(tmp_path / "s.toml")
+
+
+def test_stepped_columns_of_a_library_keep_their_exact_values(tmp_path):
+    # a library's rows are on the step grid already, so the prior at the rows needs no rounding;
+    # the traces hold the stepped values exactly (low + k step, from the integer k)
+    (tmp_path / "feeds.csv").write_text("feed_rate,washes\n0.5,1\n0.9,3\n1.4,2\n1.8,6\n2.2,4\n", encoding="utf-8")
+    text = STUDY.replace("[candidates]", "[space]\nfeed_rate = [0.5, 2.5]\nwashes = { low = 1, high = 6, step = 1 }\n"
+                         "[candidates]").replace("replicates = 20", "replicates = 3").replace("[0.8, 3.0]", "[0.8, 2.0]")
+    (tmp_path / "s.toml").write_text(text, encoding="utf-8")
+    traces = replay(load_study(tmp_path / "s.toml"))
+    assert set(traces["washes"]) == {1.0, 2.0, 3.0, 4.0, 6.0}
+    assert (traces[(traces["policy"] == "ei") & (traces["trial"] >= 5)]["regret"] == 0.0).all()

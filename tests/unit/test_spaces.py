@@ -254,9 +254,9 @@ def test_kinds_not_runnable_yet_are_refused_in_one_line(tmp_path, old, new, fiel
     assert msg.startswith(f"{path}: {field}: ") and "not supported yet by" in msg and "\n" not in msg, msg
 
 
-def test_library_not_runnable_yet_is_refused(tmp_path):
+def test_library_with_a_categorical_column_not_runnable_yet_is_refused(tmp_path):
     write(tmp_path, LIBRARY_CSV, "library.csv")
-    with pytest.raises(StudyError, match="candidates.file: a \\[candidates\\] library is not supported yet by"):
+    with pytest.raises(StudyError, match="space.binder: categorical inputs are not supported yet by the policies"):
         load_study(write(tmp_path, LIBRARY_TOML))
 
 
