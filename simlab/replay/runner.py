@@ -70,7 +70,8 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     for spec in study.policies:
         probe = make_policy(spec)
         horizons = c.budgets if probe.horizon_aware else (c.horizon,)
-        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost)
+        together = (lockstep and study.space.library is None     # a library's campaigns run one at a time
+                    and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost))
         per: list[list[tuple[int, Trace]]] = [[] for _ in reps]
         for b in horizons:
             if together:
@@ -95,7 +96,8 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
     return run_campaign(make_policy(spec), belief, rep.world, design=rep.design, sequence=rep.sequence,
                         observe=observe, budget=budget, pool=rep.pool,
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
-                        history=history, refit_rng=stream(study.seed, r, "refit", spec.label))
+                        history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
+                        library=study.space.library is not None)
 
 
 def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:

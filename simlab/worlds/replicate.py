@@ -15,6 +15,7 @@ from ..study.types import Prior, Study
 from . import functions
 from .draws import ConditionedWorld, FunctionWorld, World
 from .kinds import WORLD_KINDS
+from .mixed import make_mixed_world, needs_mixed
 from .noise import Observer
 
 __all__ = ["Replicate", "make_replicate", "make_world", "world_optimum", "make_observer", "history_arrays",
@@ -31,6 +32,9 @@ def make_world(study: Study, replicate: int) -> World:
     w = study.world
     if w.function is not None:
         return FunctionWorld(functions.FUNCTIONS[w.function])
+    if needs_mixed(study.space):   # stepped or categorical inputs, or a library (simlab.worlds.mixed)
+        return make_mixed_world(study, w.prior, study.sign * w.prior.mean, stream(study.seed, replicate, "world"),
+                                dict(w.method_settings)["features"])
     kernel = unit_kernel(w.prior, study)
     if w.lengthscale_within != 1.0 or w.amplitude_within != 1.0:
         kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
@@ -109,6 +113,18 @@ def make_observer(study: Study) -> Observer:
                     center=ref.mean, scale=ref.amplitude, lost=w.lost, sign=study.sign)
 
 
+def _library_material(study: Study, r: int):
+    """A library's design, sequence and pool: the rows in a random order of the replicate's own
+    (permutations joined end to end, so rows come without replacement until the library is
+    exhausted), the design its first rows whatever ``[campaign] design`` says, and the pool every row."""
+    rows = study.space.library_unit()
+    rng = stream(study.seed, r, "library")
+    n = study.campaign.horizon
+    order = np.concatenate([rng.permutation(len(rows)) for _ in range(-(-n // len(rows)))])[:n]
+    sequence = rows[order]
+    return sequence[: study.campaign.initial], sequence, rows
+
+
 def make_replicate(study: Study, r: int) -> Replicate:
     d, c = study.space.dim, study.campaign
     B = c.horizon
@@ -124,6 +140,9 @@ def make_replicate(study: Study, r: int) -> Replicate:
     else:
         design = rng.random((c.initial, d))
     shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
-    pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
+    if study.space.library is not None:
+        design, sequence, pool = _library_material(study, r)
+    else:
+        pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
     return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,
                      shocks=shocks, lost=lost, pool=pool, optimum_gap=gap)
