@@ -72,7 +72,6 @@ footer { margin-top: 3rem; color: var(--muted); font-size: .85rem; border-top: 1
   table.pairs td { white-space: nowrap; }
   figure { margin: .4rem 0 .7rem; }
   figure img { border: none; width: auto; max-width: 100%; max-height: 12.5cm; }
-  figure.tall img { max-height: 17cm; }
   figcaption { font-size: 8pt; margin-top: .15rem; max-width: none; }
   .box, .caution, tr.group td { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
   footer { margin-top: 1rem; }
