@@ -77,6 +77,13 @@ def _lead_verdict(pairs, leader, others, *, favours_col, p_col, test_name, level
     )
 
 
+def _unit_words(units, value):
+    """The objective's unit in a sentence: `units` as given, else "objective unit(s)" (singular for exactly 1)."""
+    if units:
+        return units
+    return "objective unit" if value == 1 else "objective units"
+
+
 def _p_words(p):
     text = format_p(p)
     return text if text.startswith("<") else f"= {text}"
@@ -104,6 +111,7 @@ def choice_table(
     confidence_level=0.95,
     n_resamples=TABLE_RESAMPLES,
     seed=0,
+    units=None,
 ):
     """The policy to pick under each risk attitude, and whether its lead is clear.
 
@@ -133,6 +141,9 @@ def choice_table(
         Bootstrap resamples of the median-regret interval (`budget_summary`).
     seed : int, numpy Generator or None, default 0
         Seed of that bootstrap.
+    units : str, optional
+        The objective's unit for the evidence sentences (the study's ``[study] units``);
+        default "objective unit(s)".
 
     Returns
     -------
@@ -214,7 +225,7 @@ def choice_table(
     leader, runner = ranked[0], ranked[1]
     regret_effect = (("median_difference", "median_difference_low", "median_difference_high"),
                      "median paired regret difference", lambda v: f"{v:.3g}",
-                     f"{difference:g} objective units, the smallest difference that matters")
+                     f"{difference:g} {_unit_words(units, difference)}, the smallest difference that matters")
     lead, p_value, evidence = _lead_verdict(
         pairs, leader, ranked[1:], favours_col="regret_favours", p_col="regret_p_holm", test_name="Wilcoxon",
         level=level, alpha=alpha, effect=regret_effect, margin=difference,

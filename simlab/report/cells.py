@@ -125,8 +125,12 @@ def unit_label(study):
 
 
 def in_units(text, study):
-    """Text written by the evidence or a rule in "objective unit(s)", in the study's own unit
-    (``[study] units``) when it has one; other values (None, NaN) pass through."""
+    """Text a policy rule writes in "objective unit(s)" (a setting's help, its ``caution``), in the
+    study's own unit (``[study] units``) when it has one; other values (None, NaN) pass through.
+
+    The rules' words are declared in policies/, which knows no study unit when it declares a
+    setting's help; the evidence code, which is given the unit, writes it directly
+    (``choice_table(units=...)``)."""
     if not study.units or not isinstance(text, str):
         return text
     return text.replace("objective units", study.units).replace("objective unit", study.units)

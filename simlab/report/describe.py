@@ -113,8 +113,11 @@ def _assumptions(study, version):
         "<h3>Search space</h3><table><thead><tr><th>input</th><th class='n'>low</th><th class='n'>high</th>"
         f"</tr></thead><tbody>{space}</tbody></table>"
         "<h3>Policies</h3><table><thead><tr><th>label</th><th>rule</th><th>what it does</th>"
-        "<th>settings it ran with (every one, defaults included)</th>"
-        f"</tr></thead><tbody>{policies}</tbody></table>" + _policy_cautions(study) +
+        "<th>settings it ran with (defaults included)</th>"
+        f"</tr></thead><tbody>{policies}</tbody></table>"
+        + ("" if batch > 1 else "<p>Settings for rounds of several trials (<code>fill</code>, <code>lie</code>) are "
+           "left out: this study runs one trial at a time, so they play no part.</p>")
+        + _policy_cautions(study) +
         "<h3>Campaigns</h3><table class='kv'>"
         f"<tr><th>goal</th><td>{escape(study.goal)}</td></tr>"
         f"<tr><th>initial design</th><td>{c.initial} trials ({escape(c.design)}), shared by every policy and "
@@ -130,15 +133,21 @@ def _assumptions(study, version):
     )
 
 
+_ROUND_SETTINGS = ("fill", "lie")   # Acquisition's settings for rounds of trials (policies/base.py)
+
+
 def _settings(spec, study):
     """Every setting a policy ran with, resolved (``margin = 0``), each with its help text (HTML)."""
     options = POLICIES[spec.rule].options
-    if not spec.settings:
+    # How a round of several trials is filled (fill, lie) matters only when the study has rounds.
+    rounds_only = () if study.campaign.batch > 1 else _ROUND_SETTINGS
+    settings = [(key, value) for key, value in spec.settings if key not in rounds_only]
+    if not settings:
         return "none (the rule has no settings)"
     # the rule's own settings first, then those every acquisition has (fill, lie, exploit_last: policies/base.py)
     shared = {key for base in POLICIES[spec.rule].__mro__[1:] if base.__module__ == Policy.__module__
               for key in getattr(base, "options", {})}
-    ordered = sorted(spec.settings, key=lambda item: item[0] in shared)
+    ordered = sorted(settings, key=lambda item: item[0] in shared)
     shown = []
     for key, value in ordered:
         text = (f"{key} = {value:g}" if isinstance(value, (int, float)) and not isinstance(value, bool)

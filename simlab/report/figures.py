@@ -17,8 +17,8 @@ from typing import Any, ClassVar
 
 import pandas as pd
 
-from .cells import fmt_pct, unit_label
-from .files import PAIRWISE, PLACEMENT, SUMMARY, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
+from .cells import fmt_pct, number, unit_label, unit_words
+from .files import PAIRWISE, PLACEMENT, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
 
 # Where the page shows figures: after the budget table, after the first-passage table, after
 # the pairwise table, after the table of where trials land, at the end of the results, and in
@@ -100,38 +100,46 @@ class RoundsFigure(Figure):
 
 
 class FailureFigure(Figure):
-    stem, alt = "failure_risk", "Failure risk against budget with intervals"
+    stem, alt = "failure_risk", "Miss risk after each trial with its 95 % band"
 
     def caption(self, study, success):
-        return ("Share of campaigns that end above the target at each budget, with 95 % Clopper–Pearson "
-                "intervals; points are shifted sideways so that intervals do not overlap.")
+        return ("Miss risk after each trial: the share of campaigns whose recommendation after that trial is "
+                f"more than the target ({number(study.target)} {unit_words(study, study.target)}) short of the "
+                "best, with its 95 % Clopper–Pearson band. It is one minus the within-target share that budgets "
+                "are planned on (<code>within_target.csv</code>), and it need not fall with every trial: a "
+                "recommendation can get worse again. Dotted lines mark the study's budgets, the dashed line "
+                f"the largest miss risk the budget plan accepts ({fmt_pct(1 - success)} %, for "
+                f"{fmt_pct(success)} % success). Every policy is drawn at its own trials; line style and marker "
+                "tell them apart in black and white.")
 
     def draw(self, given):
         from . import plots
-        return plots.failure_figure(given.tables[SUMMARY], colors=given.colors)
+        s = given.study
+        return plots.failure_figure(given.tables[WITHIN_TARGET], success=given.success, budgets=s.campaign.budgets,
+                                    initial=s.campaign.initial, target=s.target, units=unit_label(s),
+                                    colors=given.colors)
 
 
-class WithinTargetFigure(Figure):
-    stem, alt = "within_target", "Share of campaigns within target after each trial"
+class RetiredFigure(Figure):
+    """A figure earlier versions drew: never drawn now, but its files in an older results folder
+    are still simlab's own (so ``--fresh`` may remove them rather than refuse the folder)."""
 
-    def caption(self, study, success):
-        return ("Share of campaigns whose recommendation after each trial is within the target, with its "
-                "95 % Clopper–Pearson band: the quantity budgets are planned on. It need not rise with every "
-                "trial: a recommendation can get worse again. Dotted lines mark the study's budgets, the "
-                f"dashed line the requested success level ({fmt_pct(success)} %).")
+    def __init__(self, stem):
+        self.stem = stem
 
-    def draw(self, given):
-        from . import plots
-        return plots.within_target_figure(given.tables[WITHIN_TARGET], success=given.success,
-                                          budgets=given.study.campaign.budgets, colors=given.colors)
+    def applies(self, study, tables):
+        return False
 
 
 class FinalRegretFigure(Figure):
     stem, alt = "final_regret", "Regret of every campaign at the largest budget"
 
     def caption(self, study, success):
-        return (f"Regret of every simulated campaign after {study.campaign.horizon} trials: the box spans the "
-                "middle 50 %, each dot is one world. A long right tail is the risk a median hides.")
+        return (f"Regret of every simulated campaign after {study.campaign.horizon} trials, one dot per world. "
+                "The box spans the middle 50 % of campaigns (the quartiles of the results table), the thick line "
+                "is the median, and the whiskers reach from the 10th to the 90th percentile: the dots right of "
+                "the whisker are the worst 10 % of campaigns, whose mean is the CVaR-90 of the table. A long "
+                "right tail is the risk a median hides.")
 
     def draw(self, given):
         from ..evidence import metrics
@@ -154,7 +162,9 @@ class FirstPassageFigure(Figure):
 
     def draw(self, given):
         from . import plots
-        return plots.reach_figure(given.tables[TRIALS_TO_TARGET], success=given.success, colors=given.colors)
+        s = given.study
+        return plots.reach_figure(given.tables[TRIALS_TO_TARGET], success=given.success, initial=s.campaign.initial,
+                                  target=s.target, units=unit_label(s), colors=given.colors)
 
 
 class WinRateFigure(Figure):
@@ -164,8 +174,8 @@ class WinRateFigure(Figure):
         return PAIRWISE in tables
 
     def caption(self, study, success):
-        return ("Share of worlds where the row policy ends with lower regret than the column policy; "
-                "a star marks a Holm-adjusted sign-test p below 0.05 (wins against losses, ties left out).")
+        return ("Share of worlds where the row policy ends with lower regret than the column policy (ties "
+                "count half); a star marks a Holm-adjusted sign-test p below 0.05 (wins against losses, ties left out).")
 
     def draw(self, given):
         from . import plots
@@ -206,8 +216,10 @@ class SnapshotFigure(Figure):
                 "the next input each policy would choose, and where posterior function samples put the best "
                 "input. "
                 + ("With more than one input this is a slice through the current recommendation along the "
-                   "first input; trials elsewhere are drawn at their coordinate on it. " if study.space.dim > 1
-                   else "")
+                   "first input (the other inputs held at the values in the title): the recommended trial lies "
+                   "on it, and the other trials, run elsewhere, are drawn in grey at their coordinate on this "
+                   "input with the value observed there (projected), so they need not sit near the curves. "
+                   if study.space.dim > 1 else "")
                 + ("The model shown is the study's stated belief, before any refit." if study.refit_every else ""))
 
     def draw(self, given):
@@ -222,15 +234,19 @@ class SweepFigure(Figure):
         return SWEEP_SUMMARY in tables
 
     def caption(self, study, success):
-        return "Failure risk after the largest budget in each cell of the grid, one panel per policy."
+        return ("Miss risk after the largest budget in each cell of the grid, one panel per policy; the outlined "
+                "cell is the study's own belief, and every cell meets the same worlds.")
 
     def draw(self, given):
         from . import plots
-        return plots.sweep_figure(given.tables[SWEEP_SUMMARY], budget=given.study.campaign.horizon,
-                                  colors=given.colors)
+        s = given.study
+        return plots.sweep_figure(given.tables[SWEEP_SUMMARY], budget=s.campaign.horizon, target=s.target,
+                                  units=unit_label(s), colors=given.colors)
 
 
 FIGURES: dict[str, Figure] = {f.stem: f for f in (
-    RegretFigure(), RoundsFigure(), FailureFigure(), WithinTargetFigure(), FinalRegretFigure(),
+    RegretFigure(), RoundsFigure(), FailureFigure(), FinalRegretFigure(),
     FirstPassageFigure(), WinRateFigure(), PlacementFigure(), SnapshotFigure(), SweepFigure(),
+    # simlab 0.4 drew the within-target share as a figure of its own: the miss-risk figure is its complement
+    RetiredFigure("within_target"),
 )}

@@ -13,7 +13,6 @@ from ..evidence import choice, compare, frame, metrics, reach
 from ..evidence.placement import placement_table
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
-from .cells import in_units
 from .figures import FigureInput
 from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, PLACEMENT, REPORT, SUMMARY, SWEEP_RANKING,
                     SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
@@ -66,7 +65,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     success : float, default 0.9
         Requested chance of meeting the target, for the budget plan and the choice table.
     figures : bool, default True
-        Also draw the figures (PNG and SVG in ``figures/``) and embed them in the report.
+        Also draw the figures (PNG and SVG in ``figures/``) and embed them in the report (as SVG).
     seed : int, default 0
         Seed of the bootstrap intervals; the same seed gives the same files.
     progress : callable, optional
@@ -125,8 +124,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         paths[PAIRWISE] = _write_csv(tables[PAIRWISE], PAIRWISE)
         step(1)
         tables[CHOICE] = choice.choice_table(traces, budget=horizon, target=target, success=success, seed=seed,
-                                              difference=study.lead_difference)
-        tables[CHOICE] = _in_units(tables[CHOICE], study)
+                                              difference=study.lead_difference, units=study.units or None)
         paths[CHOICE] = _write_csv(tables[CHOICE], CHOICE)
         step(1)
     else:
@@ -152,7 +150,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
             if fig is not None:
                 png, svg = save_figure(fig, folder / FIGURES, stem)
                 figure_paths += [png, svg]
-                images[stem] = png.read_bytes()
+                images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
             step(1)
 
     text = render(study, tables, images, success=success)
@@ -165,14 +163,6 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
         within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT],
     )
-
-
-def _in_units(table, study):
-    """The choice table's evidence sentences in the study's own unit (``[study] units``), if it has one:
-    the CSV and the page then say "0.1 MPa" where the evidence code writes "objective units"."""
-    if not study.units or "evidence" not in table:
-        return table
-    return table.assign(evidence=table["evidence"].astype(object).map(lambda t: in_units(t, study)))
 
 
 def _levels(success):

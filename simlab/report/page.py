@@ -53,20 +53,34 @@ figcaption { color: var(--muted); font-size: .88rem; margin-top: .4rem; max-widt
 .lead-tie { font-weight: 600; color: #8a4b00; }
 code { font-size: .9em; }
 footer { margin-top: 3rem; color: var(--muted); font-size: .85rem; border-top: 1px solid var(--rule); padding-top: .5rem; }
-@page { size: A4; margin: 16mm 14mm; }
+@page { size: A4; margin: 14mm 13mm; }
 @media print {
-  body { font-size: 10pt; max-width: none; margin: 0; padding: 0; }
-  h2 { margin-top: 1.2rem; }
+  body { font-size: 9.5pt; line-height: 1.38; max-width: none; margin: 0; padding: 0; }
+  h1 { font-size: 15pt; }
+  h2 { font-size: 12pt; margin: .9rem 0 .35rem; }
+  h3 { font-size: 10.5pt; margin: .7rem 0 .25rem; }
+  p, li { max-width: none; margin: .3rem 0; }
+  .box, .caution { padding: .35rem .7rem; margin: .5rem 0; }
+  /* tables may run on to the next page (their heading row repeats); rows, figures and boxes may not */
   h2, h3 { break-after: avoid; page-break-after: avoid; }
-  figure, table, tr, .box, .caution, .choice li { break-inside: avoid; page-break-inside: avoid; }
-  figure img { border: none; max-height: 24cm; width: auto; max-width: 100%; }
+  figure, tr, .box, .caution, .choice li { break-inside: avoid; page-break-inside: avoid; }
+  table { font-size: 8pt; margin: .3rem 0 .6rem; }
+  th, td { padding: .1rem .35rem; }
+  th { font-size: 7.5pt; }
+  td .ci { display: inline; font-size: 1em; }
+  td .ci::before { content: " "; }
+  table.pairs td { white-space: nowrap; }
+  figure { margin: .4rem 0 .7rem; }
+  figure img { border: none; width: auto; max-width: 100%; max-height: 12.5cm; }
+  figcaption { font-size: 8pt; margin-top: .15rem; max-width: none; }
   .box, .caution, tr.group td { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+  footer { margin-top: 1rem; }
 }
 """
 
 
 def render(study, tables, images, *, success):
-    """The whole report.html text from the decision tables and the PNG bytes of the figures."""
+    """The whole report.html text from the decision tables and the SVG bytes of the figures."""
     from .. import __version__
 
     summary = Cells(SUMMARY, tables[SUMMARY])
@@ -194,8 +208,10 @@ def _figures_in(section, study, images, success):
     for stem, fig in FIGURE_REGISTRY.items():
         if fig.section != section or stem not in images:
             continue
+        # An SVG data URI rather than inline SVG: vector (sharp when printed), and the ids matplotlib
+        # gives clip paths cannot clash between figures.
         data = base64.b64encode(images[stem]).decode("ascii")
-        parts.append(f'<figure id="fig-{stem}"><img src="data:image/png;base64,{data}" alt="{escape(fig.alt)}">'
+        parts.append(f'<figure id="fig-{stem}"><img src="data:image/svg+xml;base64,{data}" alt="{escape(fig.alt)}">'
                      f"<figcaption>{fig.caption(study, success)}</figcaption></figure>")
     return "".join(parts)
 
@@ -274,7 +290,7 @@ def _pairwise_table(study, pairs):
             f"<td class='n'>{pairs.span(i, 'failure_p_holm', 'p')}</td></tr>"
         )
     return (
-        "<table><thead><tr><th>policy A</th><th>policy B</th>"
+        "<table class='pairs'><thead><tr><th>policy A</th><th>policy B</th>"
         "<th class='n'>A wins (win rate: share of worlds A ends lower)<span class='ci'>[95 % interval]</span></th>"
         f"<th class='n'>median regret A − B ({unit_words(study)})<span class='ci'>[95 % interval]</span></th>"
         "<th>favoured</th>"

@@ -6,7 +6,6 @@ __all__ = [
     "policy_colors",
     "regret_figure",
     "failure_figure",
-    "within_target_figure",
     "reach_figure",
     "final_regret_figure",
     "win_rate_figure",
@@ -19,8 +18,8 @@ import numpy as np
 import pandas as pd
 
 from .style import (GREY, JITTER_SEED, KIND_WIDTH, band_alpha, check_columns, colors_for, display_label, floor_note,
-                    legend_outside, linestyles, new_axes, percent_axis, policies_in, policy_colors, policy_ticks,
-                    quiet_seaborn, regret_floor, save_figure)
+                    legend_outside, linestyles, mark_every, markers, new_axes, percent_axis, policies_in,
+                    policy_colors, policy_ticks, quiet_seaborn, regret_floor, save_figure)
 
 
 # ---------------------------------------------------------------------------
@@ -65,28 +64,29 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     check_columns(curves, "curves", ("policy", "trial", "regret_median", "regret_q25", "regret_q75"))
     labels = policies_in(curves)
     colors = colors_for(labels, colors)
-    styles = linestyles(labels)
-    fig, ax = new_axes(ax, (KIND_WIDTH, 4.2))
+    styles, marks = linestyles(labels), markers(labels)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 3.4))
     values = curves[["regret_median", "regret_q25", "regret_q75"]].to_numpy(dtype=float)
     floor = regret_floor(values, target)
     if initial:
         ax.axvspan(0.5, initial + 0.5, color="#000000", alpha=0.06, lw=0)
         ax.text(0.5 + initial / 2, 0.01, "initial\ndesign", transform=ax.get_xaxis_transform(), ha="center",
                 va="bottom", fontsize=8, color=GREY)
-    for label in labels:
+    for i, label in enumerate(labels):
         rows = curves[curves["policy"].astype(str) == label].sort_values("trial")
         t = rows["trial"].to_numpy()
         low = np.maximum(rows["regret_q25"].to_numpy(dtype=float), floor)
         high = np.maximum(rows["regret_q75"].to_numpy(dtype=float), floor)
         mid = np.maximum(rows["regret_median"].to_numpy(dtype=float), floor)
         ax.fill_between(t, low, high, color=colors[label], alpha=band_alpha(labels), lw=0)
-        ax.plot(t, mid, color=colors[label], ls=styles[label], lw=1.8, label=display_label(label))
+        ax.plot(t, mid, color=colors[label], ls=styles[label], lw=1.6, marker=marks[label], ms=5,
+                markevery=mark_every(t, i, after=initial or 0), label=display_label(label))
     for b in budgets:
         ax.axvline(b, color=GREY, lw=0.8, ls=":", zorder=0)
         ax.text(b, 0.99, f"budget {b}{' rounds' if unit == 'round' else ''} ", transform=ax.get_xaxis_transform(),
                 fontsize=8, color=GREY, va="top", ha="right")
     if target > 0:
-        ax.axhline(target, color="#000000", lw=1.0, ls="--", label=f"target ({target:g})")
+        ax.axhline(target, color="#000000", lw=1.0, ls="--", label=f"target ({target:g} {units})")
     ax.set_yscale("log")
     shown = np.maximum(values[np.isfinite(values)], floor)
     top = max(float(shown.max()) if shown.size else 1.0, target, floor * 10)
@@ -103,14 +103,27 @@ def regret_figure(curves, *, target, budgets=(), initial=None, colors=None, ax=N
     return fig
 
 
-def failure_figure(summary, *, colors=None, ax=None):
-    """Failure risk against budget with its exact (Clopper–Pearson) 95 % interval (error bars).
+def failure_figure(within, *, success=0.9, budgets=(), initial=None, target=None, units="objective units",
+                   colors=None, ax=None):
+    """Miss risk (failure risk) after every trial, with its exact 95 % band: one minus the within-target share.
 
     Parameters
     ----------
-    summary : DataFrame
-        `simlab.evidence.metrics.budget_summary` output (``policy, budget, failure_risk,
-        failure_low, failure_high``).
+    within : DataFrame
+        `simlab.evidence.reach.within_target_curves` output (``policy, trial, within_target,
+        within_low, within_high``); the miss risk is ``1 - within_target`` and its band
+        ``[1 - within_high, 1 - within_low]`` (the Clopper–Pearson interval of the complement).
+    success : float, default 0.9
+        Requested success level: the largest miss risk the budget plan accepts, ``1 - success``,
+        is drawn as a dashed line.
+    budgets : sequence of int, default ()
+        The study's budgets, drawn as dotted vertical lines.
+    initial : int, optional
+        Trials of the initial design (shared by every policy), shaded.
+    target : float, optional
+        The regret target, named with `units` on the y axis.
+    units : str
+        The objective's unit (``[study] units``; "objective units" when none).
     colors : dict, optional
         `policy_colors` mapping.
     ax : matplotlib Axes, optional
@@ -118,41 +131,39 @@ def failure_figure(summary, *, colors=None, ax=None):
     Returns
     -------
     matplotlib.figure.Figure
+
+    Notes
+    -----
+    Every policy is drawn at its own trials (no sideways shift): curves that lie together are
+    told apart by line style and marker as well as colour.
     """
-    check_columns(summary, "summary", ("policy", "budget", "failure_risk", "failure_low", "failure_high"))
-    labels = policies_in(summary)
+    check_columns(within, "within", ("policy", "trial", "within_target", "within_low", "within_high"))
+    labels = policies_in(within)
     colors = colors_for(labels, colors)
-    styles = linestyles(labels)
-    fig, ax = new_axes(ax, (KIND_WIDTH, 4.0))
-    budgets = np.sort(summary["budget"].unique())
-    gap = float(np.min(np.diff(budgets))) if budgets.size > 1 else 1.0
-    # Dodge the policies sideways so that error bars do not hide each other.
-    offsets = (np.arange(len(labels)) - (len(labels) - 1) / 2) * (0.5 * gap / max(len(labels), 1))
-    for label, dx in zip(labels, offsets):
-        rows = summary[summary["policy"].astype(str) == label].sort_values("budget")
-        b = rows["budget"].to_numpy(dtype=float) + dx
-        risk = rows["failure_risk"].to_numpy(dtype=float)
-        err = np.vstack([risk - rows["failure_low"].to_numpy(dtype=float),
-                         rows["failure_high"].to_numpy(dtype=float) - risk])
-        ax.errorbar(b, risk, yerr=np.maximum(err, 0.0), color=colors[label], ls=styles[label], lw=1.2,
-                    marker="o", ms=5, capsize=3, label=display_label(label))
-    ax.set_xticks(budgets)
-    ax.set_xlim(budgets.min() - 0.6 * gap, budgets.max() + 0.6 * gap)
-    ax.set_ylim(-0.02, 1.02)
-    percent_axis(ax.yaxis)
-    ax.grid(axis="y", color="#dddddd", lw=0.6)
-    ax.set_xlabel("budget (trials)")
-    ax.set_ylabel("miss risk (failure risk)\n(share of campaigns above the target)")
-    ax.set_title("Miss risk at each budget, with exact 95 % intervals (Clopper–Pearson)", fontsize=10, loc="left")
+    fig, ax = new_axes(ax, (KIND_WIDTH, 3.4))
+    miss = within.assign(miss=1.0 - within["within_target"].astype(float),
+                         miss_low=1.0 - within["within_high"].astype(float),
+                         miss_high=1.0 - within["within_low"].astype(float))
+    if initial:
+        ax.axvspan(0.5, initial + 0.5, color="#000000", alpha=0.06, lw=0)
+    for b in budgets:
+        ax.axvline(b, color=GREY, lw=0.8, ls=":", zorder=0)
+        ax.text(b, 0.99, f"budget {b} ", transform=ax.get_xaxis_transform(), fontsize=8, color=GREY, va="top",
+                ha="right")
+    _share_steps(ax, miss, ("miss", "miss_low", "miss_high"), labels, colors, after=initial or 0)
+    ax.axhline(1.0 - success, color="#000000", lw=1.0, ls="--", label=f"plan's limit ({1 - success:.0%})")
+    words = f"more than {target:g} {units} short" if target is not None else "outside the target"
+    ax.set_ylabel(f"miss risk: share of campaigns\nending {words}", fontsize=9.5)
+    ax.set_title("Miss risk after each trial, with its exact 95 % band (Clopper–Pearson)", fontsize=10, loc="left")
     legend_outside(ax)
     return fig
 
 
-def _share_steps(ax, frame, columns, labels, colors):
+def _share_steps(ax, frame, columns, labels, colors, *, after=0):
     """Step curves of a share per policy with its band; a share holds from its trial to the next."""
     value, low, high = columns
-    styles = linestyles(labels)
-    for label in labels:
+    styles, marks = linestyles(labels), markers(labels)
+    for i, label in enumerate(labels):
         rows = frame[frame["policy"].astype(str) == label].sort_values("trial")
         t = rows["trial"].to_numpy(dtype=float)
         # A share holds from its trial until the next one: draw the last step half a trial wide.
@@ -164,7 +175,14 @@ def _share_steps(ax, frame, columns, labels, colors):
 
         ax.fill_between(t_ext, ext(low), ext(high), step="post", color=colors[label],
                         alpha=band_alpha(labels), lw=0)
-        ax.step(t_ext, ext(value), where="post", color=colors[label], ls=styles[label], lw=1.8, label=display_label(label))
+        ax.step(t_ext, ext(value), where="post", color=colors[label], ls=styles[label], lw=1.6)
+        # the markers sit in the middle of each step, on the value that holds there
+        at = mark_every(t, i, after=after)
+        ax.plot(t[at] + 0.5, rows[value].to_numpy(dtype=float)[at], ls="none", marker=marks[label], ms=5,
+                color=colors[label])
+        # an empty line carries the legend entry: line style and marker together
+        ax.plot([], [], color=colors[label], ls=styles[label], lw=1.6, marker=marks[label], ms=5,
+                label=display_label(label))
     trials = frame["trial"].to_numpy(dtype=float)
     ax.set_xlim(trials.min() - 0.5, trials.max() + 0.5)
     ax.set_ylim(-0.02, 1.02)
@@ -173,46 +191,11 @@ def _share_steps(ax, frame, columns, labels, colors):
     ax.set_xlabel("trial")
 
 
-def within_target_figure(within, *, success=0.9, budgets=(), colors=None, ax=None):
-    """Share of campaigns whose recommendation after each trial is within target, with its 95 % band.
-
-    Parameters
-    ----------
-    within : DataFrame
-        `simlab.evidence.reach.within_target_curves` output (``policy, trial, within_target,
-        within_low, within_high``).
-    success : float, default 0.9
-        Requested success level, drawn as a horizontal line.
-    budgets : sequence of int, default ()
-        The study's budgets, drawn as dotted vertical lines.
-    colors : dict, optional
-        `policy_colors` mapping.
-    ax : matplotlib Axes, optional
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-    """
-    check_columns(within, "within", ("policy", "trial", "within_target", "within_low", "within_high"))
-    labels = policies_in(within)
-    colors = colors_for(labels, colors)
-    fig, ax = new_axes(ax, (KIND_WIDTH, 4.2))
-    for b in budgets:
-        ax.axvline(b, color="#999999", lw=0.8, ls=":")
-    _share_steps(ax, within, ("within_target", "within_low", "within_high"), labels, colors)
-    ax.axhline(success, color="#000000", lw=1.0, ls="--", label=f"requested success ({success:.0%})")
-    ax.set_ylabel("share of campaigns within target\n(recommendation after the trial)")
-    ax.set_title("Within target after each trial (what a team stopping there ships; 95 % Clopper-Pearson band)",
-                 fontsize=10, loc="left")
-    legend_outside(ax)
-    return fig
-
-
-def reach_figure(reach, *, success=0.9, colors=None, ax=None):
+def reach_figure(reach, *, success=0.9, initial=None, target=None, units="objective units", colors=None, ax=None):
     """First passage: Kaplan-Meier share of campaigns whose recommendation was within target at some trial so far.
 
     Descriptive only (a real campaign cannot observe its first passage); budgets are
-    planned on `within_target_figure`'s share.
+    planned on the within-target share (`failure_figure` draws its complement).
 
     Parameters
     ----------
@@ -221,6 +204,12 @@ def reach_figure(reach, *, success=0.9, colors=None, ax=None):
         reached_high``).
     success : float, default 0.9
         Requested success level, drawn as a horizontal line.
+    initial : int, optional
+        Trials of the initial design; markers start after it.
+    target : float, optional
+        The regret target, named with `units` on the y axis.
+    units : str
+        The objective's unit.
     colors : dict, optional
         `policy_colors` mapping.
     ax : matplotlib Axes, optional
@@ -232,10 +221,11 @@ def reach_figure(reach, *, success=0.9, colors=None, ax=None):
     check_columns(reach, "reach", ("policy", "trial", "reached", "reached_low", "reached_high"))
     labels = policies_in(reach)
     colors = colors_for(labels, colors)
-    fig, ax = new_axes(ax, (KIND_WIDTH, 4.2))
-    _share_steps(ax, reach, ("reached", "reached_low", "reached_high"), labels, colors)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 3.0))
+    _share_steps(ax, reach, ("reached", "reached_low", "reached_high"), labels, colors, after=initial or 0)
     ax.axhline(success, color="#000000", lw=1.0, ls="--", label=f"requested success ({success:.0%})")
-    ax.set_ylabel("share of campaigns that were\nwithin target at some trial so far")
+    words = f"{target:g} {units} of the best" if target is not None else "target"
+    ax.set_ylabel(f"share of campaigns within\n{words} at some trial so far", fontsize=9.5)
     ax.set_title("First passage (descriptive: a real campaign cannot observe it; Kaplan-Meier, 95 % band)",
                  fontsize=10, loc="left")
     legend_outside(ax)
@@ -263,40 +253,59 @@ def final_regret_figure(final, *, target, budget=None, colors=None, ax=None, uni
     -------
     matplotlib.figure.Figure
     """
-    import seaborn as sns
-
     check_columns(final, "final", ("policy", "regret"))
     labels = policies_in(final)
     colors = colors_for(labels, colors)
-    fig, ax = new_axes(ax, (KIND_WIDTH, 0.9 + 0.45 * len(labels)))
-    floor = regret_floor(final["regret"].to_numpy(dtype=float), target)
-    data = pd.DataFrame({
-        "policy": pd.Categorical(final["policy"].astype(str), categories=labels, ordered=True),
-        "regret": np.maximum(final["regret"].to_numpy(dtype=float), floor),
-    })
-    palette = {label: colors[label] for label in labels}
-    with quiet_seaborn():
-        sns.boxplot(data=data, x="regret", y="policy", hue="policy", order=labels, hue_order=labels,
-                    palette=palette, legend=False, ax=ax, width=0.55, fliersize=0, linewidth=1.0,
-                    boxprops={"alpha": 0.35}, log_scale=True)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 0.9 + 0.4 * len(labels)))
+    raw = final["regret"].to_numpy(dtype=float)
+    floor = regret_floor(raw, target)
+    policy = final["policy"].astype(str).to_numpy()
     # Every campaign as a dot, jittered sideways by a fixed local generator so that
-    # redrawing gives the same picture.
+    # redrawing gives the same picture; the boxes are drawn over them.
     jitter = np.random.default_rng(JITTER_SEED)
+    stats = []
     for i, label in enumerate(labels):
-        x = data.loc[data["policy"] == label, "regret"].to_numpy()
-        ax.scatter(x, i + jitter.uniform(-0.22, 0.22, x.size), s=7, color=colors[label], alpha=0.7, lw=0,
-                   zorder=3, gid=f"campaigns:{label}")
+        mine = raw[policy == label]
+        x = np.maximum(mine, floor)
+        ax.scatter(x, i + jitter.uniform(-0.3, 0.3, x.size), s=6, color=colors[label], alpha=0.45, lw=0,
+                   zorder=2, gid=f"campaigns:{label}")
+        q10, q25, q50, q75, q90 = np.maximum(np.quantile(mine, BOX_QUANTILES), floor)
+        stats.append({"label": display_label(label), "whislo": q10, "q1": q25, "med": q50, "q3": q75,
+                      "whishi": q90, "fliers": []})
+    # Box: the quartiles (numpy's linear rule, as regret_q25/regret_q75 of summary.csv), a thick
+    # median, whiskers from the 10th to the 90th percentile; the dots beyond are the worst tenth
+    # that CVaR-90 averages. Filled faintly beneath the dots, outlined in black above them.
+    positions = np.arange(len(labels))
+    ax.bxp(stats, positions=positions, orientation="horizontal", widths=0.62, patch_artist=True, showfliers=False,
+           boxprops={"facecolor": "none", "edgecolor": "#000000", "linewidth": 1.4},
+           medianprops={"color": "#000000", "linewidth": 2.6}, whiskerprops={"color": "#000000", "linewidth": 1.1},
+           capprops={"color": "#000000", "linewidth": 1.1}, zorder=4, manage_ticks=False)
+    for i, (label, box) in enumerate(zip(labels, stats)):
+        ax.add_patch(_box_fill(box, i, 0.62, colors[label]))
+    ax.set_xscale("log")
+    ax.set_ylim(len(labels) - 0.5, -0.5)
     if target > 0:
-        ax.axvline(target, color="#000000", lw=1.0, ls="--")
-        ax.text(target, 1.0, f" target {target:g}", transform=ax.get_xaxis_transform(), fontsize=8,
+        ax.axvline(target, color="#000000", lw=1.0, ls="--", zorder=3)
+        ax.text(target, 1.0, f" target {target:g} {units}", transform=ax.get_xaxis_transform(), fontsize=8,
                 va="bottom", ha="left")
     policy_ticks(ax.yaxis, labels, colors)
-    ax.set_xlabel(f"simple regret ({units})\n{floor_note(floor, final['regret'])}")
+    ax.set_xlabel(f"simple regret ({units})\n{floor_note(floor, raw)}")
     ax.set_ylabel("policy")
     when = f" after {budget} trials" if budget is not None else ""
-    ax.set_title(f"Regret of every campaign{when} (box: quartiles; dots: campaigns)", fontsize=10, loc="left",
-                 pad=14)
+    ax.set_title(f"Regret of every campaign{when} (box: quartiles; whiskers: 10th–90th percentile)", fontsize=10,
+                 loc="left", pad=14)
     return fig
+
+
+# The final-regret box: whiskers at the 10th and 90th percentiles, the box at the quartiles.
+BOX_QUANTILES = (0.1, 0.25, 0.5, 0.75, 0.9)
+
+
+def _box_fill(box, y, width, color):
+    from matplotlib.patches import Rectangle
+
+    return Rectangle((box["q1"], y - width / 2), box["q3"] - box["q1"], width, facecolor=color, alpha=0.28, lw=0,
+                     zorder=1)
 
 
 def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
@@ -333,7 +342,7 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
                 labels.append(p)
     colors = colors_for(labels, colors)
     k = len(labels)
-    fig, ax = new_axes(ax, (min(KIND_WIDTH, 2.2 + 0.85 * k), 1.6 + 0.6 * k))
+    fig, ax = new_axes(ax, (KIND_WIDTH, 1.3 + 0.45 * k))
     matrix = pd.DataFrame(np.nan, index=labels, columns=labels)
     text = pd.DataFrame("", index=labels, columns=labels)
     for row in pairs.itertuples(index=False):
@@ -355,12 +364,13 @@ def win_rate_figure(pairs, *, alpha=0.05, ax=None, colors=None):
     ax.set_ylabel("policy (row)")
     budget = pairs["budget"].iloc[0] if "budget" in pairs.columns and len(pairs) else None
     when = f" after {budget} trials" if budget is not None else ""
-    ax.set_title(f"Share of worlds where the row policy\nends with lower regret{when}\n"
-                 f"(ties count half; * Holm-adjusted\nsign-test p < {alpha:g})", fontsize=10, loc="left")
+    # over the whole width (square cells leave the axes narrow), on one line
+    fig.suptitle(f"Share of worlds where the row policy ends with lower regret{when}", fontsize=10, x=0.01,
+                 ha="left")
     return fig
 
 
-def sweep_figure(summary, *, budget, colors=None):
+def sweep_figure(summary, *, budget, target=None, units="objective units", colors=None):
     """Failure risk over the misspecification grid: one heatmap per policy.
 
     Parameters
@@ -370,6 +380,10 @@ def sweep_figure(summary, *, budget, colors=None):
         amplitude_factor, failure_risk``).
     budget : int
         The budget to show.
+    target : float, optional
+        The regret target, named with `units` in the title.
+    units : str
+        The objective's unit.
     colors : dict, optional
         `policy_colors` mapping, used for the panel titles.
 
@@ -405,7 +419,7 @@ def sweep_figure(summary, *, budget, colors=None):
             sns.heatmap(grid, annot=grid.map(lambda v: f"{v:.0%}").to_numpy(), fmt="", cmap="rocket_r",
                         vmin=0.0, vmax=1.0, cbar=i == len(labels) - 1, ax=ax, annot_kws={"fontsize": 8},
                         linewidths=0.5, linecolor="white", square=True,
-                        cbar_kws={"label": "failure risk", "format": "{x:.0%}"})
+                        cbar_kws={"label": "miss risk", "format": "{x:.0%}"})
         if 1.0 in ls and 1.0 in amp:
             ax.add_patch(Rectangle((ls.index(1.0), amp.index(1.0)), 1, 1, fill=False, lw=2.0, ec="#0072B2"))
         ax.set_title(display_label(label), color=colors[label], fontsize=10, loc="left")
@@ -415,8 +429,9 @@ def sweep_figure(summary, *, budget, colors=None):
         ax.set_ylabel("belief amplitude x" if i % ncol == 0 else "")
     for ax in axes[k:]:
         ax.set_visible(False)
-    fig.suptitle(f"Failure risk after {budget} trials when the belief is scaled wrongly\n"
-                 "(outlined: the study's own belief; same worlds in every cell)", fontsize=10, x=0.02, ha="left")
+    target_words = f" (target {target:g} {units})" if target is not None else ""
+    fig.suptitle(f"Miss risk{target_words} after {budget} trials when the belief is scaled wrongly", fontsize=10,
+                 x=0.02, ha="left")
     return fig
 
 
@@ -455,7 +470,7 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
     labels = policies_in(trials)
     colors = colors_for(labels, colors)
     names = list(names)
-    fig = Figure(figsize=(KIND_WIDTH, 0.7 + 1.0 * len(labels)), layout="constrained")
+    fig = Figure(figsize=(KIND_WIDTH, 0.6 + 0.72 * len(labels)), layout="constrained")
     axes = fig.subplots(len(labels), len(names), sharex="col", sharey=True, squeeze=False)
     bins = 20
     top = 0.0

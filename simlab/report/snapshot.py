@@ -10,7 +10,8 @@ from numbers import Integral
 import numpy as np
 
 from .cells import unit_label
-from .style import GREY, KIND_WIDTH, Z95, check_columns, colors_for, display_label, linestyles, policy_ticks
+from .style import (GREY, KIND_WIDTH, Z95, check_columns, colors_for, display_label, linestyles, mark_every, markers,
+                    policy_ticks)
 
 # The snapshot's Monte Carlo minimiser distribution has its own fixed generator so that
 # redrawing the figure never changes it and never touches the study's keyed streams.
@@ -31,6 +32,7 @@ class _Snapshot:
     trials_x: np.ndarray   # (n,) observed trials so far, input along the axis
     trials_y: np.ndarray   # (n,) observed values
     past: np.ndarray       # (n,) bool: the trial was run before the campaign (history)
+    on_line: np.ndarray    # (n,) bool: the trial lies on the drawn line (always, with one input)
     lost: int              # trials so far that returned nothing
     scores: dict           # label -> (g,) acquisition scaled to [0, 1], or None
     next_x: dict           # label -> chosen next input along the axis
@@ -181,6 +183,7 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
         name=space.names[j], x=space.from_unit(line)[:, j], mean=sign * mu, low=np.minimum(*band),
         high=np.maximum(*band), world=sign * rep.world(line), trials_x=X_user[:, j], trials_y=sign * y,
         past=(rows["trial"].to_numpy() <= 0)[observed], lost=int((~observed).sum()),
+        on_line=np.all(np.abs(np.delete(U - base, j, axis=1)) <= 1e-9, axis=1),
         scores=scores, next_x=next_x, next_score=next_score, minimisers=minimisers,
         best_x=float(space.from_unit(u_best)[j]), best_y=float(sign * f_best), fixed=fixed, trials=trial,
     )
@@ -240,13 +243,13 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     snap = _snapshot_data(study, traces, replicate, policy, trial, along, samples, points)
     labels = list(study.labels)
     colors = colors_for(labels, colors)
-    styles = linestyles(labels)
+    styles, marks = linestyles(labels), markers(labels)
     from matplotlib.figure import Figure
 
-    rows = 0.45 + 0.17 * len(labels)
-    fig = Figure(figsize=(KIND_WIDTH, 7.6 + rows), layout="constrained")
+    rows = 0.35 + 0.15 * len(labels)
+    fig = Figure(figsize=(KIND_WIDTH, 5.6 + rows), layout="constrained")
     top, mid, nxt, low = fig.subplots(4, 1, sharex=True,
-                                      gridspec_kw={"height_ratios": [3.0, 1.8, rows, 1.3]})
+                                      gridspec_kw={"height_ratios": [2.4, 1.4, rows, 1.0]})
     goal = "maximised" if study.sign < 0 else "minimised"
 
     top.fill_between(snap.x, snap.low, snap.high, color="#0072B2", alpha=0.18, lw=0,
@@ -254,13 +257,19 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     top.plot(snap.x, snap.mean, color="#0072B2", lw=1.8, label="posterior mean", gid="posterior-mean")
     top.plot(snap.x, snap.world, color="#000000", lw=1.3, ls="--", label="true world (hidden from policies)",
              gid="world")
-    new = ~snap.past
-    if new.any():
-        top.plot(snap.trials_x[new], snap.trials_y[new], ls="none", marker="o", ms=6, mfc="white",
-                 mec="#000000", mew=1.4, label="trials so far (observed)", gid="trials")
+    # Trials on the drawn line are shown as observed there; with several inputs the others lie
+    # off this slice, so they are drawn at their coordinate along it, in grey, and say so.
+    new, on = ~snap.past, snap.on_line
+    if (new & on).any():
+        top.plot(snap.trials_x[new & on], snap.trials_y[new & on], ls="none", marker="o", ms=6, mfc="white",
+                 mec="#000000", mew=1.4, label="trials so far (observed)" if on.all() else "trial on this slice",
+                 gid="trials")
+    if (new & ~on).any():
+        top.plot(snap.trials_x[new & ~on], snap.trials_y[new & ~on], ls="none", marker="o", ms=5, mfc="none",
+                 mec=GREY, mew=1.0, label="trials off this slice\n(projected onto it)", gid="trials-projected")
     if snap.past.any():
         top.plot(snap.trials_x[snap.past], snap.trials_y[snap.past], ls="none", marker="s", ms=5, color=GREY,
-                 label="past trials (history)", gid="past-trials")
+                 label="past trials (history)" + ("" if on[snap.past].all() else ", projected"), gid="past-trials")
     if not snap.fixed:
         top.plot([snap.best_x], [snap.best_y], ls="none", marker="*", ms=13, color="#E69F00", mec="#000000",
                  mew=0.6, label="true best input", gid="true-best")
@@ -271,7 +280,8 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         curve = snap.scores[label]
         if curve is None:
             continue
-        mid.plot(snap.x, curve, color=colors[label], ls=styles[label], lw=1.5, label=display_label(label))
+        mid.plot(snap.x, curve, color=colors[label], ls=styles[label], lw=1.5, label=display_label(label),
+                 marker=marks[label], ms=4, markevery=mark_every(snap.x, labels.index(label), after=-np.inf))
         if snap.next_score[label] is not None:
             mid.plot([snap.next_x[label]], [snap.next_score[label]], ls="none", marker="v", ms=7,
                      color=colors[label], mec="#000000", mew=0.5)
@@ -309,16 +319,16 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         when = "before the first trial" if snap.trials == 0 else f"after the {snap.trials}-trial initial design"
     else:
         when = f"after {snap.trials} trials of {display_label(policy)}"
-    title = f"Campaign snapshot: replicate {replicate}, {when}"
+    title = f"Campaign snapshot, replicate {replicate}, {when}"
     if snap.past.any():
         title += f" (plus {int(snap.past.sum())} past trials)"
     if snap.lost:
         title += f"; {snap.lost} lost"
     if snap.fixed:
         held = ", ".join(f"{display_label(k)} = {v:.4g}" for k, v in snap.fixed.items())
-        title += (f"\nslice through the current recommendation ({held});\n"
-                  "trials and next inputs of other coordinates projected onto this input")
-    top.set_title(title, fontsize=10, loc="left")
+        title += f"; slice at {held}"
+    # over the whole width (the legends take the right of every panel), on one line
+    fig.suptitle(title, fontsize=10, x=0.01, ha="left")
     return fig
 
 

@@ -24,8 +24,12 @@ OKABE_ITO = (
 )
 
 
-# Beyond eight policies colours repeat; the repeat gets another line style.
-LINESTYLES = ("-", "--", "-.", ":")
+# Every policy also gets its own line style and marker, so that the figures still tell the
+# policies apart printed in black and white (Okabe-Ito blue, green and vermillion are close
+# greys). Eight of each, in step with the colours; beyond eight, colours repeat with the next style.
+LINESTYLES = ("-", (0, (5, 2)), (0, (1.2, 1.6)), (0, (6, 1.5, 1.2, 1.5)), (0, (2.5, 1.5)),
+              (0, (8, 2, 1.2, 2, 1.2, 2)), (0, (10, 3)), (0, (3, 1.5, 3, 1.5, 1.2, 1.5)))
+MARKERS = ("o", "s", "^", "D", "v", "P", "X", "*")
 
 
 GREY = "#6b6b6b"
@@ -74,7 +78,25 @@ def policy_colors(labels):
 
 
 def linestyles(labels):
-    return {str(label): LINESTYLES[(i // len(OKABE_ITO)) % len(LINESTYLES)] for i, label in enumerate(labels)}
+    """One line style per policy, in study order (see `LINESTYLES`)."""
+    return {str(label): LINESTYLES[(i + i // len(OKABE_ITO)) % len(LINESTYLES)] for i, label in enumerate(labels)}
+
+
+def markers(labels):
+    """One marker per policy, in study order (see `MARKERS`)."""
+    return {str(label): MARKERS[i % len(MARKERS)] for i, label in enumerate(labels)}
+
+
+def mark_every(trials, i, *, after=0, count=6):
+    """Which points of a curve over `trials` get the marker of policy number `i` (indices): about
+    `count` of those past trial `after` (the shared initial design, where every curve coincides),
+    staggered by policy so that the markers of curves lying together do not hide each other."""
+    trials = np.asarray(trials)
+    later = np.flatnonzero(trials > after)
+    if later.size == 0:
+        return []
+    step = max(1, later.size // count)
+    return later[i % step::step].tolist()
 
 
 def display_label(label):

@@ -154,7 +154,7 @@ class Calibration:
                  f"mean = {toml_value(_round(p.mean, 6))}   # fitted: prior mean of the response",
                  f"noise = {toml_value(noise)}   # fitted: sd of repeated runs at one setting"]
         return study_text(name=name, goal=self.goal, space=space, world=world, dim=self.space.dim,
-                          amplitude=amplitude, noise=noise, header=header,
+                          amplitude=amplitude, noise=noise, header=header, response=self.response,
                           history=None if history is None else (history, self.response, self.rows))
 
     def diagnostics(self) -> str:

@@ -126,7 +126,7 @@ def _policies(amplitude: float) -> list[list[str]]:
 
 def study_text(*, name: str, goal: str, space: Sequence[str], world: Sequence[str], dim: int, amplitude: float,
                noise: float, header: Sequence[str] = (), history: tuple[str, str, int] | None = None,
-               amounts_from: str = "the fitted amplitude and noise") -> str:
+               amounts_from: str = "the fitted amplitude and noise", response: str | None = None) -> str:
     """A complete study file: ``[study]``, the given ``[space]`` and ``[world]`` lines, and a
     suggested ``[campaign]``, ``[target]`` and policy set, each guessed value commented.
 
@@ -140,6 +140,9 @@ def study_text(*, name: str, goal: str, space: Sequence[str], world: Sequence[st
     history : (file, response, rows), optional
         A ``[history]`` table: campaigns start from these ``rows`` past runs (``file`` relative
         to the study file's folder), so the initial design is 0 and budgets count new trials only.
+    response : str, optional
+        The data's response column, named in the comment of the (empty) ``units`` line: a column
+        name is not a unit, so the unit is left for the team to fill in.
     """
     if goal not in GOALS:
         raise ValueError(f"goal must be one of {', '.join(GOALS)}; got {goal!r}")
@@ -154,7 +157,11 @@ def study_text(*, name: str, goal: str, space: Sequence[str], world: Sequence[st
              f"goal = {toml_value(goal)}   # as asked; \"minimize\" or \"maximize\" the response",
              f"replicates = 100{g}worlds drawn; 200 or more narrows the intervals for a proposal "
              "(`simlab check` prints the time)",
-             f"seed = 1{g}any whole number; another draws other worlds", "", "[space]", *space,
+             f"seed = 1{g}any whole number; another draws other worlds",
+             "units = \"\"   # TO FILL: the unit "
+             + (f"column {toml_value(response)} is measured in" if response else "the response is measured in")
+             + " (e.g. \"MPa\", \"g/L\"); it labels every regret, target and axis (empty: \"objective units\")",
+             "", "[space]", *space,
              "", "[world]", *world]
     if history is not None:
         lines += ["", "[history]",

@@ -222,6 +222,32 @@ def test_units_on_every_regret_axis_and_nowhere_objective_units(easy, strict):
     assert "objective units" in strict[2]
 
 
+# Figures with no objective value on them: the placement histograms' axes are the inputs (whose
+# units the study does not state) and shares of trials; the win-rate matrix is a share of worlds.
+_NO_OBJECTIVE_AXIS = {"placement", "win_rates"}
+
+
+def _figures_saying(folder, unit):
+    """Stems of the figures whose SVG text (axis labels, titles, legends) names `unit`."""
+    return {svg.stem for svg in (folder / "figures").glob("*.svg")
+            if any(unit in t for t in _axis_texts(svg))}
+
+
+def test_units_on_every_figure_with_an_objective_value(easy, strict):
+    # common practice: every axis or line in the objective's scale says its unit
+    stems = {svg.stem for svg in (easy[1] / "figures").glob("*.svg")}
+    assert {"regret", "failure_risk", "final_regret", "trials_to_target", "snapshot"} <= stems
+    assert _figures_saying(easy[1], "MPa") == stems - _NO_OBJECTIVE_AXIS
+    # the miss-risk and first-passage axes name the target in MPa, the regret axes their unit
+    texts = {stem: _axis_texts(easy[1] / "figures" / f"{stem}.svg") for stem in stems}
+    assert any("more than 1 MPa short" in t for t in texts["failure_risk"])
+    assert any("1 MPa of the best" in t for t in texts["trials_to_target"])
+    assert any(t == "simple regret (MPa)" for t in texts["final_regret"])
+    # negative control: without units no figure says MPa, and the same figures say "objective units"
+    assert _figures_saying(strict[1], "MPa") == set()
+    assert _figures_saying(strict[1], "objective units") == stems - _NO_OBJECTIVE_AXIS
+
+
 def test_singular_and_plural_unit_words():
     # common practice: "1 objective unit", "0.02 objective units"
     from simlab.report.cells import unit_words

@@ -100,7 +100,7 @@ def test_files_and_their_contract_columns(written):
     for path in files.paths():
         assert path.is_file() and path.stat().st_size > 0, path
     assert {p.name for p in files.figures} == {f"{stem}.{ext}" for ext in ("png", "svg") for stem in
-                                               ("regret", "failure_risk", "within_target", "trials_to_target",
+                                               ("regret", "failure_risk", "trials_to_target",
                                                 "final_regret", "win_rates", "placement", "snapshot")}
     summary = pd.read_csv(files.summary)
     assert {"policy", "budget", "replicates", "regret_median", "regret_q25", "regret_q75", "failure_risk",
@@ -254,16 +254,21 @@ def test_choice_sentences_say_clear_or_tie(written, page):
 @pytest.mark.slow
 def test_report_is_self_contained_and_escaped(page):
     parsed = _parse(page)
-    # no links, no external references at all (embedded PNG data can spell "http" by chance in base64)
-    assert "http" not in re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "", page).lower()
+    # no links, no external references at all (embedded figure data can spell "http" by chance in base64;
+    # the SVGs name their XML namespaces, which are identifiers, not links)
+    assert "http" not in re.sub(r"data:image/svg\+xml;base64,[A-Za-z0-9+/=]+", "", page).lower()
     assert "@import" not in page and "url(" not in page and "@font-face" not in page
     tags = [t for t, _ in parsed.tags]
     assert "script" not in tags and "link" not in tags and "iframe" not in tags
     images = [a for t, a in parsed.tags if t == "img"]
-    assert len(images) == 8     # every figure of the tiny study, the placement histograms included
+    assert len(images) == 7     # every figure of the tiny study, the placement histograms included
     for attrs in images:
-        assert attrs["src"].startswith("data:image/png;base64,")
-        assert base64.b64decode(attrs["src"].split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
+        # embedded as SVG (vector: sharp in print), with no external reference of its own
+        assert attrs["src"].startswith("data:image/svg+xml;base64,")
+        svg = base64.b64decode(attrs["src"].split(",", 1)[1]).decode("utf-8")
+        assert svg.lstrip().startswith("<?xml") and "<svg" in svg
+        # a bitmap inside (a colour bar's gradient) is embedded too, never fetched
+        assert all(ref.startswith("data:image/png;base64,") for ref in re.findall(r'xlink:href="([^"#][^"]*)"', svg))
         assert attrs.get("alt")
     # User strings are escaped: the label's markup never reaches the page as markup.
     assert "<fast>" not in page and "&lt;fast&gt;" in page
@@ -282,6 +287,10 @@ def test_report_states_question_assumptions_and_cautions(written, page):
     assert "feed_rate" in text and "0.5 to 2.5" in text.replace("from 0.5 to 2.5", "0.5 to 2.5")
     assert f"root seed {study.seed}" in text and f"simlab {simlab.__version__}" in text
     assert "Matérn 5/2" in text and "8 worlds" in text
+    # one trial at a time: the settings for rounds (fill, lie) play no part and are not listed; the
+    # rule's own settings are (the control that the settings column is there at all)
+    assert "fill =" not in text and "lie =" not in text and "left out" in text
+    assert "width = 2" in text and "margin = 0" in text
     for phrase in ("The prior may be wrong", "Gaussian", "Safety constraints", "local codes and regulations",
                    "ethics review", "licensed professional practice"):
         assert phrase in text, phrase
@@ -315,8 +324,8 @@ def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
     text = re.sub(r"\s+", " ", re.sub(r"<[^>]+>", " ", files.report.read_text(encoding="utf-8")))
     for phrase in ("Student-t noise (4 degrees of freedom", "lost (budget spent, nothing observed) with probability 0.3",
                    "trials per round 2", "refitted by maximum likelihood every 3 trials",
-                   "trials fail only at random"):
-        assert phrase in text, phrase
+                   "trials fail only at random", "fill = believer", "lie = min"):
+        assert phrase in text, phrase   # with rounds, how a round is filled is among the settings shown
     # rounds of trials get a regret-against-round figure: its medians are the regrets at the
     # last trial of each round, recomputed here directly from the traces
     assert (tmp_path / "figures" / "regret_rounds.png").is_file() and "round of 2 trials" in text

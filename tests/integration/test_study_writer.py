@@ -127,6 +127,11 @@ def test_calibrated_study_holds_the_fit_and_the_suggestions(written):
     assert rules == ["random", "pi", "ei", "lcb", "thompson", "mes"]
     assert data["policy"][1]["margin"] == pytest.approx(0.01 * w["amplitude"], rel=0.05)   # 2 digits
     assert "Loeppky, Sacks & Welch 2009" in text and "max(0.1 x amplitude, noise sd)" in text
+    # a column name is not a unit: units is left empty (the report says "objective units"), with a
+    # comment naming the column and asking for its unit
+    assert data["study"]["units"] == ""
+    (units_line,) = [line for line in text.splitlines() if line.startswith("units =")]
+    assert "TO FILL" in units_line and '"titre"' in units_line
 
 
 @pytest.mark.slow
@@ -167,6 +172,7 @@ def test_new_skeleton_parses_and_every_value_is_commented(tmp_path):
     assert study.space.names == ("barrel_temp", "screw_speed", "die_gap")
     assert study.campaign.initial == 6 and study.campaign.budgets == (15, 30, 45)   # d = 3
     assert study.target == 0.1 and len(study.policies) == 6
+    assert study.units == "" and any(line.startswith('units = ""   # TO FILL') for line in text.splitlines())
     assert simlab("check", "line.toml", "--no-timing", cwd=tmp_path).returncode == 0
 
 

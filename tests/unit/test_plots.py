@@ -47,16 +47,14 @@ def colors(run):
 def figures(run, colors):
     study, traces = run
     horizon = study.campaign.horizon
-    summary = metrics.budget_summary(traces, budgets=study.campaign.budgets, target=study.target,
-                                     n_resamples=200)
     return {
         "regret": plots.regret_figure(metrics.regret_curves(traces, n_resamples=200), target=study.target,
                                       budgets=study.campaign.budgets, initial=study.campaign.initial,
                                       colors=colors),
-        "failure": plots.failure_figure(summary, colors=colors),
+        "failure": plots.failure_figure(reach.within_target_curves(traces, target=study.target),
+                                        budgets=study.campaign.budgets, initial=study.campaign.initial,
+                                        target=study.target, colors=colors),
         "reach": plots.reach_figure(reach.reach_curves(traces, target=study.target), colors=colors),
-        "within": plots.within_target_figure(reach.within_target_curves(traces, target=study.target),
-                                             budgets=study.campaign.budgets, colors=colors),
         "final": plots.final_regret_figure(metrics.regret_at_budget(traces, budget=horizon), target=study.target,
                                            budget=horizon, colors=colors),
         "win": plots.win_rate_figure(compare.pairwise(traces, budget=horizon, target=study.target),
@@ -103,14 +101,15 @@ def test_every_figure_labels_its_axes(figures):
         assert axes[-1].get_xlabel().strip(), f"{name}: no x label"
     assert figures["regret"].axes[0].get_ylabel().startswith("simple regret (objective units)")
     assert figures["regret"].axes[0].get_xlabel() == "trial"
-    assert figures["reach"].axes[0].get_ylabel() == "share of campaigns that were\nwithin target at some trial so far"
-    assert figures["within"].axes[0].get_ylabel().startswith("share of campaigns within target")
+    assert figures["reach"].axes[0].get_ylabel() == "share of campaigns within\ntarget at some trial so far"
+    assert figures["failure"].axes[0].get_ylabel() == ("miss risk: share of campaigns\n"
+                                                       "ending more than 0.1 objective units short")
     assert figures["final"].axes[0].get_xlabel().startswith("simple regret (objective units)")
     assert figures["snapshot"].axes[-1].get_xlabel() == "feed_rate"  # the user's input name
 
 
 def test_a_policy_keeps_its_colour_in_every_figure(figures, colors):
-    for name in ("regret", "failure", "reach", "within"):
+    for name in ("regret", "failure", "reach"):
         seen = _legend_colors(figures[name].axes[0])
         assert {k: v for k, v in seen.items() if k in LABELS} == {k: to_hex(colors[k]) for k in LABELS}, name
     # Snapshot: acquisition curves (scoring rules only) and next-input markers (every rule).
@@ -132,6 +131,66 @@ def test_a_policy_keeps_its_colour_in_every_figure(figures, colors):
         ticks = getattr(fig.axes[0], f"get_{axis}ticklabels")()
         assert [t.get_text() for t in ticks] == list(LABELS)
         assert [to_hex(t.get_color()) for t in ticks] == [to_hex(colors[k]) for k in LABELS]
+
+
+def _styles(ax):
+    """Legend label -> (line style, marker) of the policies' entries."""
+    handles, labels = ax.get_legend_handles_labels()
+    return {label: (str(h.get_linestyle()), h.get_marker()) for h, label in zip(handles, labels) if label in LABELS}
+
+
+def test_policies_differ_by_line_style_and_marker_not_only_colour(figures):
+    """Printed in black and white, colour is lost: each policy's legend entry keeps its own
+    (line style, marker) pair (common practice for figures that will be printed)."""
+    for name in ("regret", "failure", "reach"):
+        styles = _styles(figures[name].axes[0])
+        assert set(styles) == set(LABELS), name
+        assert len({m for _, m in styles.values()}) == len(LABELS), (name, styles)   # markers alone suffice
+    # and the line styles differ too (matplotlib reports every dash pattern as "--", so read the mapping)
+    from simlab.report.style import linestyles
+    assert len({str(v) for v in linestyles(LABELS).values()}) == len(LABELS)
+    # negative control: lines told apart by colour only give one (style, marker) pair for all
+    from matplotlib.figure import Figure
+    ax = Figure().add_subplot()
+    for label, color in zip(LABELS, ("#0072B2", "#009E73", "#D55E00")):
+        ax.plot([0, 1], [0, 1], color=color, label=label)
+    assert len(set(_styles(ax).values())) == 1
+
+
+def test_miss_risk_is_drawn_at_every_trial_without_a_sideways_shift(run, figures):
+    study, traces = run
+    within = reach.within_target_curves(traces, target=study.target)
+    ax = figures["failure"].axes[0]
+    horizon = study.campaign.horizon
+    drawn = [ln for ln in ax.get_lines() if len(ln.get_xdata()) > 2]
+    assert drawn
+    for line in drawn:
+        x = np.asarray(line.get_xdata(), dtype=float)
+        assert x.min() >= 1 and x.max() <= horizon + 0.5   # nothing past the last trial's step
+    for label in LABELS:   # the step values are one minus the within-target share, trial by trial
+        rows = within[within["policy"] == label].sort_values("trial")
+        expected = 1.0 - rows["within_target"].to_numpy()
+        steps = [ln for ln in drawn if len(ln.get_xdata()) == len(rows) + 1
+                 and np.allclose(np.asarray(ln.get_ydata())[:-1], expected)]
+        assert steps, label
+
+
+def test_final_regret_boxes_are_the_quartiles_and_whiskers_the_10th_and_90th_percentiles(run, figures):
+    study, traces = run
+    final = metrics.regret_at_budget(traces, budget=study.campaign.horizon)
+    ax = figures["final"].axes[0]
+    # bxp draws each box as a patch; its x extent is the quartiles (numpy's linear rule, as summary.csv)
+    boxes = [p for p in ax.patches if p.get_zorder() == 4]
+    assert len(boxes) == len(LABELS)
+    floor = 0.1 * 1e-3
+    for label, box in zip(LABELS, boxes):
+        x = box.get_path().vertices[:, 0]
+        q25, q75 = np.maximum(np.quantile(final.loc[final["policy"] == label, "regret"], [0.25, 0.75]), floor)
+        assert x.min() == pytest.approx(q25) and x.max() == pytest.approx(q75)
+    whisker_ends = sorted({round(float(v), 12) for ln in ax.get_lines() for v in ln.get_xdata()})
+    for label in LABELS:
+        q10, q90 = np.maximum(np.quantile(final.loc[final["policy"] == label, "regret"], [0.1, 0.9]), floor)
+        assert any(np.isclose(q10, whisker_ends)) and any(np.isclose(q90, whisker_ends))
 
 
 def test_win_rates_add_up_across_the_diagonal(run, figures):
@@ -258,7 +317,10 @@ def test_snapshot_slices_a_two_input_study():
                    world={"lengthscale": [0.5, 2.0]}, campaign={"initial": 4, "budgets": [6]})
     fig = snapshot_figure(study, along="temp", samples=40, points=64)  # replays replicate 0
     assert fig.axes[-1].get_xlabel() == "temp"
-    assert "slice through the current recommendation (feed_rate = " in fig.axes[0].get_title(loc="left")
+    assert "; slice at feed_rate = " in fig.get_suptitle()
+    # the slice runs through the recommended trial: it is drawn on the slice, the others as projected
+    assert len(_line(fig.axes[0], "trials").get_xdata()) == 1
+    assert len(_line(fig.axes[0], "trials-projected").get_xdata()) == 3
     x = _line(fig.axes[0], "posterior-mean").get_xdata()
     assert x.min() == pytest.approx(28.0) and x.max() == pytest.approx(37.0)
 
@@ -291,7 +353,6 @@ def test_save_figure_writes_png_and_svg_atomically(tmp_path, figures):
 def test_labels_with_dollar_signs_are_drawn_literally(tmp_path, run):
     traces = run[1]
     renamed = traces.assign(policy=traces["policy"].astype(str).replace({"EI": "EI $5 $ budget"}))
-    summary = metrics.budget_summary(renamed, budgets=[5, 8], target=0.1, n_resamples=200)
-    fig = plots.failure_figure(summary)
+    fig = plots.failure_figure(reach.within_target_curves(renamed, target=0.1))
     plots.save_figure(fig, tmp_path, "dollar")  # would fail to draw if parsed as mathematics
     assert "EI \\$5 \\$ budget" in fig.axes[0].get_legend_handles_labels()[1]
