@@ -73,6 +73,8 @@ def _measure(src: Path, rule: str, args) -> float:
 
 
 def main():
+    import numpy as np
+
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--before", help="git revision to measure beside the working tree")
     ap.add_argument("--replicates", type=int, default=64, help="replicates in the block")
@@ -80,35 +82,27 @@ def main():
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--rules", default=",".join(RULES))
     args = ap.parse_args()
-    rules = [r for r in args.rules.split(",") if r]
-    if "ei" not in rules:
-        rules.insert(0, "ei")
+    rules = ["ei"] + [r for r in args.rules.split(",") if r and r != "ei"]
     now = Path(__file__).resolve().parents[1]
     with tempfile.TemporaryDirectory() as tmp:
         trees = {"now": now}
         if args.before:
             trees = {"before": _export(args.before, Path(tmp)), **trees}
         times: dict[str, dict[str, list[float]]] = {k: {r: [] for r in rules} for k in trees}
-        for rule in rules:
+        print(f"time per trial (ms), block of {args.replicates}, 2-D, pool 2048, 5 + {args.horizon - 5} trials, "
+              f"median of {args.repeats}; x EI = ratio to EI's time in the same column", flush=True)
+        head = f"{'rule':10s}" + "".join(f"{k + ' ms':>12s}{'x EI':>8s}" for k in trees)
+        print(head + (f"{'before/now':>12s}" if args.before else ""), flush=True)
+        for rule in rules:                       # EI first: every later row is printed as soon as it is measured
             for _ in range(args.repeats):
                 for name, src in trees.items():
                     times[name][rule].append(_measure(src, rule, args))
-            print(f"  measured {rule}", file=sys.stderr, flush=True)
-
-    import numpy as np
-
-    med = {k: {r: float(np.median(v)) for r, v in t.items()} for k, t in times.items()}
-    print(f"time per trial (ms), block of {args.replicates}, 2-D, pool 2048, 5 + {args.horizon - 5} trials, "
-          f"median of {args.repeats}; x EI = ratio to EI's time in the same column")
-    head = f"{'rule':10s}" + "".join(f"{k + ' ms':>12s}{'x EI':>8s}" for k in trees)
-    if args.before:
-        head += f"{'before/now':>12s}"
-    print(head)
-    for rule in rules:
-        line = f"{rule:10s}" + "".join(f"{1e3 * med[k][rule]:12.3f}{med[k][rule] / med[k]['ei']:8.2f}" for k in trees)
-        if args.before:
-            line += f"{med['before'][rule] / med['now'][rule]:12.2f}"
-        print(line)
+            med = {k: float(np.median(times[k][rule])) for k in trees}
+            ei = {k: float(np.median(times[k]["ei"])) for k in trees}
+            line = f"{rule:10s}" + "".join(f"{1e3 * med[k]:12.3f}{med[k] / ei[k]:8.2f}" for k in trees)
+            if args.before:
+                line += f"{med['before'] / med['now']:12.2f}"
+            print(line, flush=True)
 
 
 if __name__ == "__main__":
