@@ -76,7 +76,7 @@ def _warn_jobs(jobs: int) -> None:
 
 
 def _cores() -> int:
-    from .replay.runner import cores
+    from .replay.workers import cores
     return cores()
 
 
@@ -98,9 +98,14 @@ def _advise(study) -> None:
 
 
 def _run(args) -> int:
+    study = _load(args)
+    if not args.quiet:
+        # the first line, before the engine's imports (pandas, SciPy's statistics: seconds on a slow disk)
+        c = study.campaign
+        print(f"{study.name}: {study.replicates} replicates x {len(study.policies)} policies, "
+              f"up to {c.horizon} trials each", file=sys.stderr, flush=True)
     from .report.console import budget_table
     from .api import run_study
-    study = _load(args)
     t0 = time.perf_counter()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", RuntimeWarning)
@@ -147,10 +152,10 @@ def _write_report(result, *, success: float, quiet: bool):
 
 
 def _check(args) -> int:
-    from .report.console import duration
     from .study.dump import dump_study
     study = _load(args)
-    print(dump_study(study), end="")
+    print(dump_study(study), end="", flush=True)
+    from .report.console import duration   # after the first lines: it brings pandas
     c = study.campaign
     campaigns = study.replicates * len(study.policies)
     print(f"\n# work: {study.replicates} replicates x {len(study.policies)} policies = {campaigns} campaigns "

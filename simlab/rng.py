@@ -20,6 +20,7 @@ PURPOSES = {
     "hyper": 6,      # the replicate's own world hyperparameters when they are uncertain
     "refit": 7,      # starting points of a campaign's belief refits (per policy)
     "optimum_check": 8,   # a second, independent search for the world's optimum (optimum_gap)
+    "library": 9,    # the order a [candidates] library's rows are visited in (design, sobol policy)
 }
 
 

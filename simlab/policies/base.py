@@ -25,6 +25,20 @@ class Context:
     sequence: np.ndarray        # (horizon, d) the replicate's Sobol' sequence (initial design prefix)
     horizon: int                # trials in the campaign
     posterior: Posterior
+    library: bool = False       # the pool is a [candidates] library: every trial is one of its rows
+
+    def evaluated_rows(self, post: Posterior) -> np.ndarray:
+        """Library mode: which pool rows the posterior has observed (trials are exact copies of rows)."""
+        seen = np.zeros(len(self.pool), dtype=bool)
+        if post.n:
+            index = getattr(self, "_row_index", None)
+            if index is None:
+                index = self._row_index = {row.tobytes(): i for i, row in enumerate(self.pool)}
+            for x in post.X:
+                i = index.get(np.ascontiguousarray(x).tobytes())
+                if i is not None:
+                    seen[i] = True
+        return seen
 
 
 @dataclass
@@ -206,7 +220,26 @@ class Acquisition(Policy):
         return a, da_dmu[:, None] * dmu + da_dsd[:, None] * dsd
 
     # ------------------------------------------------------------------ choosing
+    zero_at_evaluated: ClassVar[bool] = False   # with zero noise the score is exactly 0 at an evaluated input
+
+    def _choose_row(self, post):
+        """A library's row: every row scored exactly (no pool sample, no polish).
+
+        With a noise-free belief a rule whose score is exactly zero at evaluated inputs (expected
+        improvement: Jones, Schonlau & Welch 1998) scores them -inf, so the nugget's ~1e-5 sd there
+        never outranks an unevaluated row; once every row is evaluated they compete again.
+        """
+        self.prepare(post)
+        values = np.array(self.score_pool(post), dtype=float)
+        if self.zero_at_evaluated and post.noise == 0.0:
+            seen = self.ctx.evaluated_rows(post)
+            if not seen.all():
+                values[seen] = -np.inf
+        return self.ctx.pool[int(np.argmax(values))].copy()
+
     def choose(self, post, t):
+        if self.ctx.library:
+            return self._choose_row(post)
         if self.lockstep and not self._pending:
             block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
             u = self.choose_block(post, t, block)[0]

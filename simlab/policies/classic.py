@@ -24,6 +24,10 @@ class RandomSearch(Policy):
     lockstep = True
 
     def choose(self, post, t):
+        if self.ctx.library:   # a row not yet evaluated in this campaign, uniformly; any row once all are
+            free = np.flatnonzero(~self.ctx.evaluated_rows(post))
+            rows = free if free.size else np.arange(len(self.ctx.pool))
+            return self.ctx.pool[rows[self.ctx.rng.integers(rows.size)]].copy()
         return self.ctx.rng.random(self.ctx.pool.shape[1])
 
     def choose_block(self, st, t, block):
@@ -99,6 +103,7 @@ class _Improvement(Acquisition):
 
     options = {"margin": Option(0.0, float, 0.0, None, "improvement margin xi, objective units")}
     lockstep = True
+    zero_at_evaluated = True     # noise-free: no improvement is left at an evaluated input
 
     def prepare(self, post):
         # before any observation, improvement is measured from the prior mean

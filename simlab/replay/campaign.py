@@ -20,7 +20,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                  sequence: np.ndarray, observe: Callable[[float, int], float], budget: int,
                  pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
                  history: tuple[np.ndarray, np.ndarray] | None = None,
-                 refit_rng: np.random.Generator | None = None) -> Trace:
+                 refit_rng: np.random.Generator | None = None, library: bool = False) -> Trace:
     """Replay one campaign.
 
     Parameters
@@ -45,12 +45,14 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         and in the posterior; the budget counts new trials only.
     refit_rng : numpy.random.Generator, optional
         Stream for the random restarts of belief refits (``belief.refit_every > 0``).
+    library : bool
+        The pool is a [candidates] library: policies choose its rows (``Context.library``).
     """
     d = sequence.shape[1]
     H, yH = past_trials(history, d)
     h, n = len(yH), len(yH) + budget
     post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=n + batch)
-    policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post))
+    policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post, library=library))
     U, y, f, rec = allocate(n, d)
     seen: list[int] = []                                   # trace rows the posterior has observed
     for i in range(h):                                     # past trials, already observed

@@ -8,7 +8,8 @@ import tempfile
 import time
 from dataclasses import dataclass
 
-from .runner import _workers, chunk_plan, cores
+from .runner import chunk_plan
+from .workers import cores, workers as _workers
 from ..study.spec import Study
 
 __all__ = ["Estimate", "measure", "process_age", "worker_startup"]

@@ -19,6 +19,7 @@ from ..worlds.replicate import (Replicate, history_arrays, make_observer, make_r
                                 world_optimum)
 from .campaign import run_campaign
 from .trace import Trace
+from .workers import workers as _workers
 
 __all__ = ["make_belief", "make_policy", "replay_replicate", "replay", "replay_study", "replay_chunks",
            "chunk_plan", "connect",
@@ -69,7 +70,8 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     for spec in study.policies:
         probe = make_policy(spec)
         horizons = c.budgets if probe.horizon_aware else (c.horizon,)
-        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost)
+        together = (lockstep and study.space.library is None     # a library's campaigns run one at a time
+                    and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost))
         per: list[list[tuple[int, Trace]]] = [[] for _ in reps]
         for b in horizons:
             if together:
@@ -94,7 +96,8 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
     return run_campaign(make_policy(spec), belief, rep.world, design=rep.design, sequence=rep.sequence,
                         observe=observe, budget=budget, pool=rep.pool,
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
-                        history=history, refit_rng=stream(study.seed, r, "refit", spec.label))
+                        history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
+                        library=study.space.library is not None)
 
 
 def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
@@ -245,19 +248,6 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     finally:
         if isinstance(cluster, str):
             client.close()
-
-
-def cores() -> int:
-    """The cores this process may run on (its CPU affinity where the system has one)."""
-    import os
-    try:
-        return len(os.sched_getaffinity(0))
-    except (AttributeError, OSError):   # not on Linux
-        return os.cpu_count() or 1
-
-
-def _workers(jobs: int) -> int:
-    return cores() if jobs == -1 else max(int(jobs), 1)
 
 
 def _stop_local_workers() -> None:

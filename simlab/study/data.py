@@ -45,7 +45,7 @@ class DataError(ValueError):
 
 
 def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data",
-               required: Sequence[str] = ()) -> pd.DataFrame:
+               required: Sequence[str] = (), text: Sequence[str] | bool = ()) -> pd.DataFrame:
     """Read a CSV file of numbers, refusing anything that would need a guess.
 
     Parameters
@@ -63,6 +63,10 @@ def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data"
         What the file is for, used in messages ("calibration data", "history").
     required : sequence of str
         With ``columns`` omitted: columns that must be present and numeric even so.
+    text : sequence of str or True
+        Columns returned as text (stripped strings; a blank cell is refused) instead of numbers.
+        True, with ``columns`` omitted: every column with no number at all is returned as text
+        (a library's categorical inputs) instead of being skipped.
 
     Returns
     -------
@@ -80,6 +84,7 @@ def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data"
         a comma ("1,234" or "12,5": thousands separator or decimal comma, never guessed).
     """
     name = str(path)
+    as_text = text
     text = _read_text(Path(path), name)
     lines = text.splitlines()
     if not lines or not any(line.strip() for line in lines):
@@ -122,14 +127,18 @@ def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data"
     if columns is None:
         for c in required:
             _need(name, header, c, role)
-        wanted = [c for c in header if c in required or _looks_numeric(raw[c])]
+        if as_text is True:
+            as_text = [c for c in header if c not in required and not _looks_numeric(raw[c])]
+        wanted = [c for c in header if c in required or c in as_text or _looks_numeric(raw[c])]
         skipped = [c for c in header if c not in wanted]
     else:
         columns = list(columns)
         for c in columns:
             _need(name, header, c, role)
         wanted, skipped = columns, []
-    out = pd.DataFrame({c: _numbers(name, raw[c], c, role) for c in wanted}, index=raw.index)
+    as_text = () if as_text is True else tuple(as_text)
+    out = pd.DataFrame({c: _texts(name, raw[c], c, role) if c in as_text else _numbers(name, raw[c], c, role)
+                        for c in wanted}, index=raw.index)
     out.attrs["header"] = list(header)
     out.attrs["skipped"] = skipped
     out.attrs["source"] = name
@@ -195,6 +204,16 @@ def _numbers(name: str, col: pd.Series, column: str, role: str) -> np.ndarray:
         raise DataError(name, f'"{cells.loc[row]}" is beyond ±{_LIMIT:g}; {role} needs numbers of a sensible size '
                         "(rescale the column, e.g. into other units)", column=column, row=row)
     return values
+
+
+def _texts(name: str, col: pd.Series, column: str, role: str) -> np.ndarray:
+    cells = col.fillna("").str.strip()
+    blank = (cells == "").to_numpy()
+    if blank.any():
+        row = int(col.index[np.argmax(blank)])
+        raise DataError(name, f"is blank; {role} needs a value in every cell of this column (delete the row or "
+                        "fill it in)", column=column, row=row)
+    return cells.to_numpy(dtype=object)
 
 
 def _why(cell: str, role: str) -> str:

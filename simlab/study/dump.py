@@ -8,7 +8,7 @@ from typing import Any
 
 import numpy as np
 
-from .types import Prior, Study, WorldSpec
+from .types import CATEGORICAL, LOG, STEPPED, Prior, Space, Study, WorldSpec
 
 
 def toml_value(v) -> str:
@@ -29,11 +29,13 @@ def toml_key(k: str) -> str:
     return k if re.match(r"^[A-Za-z0-9_-]+$", k) else toml_value(k)
 
 
-def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_file: str | None = None) -> str:
+def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_file: str | None = None,
+               library_file: str | None = None) -> str:
     """The resolved study as TOML text that :func:`load_study` reads back to an equal study.
 
     Every default is written out, so the file records exactly what ran. ``history_file``
-    replaces the history path (the results folder keeps its own copy of the history).
+    replaces the history path (the results folder keeps its own copy of the history), and
+    ``library_file`` the ``[candidates]`` path likewise.
     """
     lines = []
     for k, v in (header or {}).items():
@@ -42,20 +44,20 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
               f"replicates = {study.replicates}", f"seed = {study.seed}"]
     if study.units:   # written only when set: without it the text (and the results folder's hash) is unchanged
         lines.append(f"units = {toml_value(study.units)}")
-    lines += ["", "[space]"]
-    for n, lo, hi in zip(study.space.names, study.space.low, study.space.high):
-        lines.append(f"{toml_key(n)} = [{lo!r}, {hi!r}]")
+    lines += ["", "[space]", *_space_lines(study.space)]
+    if study.space.library is not None:
+        lines += ["", "[candidates]", f"file = {toml_value(library_file or study.space.library.file)}"]
     lines += ["", "[world]"]
     w = study.world
     if w.function is not None:
         lines += [f"function = {toml_value(w.function)}", f"noise = {w.noise!r}"]
         lines += _noise_lines(w)
     else:
-        lines += _prior_lines(w.prior)
+        lines += _prior_lines(w.prior, study.space)
         lines += [f"method = {toml_value(w.method)}", *(f"{k} = {toml_value(v)}" for k, v in w.method_settings),
                   f"lengthscale_within = {w.lengthscale_within!r}", f"amplitude_within = {w.amplitude_within!r}"]
         lines += _noise_lines(w)
-    lines += ["", "[belief]", *_prior_lines(study.belief), f"refit_every = {study.refit_every}", "", "[campaign]"]
+    lines += ["", "[belief]", *_prior_lines(study.belief, study.space), f"refit_every = {study.refit_every}", "", "[campaign]"]
     c = study.campaign
     lines += [f"initial = {c.initial}", f"design = {toml_value(c.design)}",
               f"budgets = {toml_value(list(c.budgets))}", f"pool = {c.pool}", f"batch = {c.batch}", "",
@@ -78,6 +80,28 @@ def _noise_lines(w: WorldSpec) -> list[str]:
     return out + [f"noise_growth = {w.noise_growth!r}", f"lost = {w.lost!r}"]
 
 
-def _prior_lines(p: Prior) -> list[str]:
-    return [f"kernel = {toml_value(p.kernel)}", f"lengthscale = {toml_value(list(p.lengthscale))}",
-            f"amplitude = {p.amplitude!r}", f"mean = {p.mean!r}", f"noise = {p.noise!r}"]
+def _space_lines(space: Space) -> list[str]:
+    """One line per input in the form it was given: [low, high], or a table for the other kinds."""
+    out = []
+    for j, (n, lo, hi) in enumerate(zip(space.names, space.low, space.high)):
+        kind = space.kind(j)
+        if kind == CATEGORICAL:
+            out.append(f"{toml_key(n)} = {{ levels = {toml_value(list(space.levels[j]))} }}")
+        elif kind == STEPPED:
+            out.append(f"{toml_key(n)} = {{ low = {lo!r}, high = {hi!r}, step = {space.steps[j]!r} }}")
+        elif kind == LOG:
+            out.append(f"{toml_key(n)} = {{ low = {lo!r}, high = {hi!r}, scale = \"log\" }}")
+        else:
+            out.append(f"{toml_key(n)} = [{lo!r}, {hi!r}]")
+    return out
+
+
+def _prior_lines(p: Prior, space: Space) -> list[str]:
+    out = [f"kernel = {toml_value(p.kernel)}"]
+    if p.lengthscale:     # absent only when every input is categorical
+        out.append(f"lengthscale = {toml_value(list(p.lengthscale))}")
+    out += [f"amplitude = {p.amplitude!r}", f"mean = {p.mean!r}", f"noise = {p.noise!r}"]
+    if p.level_correlation:   # written only with categorical inputs: box studies dump as before
+        table = ", ".join(f"{toml_key(space.names[j])} = {rho!r}" for j, rho in zip(space.categorical, p.level_correlation))
+        out.append(f"level_correlation = {{ {table} }}")
+    return out

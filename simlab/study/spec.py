@@ -15,19 +15,28 @@ from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
 from ..worlds.kinds import WORLD_KINDS, world_options
+from ..worlds.mixed import MAX_ENUMERATED, MAX_SEARCHED, discrete_combinations, needs_mixed
 from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
-from .types import (DESIGNS, GOALS, MAX_REPLICATES, NAME_LENGTH, UNITS_LENGTH, CampaignSpec, HistorySpec, PolicySpec, Prior,
-                    Space, Study, StudyError, SweepSpec, WorldSpec)
+from .types import (CATEGORICAL, CONTINUOUS, DESIGNS, GOALS, LOG, MAX_REPLICATES, NAME_LENGTH, STEPPED, UNITS_LENGTH,
+                    CampaignSpec, HistorySpec, Library, PolicySpec, Prior, Space, Study, StudyError, SweepSpec,
+                    WorldSpec)
 
 __all__ = ["load_study", "parse_study", "advice", "RESERVED",
            # the types a study is made of (types.py), imported here because reading makes them
            "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec",
-           "Study", "MAX_REPLICATES", "NAME_LENGTH", "GOALS", "DESIGNS"]
+           "Study", "Library", "MAX_REPLICATES", "NAME_LENGTH", "GOALS", "DESIGNS", "unsupported", "MAX_LEVELS"]
 
 # Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
 RESERVED = TRACE_COLUMNS + WORLD_COLUMNS[1:]
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
+# Most levels a categorical input may have, and most rows a library may hold: beyond these an
+# exchangeable correlation (one number for all pairs) or a scored-in-full library is not what was meant.
+MAX_LEVELS = 1000
+MAX_LIBRARY = 1_000_000
+# Keys of a [space] entry written as a table.
+_INPUT_KEYS = ("low", "high", "step", "scale", "levels")
+_SCALES = ("linear", "log")
 
 
 def _shape_keys() -> tuple[str, ...]:
@@ -44,17 +53,21 @@ def _section_keys() -> dict[str, tuple[str, ...]]:
     kind or noise shape brings its settings with it."""
     return {
         "study": ("name", "goal", "replicates", "seed", "units"),
-        "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "method", *world_options(1), "function",
-                  "lengthscale_within", "amplitude_within", *_noise_keys()),
+        "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "level_correlation", "method",
+                  *world_options(1), "function", "lengthscale_within", "amplitude_within", *_noise_keys()),
         "campaign": ("initial", "design", "budgets", "pool", "batch"),
         "target": ("regret", "difference"),
         "sweep": ("lengthscale", "amplitude", "replicates"),
         "history": ("file", "response"),
+        "candidates": ("file",),
     }
 
 
-def load_study(path: str | Path) -> Study:
+def load_study(path: str | Path, *, runnable: bool = True) -> Study:
     """Read and validate a study file.
+
+    ``runnable=False`` also accepts a study that uses an input kind some part of simlab does not
+    support yet (:func:`unsupported`); such a study reads and dumps but cannot be run.
 
     Raises
     ------
@@ -79,20 +92,20 @@ def load_study(path: str | Path) -> Study:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise StudyError(name, "", f"is not valid TOML: {exc}") from None
-    return parse_study(data, source=name, default_name=path.stem, base_dir=path.parent)
+    return parse_study(data, source=name, default_name=path.stem, base_dir=path.parent, runnable=runnable)
 
 
 def parse_study(data: dict, *, source: str = "<study>", default_name: str = "study",
-                base_dir: str | Path | None = None) -> Study:
+                base_dir: str | Path | None = None, runnable: bool = True) -> Study:
     """Validate an already-parsed TOML mapping; see :func:`load_study`.
 
-    ``base_dir`` is where relative file paths in the study (``[history] file``) are
-    resolved; :func:`load_study` passes the study file's folder.
+    ``base_dir`` is where relative file paths in the study (``[history] file``, ``[candidates]
+    file``) are resolved; :func:`load_study` passes the study file's folder.
     """
     base_dir = Path(base_dir) if base_dir is not None else None
     r = _Reader(source)
     r.keys(data, "", ("study", "space", "world", "belief", "campaign", "target", "policy", "sweep",
-                          "history"))
+                          "history", "candidates"))
 
     st = r.table(data, "study", required=False)
     r.keys(st, "study", _section_keys()["study"])
@@ -120,12 +133,15 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
                     "prior keys here (the campaigns' model goes in [belief])", here=_section_keys()["world"])
         if goal != "minimize":
             r.fail("study.goal", f"published test functions are minimised; use goal = \"minimize\" with function = \"{function}\"")
+        if "candidates" in data:
+            r.fail("[candidates]", f"a library of candidates needs a prior world, not function = \"{function}\" "
+                   "(a published function is defined on its whole domain)")
         space = _read_space(r, data, fn=fn)
         noise = r.number(wt, "world.noise", low=0.0, default=0.0)
         world = WorldSpec(prior=None, function=function, noise=noise, **_read_noise(r, wt))
         world_prior = None
     else:
-        space = _read_space(r, data, fn=None)
+        space = _read_space(r, data, fn=None, base_dir=base_dir)
         r.keys(wt, "world", _section_keys()["world"])
         world_prior = _read_prior(r, wt, "world", space, base=None)
         method = r.choice(wt, "world.method", tuple(WORLD_KINDS), default="features")
@@ -134,12 +150,14 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         refusal = WORLD_KINDS[method].refuse(space.dim, uncertain_lengthscale=within["lengthscale_within"] != 1.0)
         if refusal is not None:
             r.fail(*refusal)
+        if needs_mixed(space):
+            _refuse_mixed(r, space, method, within)
         settings = r.options(wt, "world", world_options(space.dim))
         world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise, method=method,
                           method_settings=settings, **within, **_read_noise(r, wt))
 
     bt = r.table(data, "belief", required=False)
-    r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise", "refit_every"))
+    r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise", "level_correlation", "refit_every"))
     refit_every = r.integer(bt, "belief.refit_every", low=0, high=100_000, default=0)
     belief = _read_prior(r, bt, "belief", space, base=world_prior, noise_default=world.noise)
 
@@ -177,9 +195,14 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
         amplitude=r.factor_list(sw, "sweep.amplitude", SweepSpec.amplitude),
         replicates=r.integer(sw, "sweep.replicates", low=1, high=MAX_REPLICATES, default=min(replicates, 50)),
     )
-    return Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
-                 belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
-                 history=history, refit_every=refit_every, difference=difference, units=units, source=source)
+    study = Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
+                  belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
+                  history=history, refit_every=refit_every, difference=difference, units=units, source=source)
+    if runnable:
+        refusal = unsupported(study)
+        if refusal is not None:
+            r.fail(*refusal)
+    return study
 
 
 def _read_noise(r: "_Reader", wt: dict) -> dict:
@@ -200,6 +223,9 @@ def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None)
         return None
     ht = r.table(data, "history")
     r.keys(ht, "history", _section_keys()["history"])
+    if space.library is not None or space.categorical or any(space.kind(j) == STEPPED for j in range(space.dim)):
+        r.fail("[history]", "past trials are not supported yet with stepped or categorical inputs or a [candidates] "
+               "library (issue 15 lands them later); continuous and log-scaled inputs take a history")
     file = r.string(ht, "history.file")
     response = r.string(ht, "history.response", default="y")
     if response in space.names:
@@ -225,28 +251,35 @@ def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None)
                        y=tuple(float(v) for v in table[response].to_numpy(dtype=float)))
 
 
-def _read_space(r: "_Reader", data: dict, *, fn) -> Space:
+def _read_space(r: "_Reader", data: dict, *, fn, base_dir: Path | None = None) -> Space:
     if fn is not None and "space" not in data:
         return Space(names=tuple(f"x{i + 1}" for i in range(fn.dim)),
                      low=tuple(float(b[0]) for b in fn.bounds),
                      high=tuple(float(b[1]) for b in fn.bounds))
+    if fn is None and "candidates" in data and "space" not in data:
+        return _library_space(r, data, base_dir)
     sp = r.table(data, "space")
     if not sp:
         r.fail("space", "is empty; give one entry per input, e.g. barrel_temp = [180.0, 240.0]")
-    names, low, high = [], [], []
+    names, low, high, kinds, steps, levels = [], [], [], [], [], []
     for key, value in sp.items():
         fld = f"space.{key}"
         if not _NAME.match(key):
             r.fail(fld, "an input name must start with a letter or _ and hold only letters, digits, _ . -")
         if key in RESERVED:
             r.fail(fld, f"is a reserved column name of the traces ({', '.join(RESERVED)}); rename the input")
-        if not (isinstance(value, list) and len(value) == 2):
-            r.fail(fld, f"must be [low, high], two numbers; got {value!r}")
-        lo = r.as_number(value[0], fld + "[0]")
-        hi = r.as_number(value[1], fld + "[1]")
-        if not lo < hi:
-            r.fail(fld, f"low must be below high; got [{lo}, {hi}]")
-        names.append(key), low.append(lo), high.append(hi)
+        if isinstance(value, dict):
+            if fn is not None:
+                r.fail(fld, f"\"{fn.name}\" is defined on its published domain: write this input as [low, high]")
+            kind, lo, hi, step, lev = _read_input(r, fld, value)
+        elif isinstance(value, list) and len(value) == 2:
+            kind, lo, hi, step, lev = CONTINUOUS, r.as_number(value[0], fld + "[0]"), r.as_number(value[1], fld + "[1]"), 0.0, ()
+            if not lo < hi:
+                r.fail(fld, f"low must be below high; got [{lo}, {hi}]")
+        else:
+            r.fail(fld, f"must be [low, high] (two numbers), or a table: {{low, high, step}}, {{low, high, "
+                   f"scale = \"log\"}} or {{levels = [...]}}; got {value!r}")
+        names.append(key), low.append(lo), high.append(hi), kinds.append(kind), steps.append(step), levels.append(lev)
     if fn is not None:
         if len(names) != fn.dim:
             r.fail("space", f"function \"{fn.name}\" has {fn.dim} inputs; [space] lists {len(names)}")
@@ -254,17 +287,202 @@ def _read_space(r: "_Reader", data: dict, *, fn) -> Space:
             if not (math.isclose(lo, blo, abs_tol=1e-12) and math.isclose(hi, bhi, abs_tol=1e-12)):
                 r.fail(f"space.{k}", f"\"{fn.name}\" is defined on its published domain [{blo:g}, {bhi:g}] "
                        "for this input; rename inputs freely but keep the bounds")
-    return Space(names=tuple(names), low=tuple(low), high=tuple(high))
+    space = _make_space(names, low, high, kinds, steps, levels)
+    if "candidates" in data:
+        space = _make_space(names, low, high, kinds, steps, levels, _read_library(r, data, space, base_dir))
+    return space
+
+
+def _refuse_mixed(r: "_Reader", space: Space, method: str, within: dict) -> None:
+    """What the worlds over stepped or categorical inputs and libraries (worlds/mixed.py) cannot do yet."""
+    if method != "features":
+        r.fail("world.method", f"\"{method}\" worlds are for boxes of reals; stepped or categorical inputs and "
+               "libraries are drawn with method = \"features\"")
+    for key, value in within.items():
+        if value != 1.0:
+            r.fail(f"world.{key}", "uncertain hyperparameters are not supported yet with stepped or categorical "
+                   "inputs or a library (issue 15 lands them later)")
+    if space.library is not None:
+        return      # a library's world is evaluated at its rows: no search, no limit
+    total = discrete_combinations(space)
+    continuous = [j for j in range(space.dim) if space.kind(j) not in (STEPPED, CATEGORICAL)]
+    if continuous and total > MAX_SEARCHED:
+        r.fail("space", f"{total:,} combinations of levels and stepped values; the world's optimum search covers at "
+               f"most {MAX_SEARCHED} beside continuous inputs yet (each gets a full search): use fewer levels or "
+               "coarser steps, or a [candidates] library")
+    if not continuous and total > MAX_ENUMERATED:
+        r.fail("space", f"{total:,} allowed points; at most {MAX_ENUMERATED:,} are enumerated for the world's "
+               "optimum yet: use fewer levels or coarser steps, or a [candidates] library")
+
+
+def _make_space(names, low, high, kinds, steps, levels, library=None) -> Space:
+    """A Space whose kind fields stay empty when every input is continuous (a box of reals reads,
+    compares and dumps exactly as before issue 15)."""
+    if all(k == CONTINUOUS for k in kinds):
+        return Space(names=tuple(names), low=tuple(low), high=tuple(high), library=library)
+    return Space(names=tuple(names), low=tuple(low), high=tuple(high), kinds=tuple(kinds), steps=tuple(steps),
+                 levels=tuple(tuple(v) for v in levels), library=library)
+
+
+def _read_input(r: "_Reader", fld: str, value: dict) -> tuple[str, float, float, float, tuple[str, ...]]:
+    """One [space] entry written as a table: (kind, low, high, step, levels)."""
+    r.keys(value, fld, _INPUT_KEYS if "levels" not in value else ("levels",),
+           hint="a categorical input takes only levels" if "levels" in value else "")
+    if "levels" in value:
+        lev = value["levels"]
+        if not isinstance(lev, list) or not all(isinstance(v, str) for v in lev):
+            r.fail(fld + ".levels", f"must be a list of level names in quotes, e.g. [\"acetone\", \"ethanol\"] "
+                   f"(numbered settings are a stepped input: {{low, high, step}}); got {lev!r}")
+        lev = [v.strip() for v in lev]
+        if len(lev) < 2:
+            r.fail(fld + ".levels", f"needs at least two levels (one level is a constant, not an input); got {len(lev)}")
+        if len(lev) > MAX_LEVELS:
+            r.fail(fld + ".levels", f"at most {MAX_LEVELS} levels; got {len(lev)}")
+        if any(not v for v in lev):
+            r.fail(fld + ".levels", "a level name must not be blank")
+        seen = set()
+        for v in lev:
+            if v in seen:
+                r.fail(fld + ".levels", f"\"{v}\" is listed twice; every level must be named once")
+            seen.add(v)
+        return CATEGORICAL, 0.0, float(len(lev) - 1), 0.0, tuple(lev)
+    for key in ("low", "high"):
+        if key not in value:
+            r.fail(f"{fld}.{key}", "is required (a number), e.g. { low = 1, high = 6, step = 1 }")
+    lo, hi = r.as_number(value["low"], fld + ".low"), r.as_number(value["high"], fld + ".high")
+    if not lo < hi:
+        r.fail(fld, f"low must be below high; got low = {lo:g}, high = {hi:g}")
+    scale = r.choice(value, fld + ".scale", _SCALES, default="linear")
+    if "step" in value:
+        if scale == "log":
+            r.fail(fld + ".step", "a stepped input cannot also be log-scaled; give either step or scale = \"log\"")
+        step = r.number(value, fld + ".step", low=0.0, low_open=True)
+        n = (hi - lo) / step
+        if abs(n - round(n)) > 1e-9 * max(n, 1.0) or round(n) < 1:
+            r.fail(fld + ".step", f"must divide the range {lo:g} to {hi:g} into whole steps; {hi - lo:g} / {step:g} = "
+                   f"{n:g} steps")
+        if round(n) > 1_000_000:
+            r.fail(fld + ".step", f"gives {round(n) + 1:,} allowed values (at most 1,000,001); use a continuous input")
+        return STEPPED, lo, hi, step, ()
+    if scale == "log":
+        if lo <= 0:
+            r.fail(fld + ".low", f"a log-scaled range must be positive (low > 0); got low = {lo:g}")
+        return LOG, lo, hi, 0.0, ()
+    return CONTINUOUS, lo, hi, 0.0, ()
+
+
+def _library_file(r: "_Reader", data: dict, base_dir: Path | None) -> Path:
+    ct = r.table(data, "candidates")
+    r.keys(ct, "candidates", _section_keys()["candidates"])
+    path = Path(r.string(ct, "candidates.file"))
+    return path if path.is_absolute() else (base_dir or Path.cwd()) / path
+
+
+def _library_table(r: "_Reader", path: Path, *, columns=None, text=()):
+    from .data import DataError, read_table
+    try:
+        return read_table(path, columns=columns, text=text, role="the library")
+    except DataError as exc:
+        raise StudyError(r.source, "candidates.file", str(exc)) from None
+
+
+def _library_space(r: "_Reader", data: dict, base_dir: Path | None) -> Space:
+    """A [candidates] library without [space]: numeric columns are continuous over the rows' range,
+    text columns categorical with their levels in order of first appearance."""
+    path = _library_file(r, data, base_dir)
+    table = _library_table(r, path, text=True)
+    names, low, high, kinds, levels = [], [], [], [], []
+    for name in table.attrs["header"]:
+        where = f"{path}: column \"{name}\""
+        if not _NAME.match(name) or name in RESERVED:
+            r.fail("candidates.file", f"{where}: cannot name an input (letters, digits, _ . -; not one of "
+                   f"{', '.join(RESERVED)}); rename the column")
+        col = table[name].to_numpy()
+        if col.dtype == object:
+            lev = tuple(dict.fromkeys(col))
+            if len(lev) < 2:
+                r.fail("candidates.file", f"{where}: every row holds \"{lev[0]}\"; a column with one level is not "
+                       "an input (drop it)")
+            names.append(name), low.append(0.0), high.append(float(len(lev) - 1)), kinds.append(CATEGORICAL)
+            levels.append(lev)
+        else:
+            lo, hi = float(col.min()), float(col.max())
+            if not lo < hi:
+                r.fail("candidates.file", f"{where}: every row holds {lo:g}; a constant column is not an input (drop it)")
+            names.append(name), low.append(lo), high.append(hi), kinds.append(CONTINUOUS), levels.append(())
+    steps = (0.0,) * len(names)
+    space = _make_space(names, low, high, kinds, steps, levels)
+    return _make_space(names, low, high, kinds, steps, levels, _library_rows(r, path, table, space))
+
+
+def _read_library(r: "_Reader", data: dict, space: Space, base_dir: Path | None) -> Library:
+    path = _library_file(r, data, base_dir)
+    header = _library_table(r, path, text=True).attrs["header"]
+    extra = [c for c in header if c not in space.names]
+    if extra:
+        r.fail("candidates.file", f"{path}: column \"{extra[0]}\" is not an input in [space] ("
+               f"{', '.join(space.names)}); drop the column or add the input")
+    text = [n for j, n in enumerate(space.names) if space.kind(j) == CATEGORICAL]
+    table = _library_table(r, path, columns=space.names, text=text)
+    return _library_rows(r, path, table, space)
+
+
+def _library_rows(r: "_Reader", path: Path, table, space: Space) -> Library:
+    """The library's rows checked against the space (levels, bounds, steps), duplicates dropped."""
+    cols = []
+    for j, name in enumerate(space.names):
+        col = table[name].to_numpy()
+        where = f"{path}: column \"{name}\""
+        if space.kind(j) == CATEGORICAL:
+            known = set(space.levels[j])
+            bad = [i for i, v in enumerate(col) if v not in known]
+            if bad:
+                r.fail("candidates.file", f"{where}, row {table.index[bad[0]]} (the header is row 1): \"{col[bad[0]]}\" "
+                       f"is not a level of [space] {name}; allowed: {', '.join(space.levels[j])}")
+            cols.append([str(v) for v in col])
+            continue
+        col = col.astype(float)
+        lo, hi = space.low[j], space.high[j]
+        bad = np.flatnonzero((col < lo) | (col > hi))
+        if bad.size:
+            i = int(bad[0])
+            r.fail("candidates.file", f"{where}, row {table.index[i]} (the header is row 1): {col[i]:g} lies outside "
+                   f"[space] [{lo:g}, {hi:g}]; widen the space or drop the row")
+        if space.kind(j) == STEPPED:
+            k = (col - lo) / space.steps[j]
+            off = np.flatnonzero(np.abs(k - np.rint(k)) > 1e-9 * np.maximum(np.abs(k), 1.0))
+            if off.size:
+                i = int(off[0])
+                r.fail("candidates.file", f"{where}, row {table.index[i]} (the header is row 1): {col[i]:g} is not "
+                       f"one of the allowed values {lo:g}, {lo + space.steps[j]:g}, ... {hi:g} (step {space.steps[j]:g})")
+            col = lo + np.rint(k) * space.steps[j]
+        cols.append([float(v) for v in col])
+    rows, dropped, seen = [], [], set()
+    for i, row in zip(table.index, zip(*cols)):
+        if row in seen:
+            dropped.append(int(i))
+            continue
+        seen.add(row)
+        rows.append(row)
+    if len(rows) < 2:
+        r.fail("candidates.file", f"{path}: holds {len(rows)} distinct row{'s' * (len(rows) != 1)}; a library needs at "
+               "least two candidates")
+    if len(rows) > MAX_LIBRARY:
+        r.fail("candidates.file", f"{path}: holds {len(rows):,} distinct rows; at most {MAX_LIBRARY:,}")
+    return Library(file=str(path.resolve()), rows=tuple(rows), dropped=tuple(dropped))
 
 
 def _read_prior(r: "_Reader", t: dict, section: str, space: Space, *, base: Prior | None,
                 noise_default: float | None = None) -> Prior:
     kernel = r.choice(t, f"{section}.kernel", tuple(KERNELS), default=base.kernel if base else "matern52")
     need = "is required: the world is a published function, so there is no world prior to copy"
-    if "lengthscale" in t or base is None:
+    if not space.numeric and "lengthscale" not in t:
+        ls = ()     # every input categorical: the level correlations are the whole kernel
+    elif "lengthscale" in t or base is None:
         if "lengthscale" not in t:
             r.fail(f"{section}.lengthscale", need if section == "belief" else
-                   "is required: one number for all inputs or one per input, in input units")
+                   "is required: one number for all inputs or one per input, in input units (natural-log "
+                   "units for a log-scaled input)")
         ls = r.lengthscale(t, f"{section}.lengthscale", space)
     else:
         ls = base.lengthscale
@@ -289,7 +507,48 @@ def _read_prior(r: "_Reader", t: dict, section: str, space: Space, *, base: Prio
         noise = noise_default
     else:
         r.fail(f"{section}.noise", "is required: the observation noise standard deviation, a number >= 0")
-    return Prior(kernel=kernel, lengthscale=ls, amplitude=amp, mean=mean, noise=noise)
+    if "level_correlation" in t:
+        rho = _level_correlation(r, t, f"{section}.level_correlation", space)
+    elif base is not None:
+        rho = base.level_correlation
+    elif space.categorical:
+        r.fail(f"{section}.level_correlation", "is required with categorical inputs: the prior correlation between "
+               "two distinct levels, one number for all (e.g. 0.5) or a table by input name")
+    else:
+        rho = ()
+    return Prior(kernel=kernel, lengthscale=ls, amplitude=amp, mean=mean, noise=noise, level_correlation=rho)
+
+
+def _level_correlation(r: "_Reader", t: dict, field: str, space: Space) -> tuple[float, ...]:
+    """One exchangeable correlation per categorical input, each in (-1/(L-1), 1) (Qian, Wu & Wu 2008:
+    the L x L matrix with 1 on the diagonal and rho elsewhere is positive definite exactly there)."""
+    cats = [space.names[j] for j in space.categorical]
+    if not cats:
+        r.fail(field, "applies only to categorical inputs ({levels = [...]} in [space]); this space has none")
+    v = t["level_correlation"]
+    if isinstance(v, dict):
+        for key in v:
+            if key not in cats:
+                r.fail(f"{field}.{key}", f"is not a categorical input; categorical inputs: {', '.join(cats)}")
+        for name in cats:
+            if name not in v:
+                r.fail(field, f"gives no correlation for the categorical input \"{name}\"; give one for each of "
+                       f"{', '.join(cats)} (or one number for all)")
+        values = {name: r.as_number(v[name], f"{field}.{name}") for name in cats}
+    else:
+        one = r.as_number(v, field) if not isinstance(v, list) else r.fail(
+            field, f"must be one number or a table by input name, e.g. {{ {cats[0]} = 0.5 }}; got {v!r}")
+        values = {name: one for name in cats}
+    out = []
+    for j in space.categorical:
+        name, L = space.names[j], len(space.levels[j])
+        rho, low = values[name], -1.0 / (L - 1)
+        fld = field if not isinstance(v, dict) else f"{field}.{name}"
+        if not low < rho < 1.0:
+            r.fail(fld, f"for \"{name}\" ({L} levels) must lie strictly between -1/(L-1) = {low:.4g} and 1 (else the "
+                   f"level correlation is not positive definite); got {rho:g}")
+        out.append(rho)
+    return tuple(out)
 
 
 def _read_policies(r: "_Reader", data: dict) -> tuple[PolicySpec, ...]:
@@ -462,8 +721,13 @@ class _Reader:
         key = field.rsplit(".", 1)[-1]
         v = t[key]
         values = v if isinstance(v, list) else [v]
-        if len(values) not in (1, space.dim):
-            self.fail(field, f"give one number for all inputs or one per input ({space.dim}); got {len(values)}")
+        d = len(space.numeric)
+        if not d:
+            self.fail(field, "every input is categorical, so there is no lengthscale: leave it out")
+        if len(values) not in (1, d):
+            per = f"one per input ({d})" if d == space.dim else (
+                f"one per non-categorical input ({d}: {', '.join(space.names[j] for j in space.numeric)})")
+            self.fail(field, f"give one number for all inputs or {per}; got {len(values)}")
         out = []
         for i, item in enumerate(values):
             x = self.as_number(item, field)
@@ -471,8 +735,41 @@ class _Reader:
                 self.fail(field, f"every lengthscale must be > 0 (input units); got {x:g}")
             out.append(x)
         if len(out) == 1:
-            out = out * space.dim
+            out = out * d
         return tuple(out)
+
+
+# Input kinds a study file may declare but some part of simlab cannot run yet (issue 15 lands them in
+# slices), and which parts those are. A study using one is refused as a whole, in one line, by
+# load_study: never run with a part that would treat a stepped or categorical input as a real number.
+NOT_YET: dict[str, str] = {
+    STEPPED: "the policies, the belief and the report",
+    CATEGORICAL: "the policies, the belief and the report",
+}
+# Rules that choose a library's rows (every row scored exactly, or drawn without replacement).
+LIBRARY_RULES = ("random", "sobol", "ei")
+
+
+def unsupported(study: Study) -> tuple[str, str] | None:
+    """(field, message) when the study uses an input kind some part of simlab does not support yet."""
+    space = study.space
+    if space.library is not None:
+        for i, p in enumerate(study.policies):
+            if p.rule not in LIBRARY_RULES:
+                return f"policy[{i}].rule", (f"\"{p.rule}\" does not choose from a [candidates] library yet (issue 15 "
+                                             f"is landing in slices); with a library use {', '.join(LIBRARY_RULES)}")
+            if p.options.get("exploit_last", 0):
+                return f"policy[{i}].exploit_last", "is not supported yet with a [candidates] library"
+        if study.campaign.batch != 1:
+            return "campaign.batch", "rounds of several trials are not supported yet with a [candidates] library"
+    for j in range(space.dim):
+        kind = space.kind(j)
+        if kind == STEPPED and space.library is not None:
+            continue    # a library's rows lie on the grid already: the prior at the rows needs no rounding
+        if kind in NOT_YET:
+            return f"space.{space.names[j]}", (f"{kind} inputs are not supported yet by {NOT_YET[kind]} (issue 15 is "
+                                                "landing in slices); the study file is valid but cannot run yet")
+    return None
 
 
 def advice(study: Study) -> list[str]:
@@ -490,6 +787,12 @@ def advice(study: Study) -> list[str]:
         if k and k > first - c.initial:
             out.append(f"policy[{i}].exploit_last: {k} is more than the {first - c.initial} trials budget {first} "
                        "leaves after the initial design: at that budget the policy only exploits")
+    lib = study.space.library
+    if lib is not None and lib.dropped:
+        n = len(lib.dropped)
+        rows = ", ".join(str(i) for i in lib.dropped[:5]) + (", ..." if n > 5 else "")
+        out.append(f"candidates.file: {lib.file}: {n} duplicated row{'s' * (n > 1)} dropped (row{'s' * (n > 1)} "
+                   f"{rows} repeat{'s' * (n == 1)} an earlier row); {lib.size} distinct candidates kept")
     if study.target == 0:
         out.append("target.regret: 0 asks for the exact optimum; with noise and continuous inputs almost no "
                    "campaign gets there, so failure risk will be near 100 % (give the tolerance that matters)")

@@ -27,29 +27,168 @@ class StudyError(ValueError):
         super().__init__(f"{file}: {field}: {message}" if field else f"{file}: {message}")
 
 
+# The kinds of input a [space] may hold (DESIGN.md: step, level, library).
+CONTINUOUS, LOG, STEPPED, CATEGORICAL = "continuous", "log", "stepped", "categorical"
+INPUT_KINDS = (CONTINUOUS, LOG, STEPPED, CATEGORICAL)
+
+
+@dataclass(frozen=True)
+class Library:
+    """A finite list of allowed trials (``[candidates] file``), one row per trial, in user values.
+
+    ``rows`` hold a float for a numeric input and the level name (str) for a categorical one.
+    ``dropped`` counts rows of the file that repeated an earlier row (warned about, not kept).
+    """
+
+    file: str = field(compare=False)            # path as resolved when the study was read
+    rows: tuple[tuple[Any, ...], ...]
+    dropped: tuple[int, ...] = field(default=(), compare=False)  # spreadsheet rows dropped as duplicates
+
+    @property
+    def size(self) -> int:
+        return len(self.rows)
+
+
 @dataclass(frozen=True)
 class Space:
-    """The box of inputs in the user's units; maps to and from the unit cube."""
+    """The inputs in the user's units, and their encoding on the unit cube.
+
+    A box of reals gives only ``names``, ``low`` and ``high``; ``kinds``, ``steps`` and ``levels``
+    stay empty (so such a study equals, dumps and hashes as before). Otherwise each input is one of
+    `INPUT_KINDS`, and the unit-cube coordinate of input j is
+
+    - continuous: ``(x - low) / (high - low)``;
+    - log: ``(log x - log low) / (log high - log low)`` (the prior is stationary in ``log x``, and
+      lengthscales are in natural-log units);
+    - stepped: as continuous; values are rounded to ``low + k step`` (:meth:`round_unit`) inside
+      the world and the belief (Garrido-Merchán & Hernández-Lobato 2020);
+    - categorical: level ``i`` of ``L`` sits at ``(i + 0.5) / L``, and any coordinate in the
+      cube reads as level ``floor(u L)`` (clipped), so uniform points give uniform levels. ``low``
+      and ``high`` are 0 and L - 1 (level indices); the kernel handles these inputs by level
+      (:mod:`simlab.model.levels`), with no lengthscale.
+
+    ``library``: a finite list of allowed trials; its rows are points of this space.
+    """
 
     names: tuple[str, ...]
     low: tuple[float, ...]
     high: tuple[float, ...]
+    kinds: tuple[str, ...] = ()                    # per input, one of INPUT_KINDS; () = all continuous
+    steps: tuple[float, ...] = ()                  # per input: a stepped input's step, 0.0 otherwise
+    levels: tuple[tuple[str, ...], ...] = ()       # per input: a categorical input's levels, () otherwise
+    library: Library | None = None
+
+    def kind(self, j: int) -> str:
+        return self.kinds[j] if self.kinds else CONTINUOUS
+
+    @property
+    def is_box(self) -> bool:
+        """A box of reals: every input continuous and no library (the only space before issue 15)."""
+        return not self.kinds and self.library is None
 
     @property
     def dim(self) -> int:
         return len(self.names)
 
     @property
+    def numeric(self) -> tuple[int, ...]:
+        """Indices of the inputs the continuous kernel sees (all but the categorical ones)."""
+        return tuple(j for j in range(self.dim) if self.kind(j) != CATEGORICAL)
+
+    @property
+    def categorical(self) -> tuple[int, ...]:
+        return tuple(j for j in range(self.dim) if self.kind(j) == CATEGORICAL)
+
+    @property
     def width(self) -> np.ndarray:
-        return np.asarray(self.high) - np.asarray(self.low)
+        """Span of each numeric input in the units its lengthscale is given in, shape (len(numeric),):
+        ``high - low``, or ``log(high / low)`` for a log input. Lengthscale / width is the
+        lengthscale on the unit cube."""
+        return np.array([np.log(self.high[j] / self.low[j]) if self.kind(j) == LOG else self.high[j] - self.low[j]
+                         for j in self.numeric]) if self.kinds else np.asarray(self.high) - np.asarray(self.low)
 
     def to_unit(self, x: np.ndarray) -> np.ndarray:
-        """User units (..., d) -> unit cube (..., d)."""
-        return (np.asarray(x, dtype=float) - np.asarray(self.low)) / self.width
+        """User values (..., d) -> unit cube (..., d); a categorical input's column holds level indices."""
+        x = np.asarray(x, dtype=float)
+        if not self.kinds:
+            return (x - np.asarray(self.low)) / (np.asarray(self.high) - np.asarray(self.low))
+        u = np.empty_like(x)
+        for j in range(self.dim):
+            lo, hi, kind = self.low[j], self.high[j], self.kind(j)
+            if kind == LOG:
+                u[..., j] = (np.log(x[..., j]) - np.log(lo)) / np.log(hi / lo)
+            elif kind == CATEGORICAL:
+                u[..., j] = (x[..., j] + 0.5) / len(self.levels[j])
+            else:
+                u[..., j] = (x[..., j] - lo) / (hi - lo)
+        return u
 
     def from_unit(self, u: np.ndarray) -> np.ndarray:
-        """Unit cube (..., d) -> user units (..., d)."""
-        return np.asarray(self.low) + np.asarray(u, dtype=float) * self.width
+        """Unit cube (..., d) -> user values (..., d): stepped inputs on their grid, log inputs in
+        natural units, categorical inputs as level indices (:meth:`level_names` gives the names)."""
+        u = np.asarray(u, dtype=float)
+        if not self.kinds:
+            return np.asarray(self.low) + u * (np.asarray(self.high) - np.asarray(self.low))
+        x = np.empty_like(u)
+        r = self.round_unit(u)
+        for j in range(self.dim):
+            lo, hi, kind = self.low[j], self.high[j], self.kind(j)
+            if kind == LOG:
+                # clipped: exp(log) may land one ulp outside the bounds at the ends
+                x[..., j] = np.clip(np.exp(np.log(lo) + r[..., j] * np.log(hi / lo)), lo, hi)
+            elif kind == CATEGORICAL:
+                x[..., j] = self.level_index(r[..., j], j)
+            elif kind == STEPPED:
+                # low + k * step from the integer k, so the value is exact (no drift from u * width)
+                x[..., j] = lo + np.rint(r[..., j] * (hi - lo) / self.steps[j]) * self.steps[j]
+            else:
+                x[..., j] = lo + r[..., j] * (hi - lo)
+        return x
+
+    def level_index(self, u, j: int) -> np.ndarray:
+        """The level (0 .. L-1) a unit coordinate of categorical input j reads as."""
+        L = len(self.levels[j])
+        return np.clip(np.floor(np.asarray(u, dtype=float) * L), 0, L - 1)
+
+    def level_names(self, index, j: int) -> np.ndarray:
+        """Level names (object array) of categorical input j from level indices."""
+        return np.asarray(self.levels[j], dtype=object)[np.asarray(index, dtype=int)]
+
+    def round_unit(self, u: np.ndarray) -> np.ndarray:
+        """Unit coordinates moved to the nearest allowed value: stepped inputs to their grid,
+        categorical inputs to their level's centre; continuous and log inputs unchanged.
+
+        The world and the belief see only rounded inputs, so over a stepped input each is a
+        step function of the continuous coordinate (Garrido-Merchán & Hernández-Lobato 2020).
+        """
+        u = np.array(u, dtype=float, copy=True)
+        for j in range(self.dim):
+            kind = self.kind(j)
+            if kind == STEPPED:
+                n = round((self.high[j] - self.low[j]) / self.steps[j])
+                u[..., j] = np.rint(np.clip(u[..., j], 0.0, 1.0) * n) / n
+            elif kind == CATEGORICAL:
+                L = len(self.levels[j])
+                u[..., j] = (self.level_index(u[..., j], j) + 0.5) / L
+        return u
+
+    def grid(self, j: int) -> np.ndarray:
+        """The allowed unit coordinates of a stepped or categorical input j."""
+        if self.kind(j) == STEPPED:
+            n = round((self.high[j] - self.low[j]) / self.steps[j])
+            return np.arange(n + 1) / n
+        if self.kind(j) == CATEGORICAL:
+            L = len(self.levels[j])
+            return (np.arange(L) + 0.5) / L
+        raise ValueError(f"input {self.names[j]!r} is {self.kind(j)}: it has no grid")
+
+    def library_unit(self) -> np.ndarray:
+        """The library's rows on the unit cube, shape (n, d)."""
+        if self.library is None:
+            raise ValueError("this space has no library")
+        X = np.array([[self.levels[j].index(v) if self.kind(j) == CATEGORICAL else v
+                       for j, v in enumerate(row)] for row in self.library.rows], dtype=float)
+        return self.to_unit(X)
 
 
 @dataclass(frozen=True)
@@ -57,10 +196,13 @@ class Prior:
     """A Gaussian-process prior in the user's units and orientation."""
 
     kernel: str
-    lengthscale: tuple[float, ...]
+    lengthscale: tuple[float, ...]     # one per numeric input (Space.numeric), in its units (log units if log)
     amplitude: float
     mean: float
     noise: float
+    # One correlation between distinct levels per categorical input, in [space] order (exchangeable
+    # correlation, Qian, Wu & Wu 2008); () when the space has no categorical input.
+    level_correlation: tuple[float, ...] = ()
 
 
 @dataclass(frozen=True)

@@ -8,7 +8,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import qmc
 
 from ..model.kernels import make_kernel
 from ..rng import stream
@@ -16,6 +15,7 @@ from ..study.types import Prior, Study
 from . import functions
 from .draws import ConditionedWorld, FunctionWorld, World
 from .kinds import WORLD_KINDS
+from .mixed import make_mixed_world, needs_mixed
 from .noise import Observer
 
 __all__ = ["Replicate", "make_replicate", "make_world", "world_optimum", "make_observer", "history_arrays",
@@ -32,6 +32,9 @@ def make_world(study: Study, replicate: int) -> World:
     w = study.world
     if w.function is not None:
         return FunctionWorld(functions.FUNCTIONS[w.function])
+    if needs_mixed(study.space):   # stepped or categorical inputs, or a library (simlab.worlds.mixed)
+        return make_mixed_world(study, w.prior, study.sign * w.prior.mean, stream(study.seed, replicate, "world"),
+                                dict(w.method_settings)["features"])
     kernel = unit_kernel(w.prior, study)
     if w.lengthscale_within != 1.0 or w.amplitude_within != 1.0:
         kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
@@ -66,6 +69,7 @@ def _uncertain(kernel, w, rng):
 def _sobol(d: int, n: int, rng) -> np.ndarray:
     # Draw a power of two and keep the first n points: prefixes of a scrambled Sobol'
     # sequence keep their low discrepancy and this avoids SciPy's balance warning.
+    from scipy.stats import qmc  # here, not at the top: scipy.stats takes ~0.9 s to import; reading a study needs none
     return qmc.Sobol(d, seed=rng).random_base2(max(int(np.ceil(np.log2(max(n, 2)))), 1))[:n]
 
 
@@ -109,6 +113,18 @@ def make_observer(study: Study) -> Observer:
                     center=ref.mean, scale=ref.amplitude, lost=w.lost, sign=study.sign)
 
 
+def _library_material(study: Study, r: int):
+    """A library's design, sequence and pool: the rows in a random order of the replicate's own
+    (permutations joined end to end, so rows come without replacement until the library is
+    exhausted), the design its first rows whatever ``[campaign] design`` says, and the pool every row."""
+    rows = study.space.library_unit()
+    rng = stream(study.seed, r, "library")
+    n = study.campaign.horizon
+    order = np.concatenate([rng.permutation(len(rows)) for _ in range(-(-n // len(rows)))])[:n]
+    sequence = rows[order]
+    return sequence[: study.campaign.initial], sequence, rows
+
+
 def make_replicate(study: Study, r: int) -> Replicate:
     d, c = study.space.dim, study.campaign
     B = c.horizon
@@ -119,10 +135,14 @@ def make_replicate(study: Study, r: int) -> Replicate:
     if c.design == "sobol":
         design = sequence[: c.initial]
     elif c.design == "lhs":
+        from scipy.stats import qmc
         design = qmc.LatinHypercube(d, seed=rng).random(c.initial)
     else:
         design = rng.random((c.initial, d))
     shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
-    pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
+    if study.space.library is not None:
+        design, sequence, pool = _library_material(study, r)
+    else:
+        pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
     return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,
                      shocks=shocks, lost=lost, pool=pool, optimum_gap=gap)

@@ -104,8 +104,11 @@ def test_search_grows_with_dimension_and_roughness():
     assert search_plan(6, [0.2] * 6, 2.5).n_polish > search_plan(2, [0.2] * 2, 2.5).n_polish
     assert search_plan(6, [0.01] * 6, 0.5).n_search == 2**18       # the cap
     assert search_plan(6, [0.01] * 6, 0.5).zoom > search_plan(6, [0.01] * 6, 2.5).zoom
-    assert search_plan(4, [0.2] * 4, 1.5).descend > 0 and search_plan(4, [0.2] * 4, 2.5).descend == 0
+    assert search_plan(6, [0.2] * 6, 1.5).descend > 0 and search_plan(6, [0.2] * 6, 2.5).descend == 0
     assert search_plan(4, [0.2] * 4, 0.5).banded and not search_plan(2, [0.2] * 2, 0.5).banded
+    # smooth worlds (and Matern 3/2 in 1 or 2 inputs) climb by Newton steps instead of zooming
+    assert search_plan(4, [0.2] * 4, 2.5).climb > 0 and search_plan(4, [0.2] * 4, 2.5).zoom == 0
+    assert search_plan(2, [0.2] * 2, 1.5).climb > 0 and search_plan(4, [0.2] * 4, 1.5).climb == 0
 
 
 def test_separated_starts_leave_the_best_basin():

@@ -1,0 +1,224 @@
+"""Worlds over mixed spaces (stepped and categorical inputs, libraries): draws of the product prior,
+exact in the level correlation, and their optima (each level combination searched in turn)."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+
+from ..model.levels import MixedKernel, level_matrix, mixed_kernel
+from ..study.types import CATEGORICAL, STEPPED, Space
+from .draws import World, find_minimum
+
+__all__ = ["MixedWorld", "LibraryWorld", "make_mixed_world", "needs_mixed", "discrete_combinations",
+           "MAX_SEARCHED", "MAX_ENUMERATED"]
+
+# Level-and-step combinations whose continuous part gets its own optimum search: each search costs
+# about as much as one box world's, so more than this would make a replicate's optimum the run.
+MAX_SEARCHED = 64
+# Points evaluated exactly when no input is continuous (every combination is a point).
+MAX_ENUMERATED = 2**22
+_CHUNK = 4096
+
+
+def needs_mixed(space: Space) -> bool:
+    """Does the space need these worlds (a stepped or categorical input, or a library)? Log-scaled and
+    continuous inputs alone are a box on the unit cube and keep the box worlds (and their bits)."""
+    return space.library is not None or any(space.kind(j) in (STEPPED, CATEGORICAL) for j in range(space.dim))
+
+
+def discrete_combinations(space: Space) -> int:
+    """How many combinations of levels and stepped values the space has (1 without such inputs)."""
+    return int(np.prod([len(space.grid(j)) for j in range(space.dim) if space.kind(j) in (STEPPED, CATEGORICAL)]))
+
+
+class MixedWorld(World):
+    """A draw of ``mean + GP(0, k_num x prod_c C_c)`` over a mixed space, on the unit cube.
+
+    Parameters
+    ----------
+    kernel : MixedKernel
+        The product kernel; its continuous factor is drawn with random Fourier features.
+    mean : float
+    rng : numpy.random.Generator
+    n_freq : int
+        Spectral frequencies per feature draw.
+
+    Notes
+    -----
+    With K level combinations and the K x K level correlation ``C = A A^T`` (``A`` its Cholesky
+    factor; ``C`` is the Kronecker product of the inputs' exchangeable matrices), the world is
+
+        f(u, c) = mean + sum_k A[c, k] g_k(u),
+
+    with ``g_1 ... g_K`` independent draws of the continuous factor. Then
+    ``Cov(f(u, c), f(u', c')) = sum_k A[c, k] A[c', k] k(u, u') = C[c, c'] k(u, u')``: exactly the
+    product kernel across levels, and as exact as the feature draws within one (each ``g_k`` is a
+    random-feature function, :class:`simlab.worlds.draws.FeatureSample`). Stepped inputs are rounded
+    to their grid before anything is evaluated (Garrido-Merchán & Hernández-Lobato 2020), so the world
+    is a step function of them; log inputs are already stationary in the logarithm on the cube.
+    """
+
+    def __init__(self, kernel: MixedKernel, mean: float, rng: np.random.Generator, n_freq: int = 1024):
+        self.kernel, self.space, self.mean = kernel, kernel.space, float(mean)
+        self.dim = self.space.dim
+        self.shape = tuple(len(self.space.levels[j]) for j in kernel.cats)
+        self.K = int(np.prod(self.shape)) if self.shape else 1
+        self.A = np.linalg.cholesky(level_matrix(self.space, kernel.rho))            # (K, K)
+        self.numeric = kernel.numeric
+        if kernel.base is not None:
+            self.omega = np.stack([kernel.base.spectral(rng, n_freq) for _ in range(self.K)])   # (K, F, d_num)
+            self.w = rng.standard_normal((self.K, 2 * n_freq))                                # cos, sin weights
+            self.scale = kernel.amplitude / np.sqrt(n_freq)
+        else:
+            self.omega = None
+            self.z = rng.standard_normal(self.K)                                              # one value per g_k
+
+    def combination(self, U) -> np.ndarray:
+        """Flat index (n,) of each row's level combination (``numpy.ndindex`` order)."""
+        if not self.shape:
+            return np.zeros(len(U), dtype=int)
+        idx = [self.space.level_index(U[:, j], j).astype(int) for j in self.kernel.cats]
+        return np.ravel_multi_index(idx, self.shape)
+
+    def _g(self, Un) -> np.ndarray:
+        """The K draws at numeric coordinates Un (n, d_num): shape (K, n), without the mean."""
+        F = self.omega.shape[1]
+        P = np.matmul(Un[None], self.omega.transpose(0, 2, 1))                   # (K, n, F)
+        return self.scale * (np.cos(P) @ self.w[:, :F, None] + np.sin(P) @ self.w[:, F:, None])[..., 0]
+
+    def __call__(self, U) -> np.ndarray:
+        R = self.space.round_unit(np.atleast_2d(U))
+        c = self.combination(R)
+        if self.omega is None:
+            return self.mean + self.kernel.amplitude * (self.A @ self.z)[c]
+        out = np.empty(len(R))
+        for a in range(0, len(R), _CHUNK):
+            G = self._g(R[a:a + _CHUNK][:, self.numeric])                       # (K, n)
+            out[a:a + _CHUNK] = self.mean + np.einsum("nk,kn->n", self.A[c[a:a + _CHUNK]], G)
+        return out
+
+    def combination_function(self, c: int, fixed):
+        """The world at level combination ``c`` as a function of its continuous inputs.
+
+        ``fixed`` (d_num,) holds the numeric coordinates the function does not vary (the stepped
+        values; NaN at the continuous inputs). Returns ``(f, fg, dims)``: values and values with
+        gradients on (n, len(dims)) inputs, and the numeric positions of those inputs. The K draws
+        mixed by row c of A are one feature function with K F frequencies, and the fixed inputs
+        fold into its phases.
+        """
+        fixed = np.asarray(fixed, dtype=float)
+        dims = np.flatnonzero(np.isnan(fixed))
+        rest = np.flatnonzero(~np.isnan(fixed))
+        F = self.omega.shape[1]
+        a = self.A[c]
+        omega = self.omega.reshape(-1, self.omega.shape[2])                    # (K F, d_num)
+        wc = (a[:, None] * self.w[:, :F]).reshape(-1)
+        ws = (a[:, None] * self.w[:, F:]).reshape(-1)
+        keep = np.repeat(a != 0.0, F)                                           # A is lower triangular
+        omega, wc, ws = omega[keep], wc[keep], ws[keep]
+        shift = omega[:, rest] @ fixed[rest]                                    # (K F,)
+        om = omega[:, dims]
+        scale, mean = self.scale, self.mean
+
+        def f(X):
+            P = np.atleast_2d(X) @ om.T + shift
+            return mean + scale * (np.cos(P) @ wc + np.sin(P) @ ws)
+
+        def fg(X):
+            P = np.atleast_2d(X) @ om.T + shift
+            C, S = np.cos(P), np.sin(P)
+            return mean + scale * (C @ wc + S @ ws), scale * ((C * ws - S * wc) @ om)
+
+        return f, fg, dims
+
+    def optimum(self, rng: np.random.Generator) -> tuple[np.ndarray, float]:
+        """The minimiser (d,) and minimum over every level combination and stepped value.
+
+        Without continuous inputs every allowed point is evaluated (at most ``MAX_ENUMERATED``).
+        Otherwise each of the (at most ``MAX_SEARCHED``) combinations of levels and stepped values
+        gets the continuous search :func:`simlab.worlds.draws.find_minimum`, at the world's
+        roughness, and the best is kept: a missed optimum makes regret too small, so every
+        combination is searched, none sampled.
+        """
+        sp = self.space
+        discrete = [j for j in range(sp.dim) if sp.kind(j) in (STEPPED, CATEGORICAL)]
+        continuous = [j for j in range(sp.dim) if j not in discrete]
+        grids = [sp.grid(j) for j in discrete]
+        total = discrete_combinations(sp)
+        if not continuous:
+            if total > MAX_ENUMERATED:
+                raise ValueError(f"{total} allowed points: more than the {MAX_ENUMERATED} enumerated exactly")
+            best_u, best_v = None, np.inf
+            combos = itertools.product(*grids)
+            while True:
+                block = np.array(list(itertools.islice(combos, _CHUNK)))
+                if not len(block):
+                    break
+                v = self(block)
+                i = int(np.argmin(v))
+                if v[i] < best_v:
+                    best_u, best_v = block[i].copy(), float(v[i])
+            return best_u, best_v
+        if total > MAX_SEARCHED:
+            raise ValueError(f"{total} combinations of levels and stepped values: more than the {MAX_SEARCHED} "
+                             "searched one by one")
+        pos = {j: i for i, j in enumerate(self.numeric)}
+        ls = self.kernel.lengthscale[[pos[j] for j in continuous]]
+        best_u, best_v = None, np.inf
+        for values in itertools.product(*grids):
+            u = np.full(sp.dim, np.nan)
+            u[discrete] = values
+            c = int(self.combination(u[None])[0]) if self.shape else 0
+            f, fg, dims = self.combination_function(c, u[self.numeric])
+            uc, v = find_minimum(f, fg, len(dims), rng, lengthscale=ls, nu=self.kernel.nu)
+            if v < best_v:
+                u[continuous] = uc
+                best_u, best_v = u, float(v)
+        return best_u, best_v
+
+
+class LibraryWorld(World):
+    """A world seen only at a library's rows: the prior over the columns, evaluated at the rows.
+
+    Its optimum is exact: the best row (every row evaluated once, in chunks). The values at the rows
+    are kept, and a row is always given its kept value, so a trial at the best row has exactly the
+    optimum's value (regret exactly 0, not a rounding difference between batch sizes).
+    """
+
+    def __init__(self, base: World, rows: np.ndarray):
+        self.base, self.rows, self.dim = base, np.asarray(rows, dtype=float), base.dim
+        self._values = np.concatenate([self.base(self.rows[a:a + _CHUNK]) for a in range(0, len(self.rows), _CHUNK)])
+        self._index = {row.tobytes(): i for i, row in enumerate(self.rows)}
+
+    def __call__(self, U) -> np.ndarray:
+        U = np.ascontiguousarray(np.atleast_2d(U), dtype=float)
+        where = [self._index.get(u.tobytes(), -1) for u in U]
+        out = np.array([self._values[i] if i >= 0 else np.nan for i in where])
+        off = np.array(where) < 0
+        if off.any():                       # not a row (a figure's line through the space): the prior's value
+            out[off] = self.base(U[off])
+        return out
+
+    def row_values(self) -> np.ndarray:
+        """The world at every row, shape (n,)."""
+        return self._values.copy()
+
+    def optimum(self, rng: np.random.Generator) -> tuple[np.ndarray, float]:
+        i = int(np.argmin(self._values))
+        return self.rows[i].copy(), float(self._values[i])
+
+
+def make_mixed_world(study, kernel_prior, mean: float, rng: np.random.Generator, n_freq: int) -> World:
+    """The replicate's world over a mixed space (internal orientation, unit cube)."""
+    space = study.space
+    if space.categorical or any(space.kind(j) == STEPPED for j in range(space.dim)):
+        base = MixedWorld(mixed_kernel(kernel_prior, space), mean, rng, n_freq)
+    else:
+        from ..worlds.draws import FeatureWorld
+        from .replicate import unit_kernel
+        base = FeatureWorld(unit_kernel(kernel_prior, study), mean, rng, n_freq)
+    if space.library is not None:
+        return LibraryWorld(base, space.library_unit())
+    return base
