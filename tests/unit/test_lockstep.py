@@ -195,9 +195,10 @@ def test_identity_holds_for_other_worlds_and_designs(over):
 
 def test_only_campaigns_of_equal_length_run_in_lockstep():
     belief = Belief(Matern52([0.3], 1.0), 0.0, 0.1)
-    ei, kg = POLICIES["ei"](), POLICIES["kg"]()
+    ei, kg, pbest = POLICIES["ei"](), POLICIES["kg"](), POLICIES["pbest"]()
     assert fits_lockstep(ei, belief, batch=1, lost=0.0)
-    assert not fits_lockstep(kg, belief, batch=1, lost=0.0)          # still one campaign at a time
+    assert fits_lockstep(kg, belief, batch=1, lost=0.0)              # in lockstep since its block form
+    assert not fits_lockstep(pbest, belief, batch=1, lost=0.0)       # still one campaign at a time
     assert not fits_lockstep(ei, belief, batch=2, lost=0.0)          # rounds fantasise
     assert not fits_lockstep(ei, belief, batch=1, lost=0.1)          # ragged beliefs
     refit = Belief(belief.kernel, 0.0, 0.1, refit_every=5)
