@@ -299,6 +299,31 @@ class Stack:
         n = self.n
         return matvec(self._Li[:, :n, :n].transpose(0, 2, 1), self._z[:, :n])
 
+    def solves(self, r) -> np.ndarray:
+        """``(K + s2 I)^-1 r`` per replicate, through the kept inverse factor: ``L^-T (L^-1 r)``.
+
+        r of shape (B, n) gives (B, n); (B, n, S), S right-hand sides each, gives (B, n, S).
+        Two stacked products, so a replicate's bits do not depend on the block.
+        """
+        r = np.asarray(r, dtype=float)
+        n = self.n
+        Li = self._Li[:, :n, :n]
+        col = r[..., None] if r.ndim == 2 else r
+        out = np.matmul(Li.transpose(0, 2, 1), np.matmul(Li, col))
+        return out[..., 0] if r.ndim == 2 else out
+
+    def pool_crosses(self, r) -> np.ndarray:
+        """``K(pool, X) (K + s2 I)^-1 r`` per replicate from the cached cross term: ``V^T (L^-1 r)``.
+
+        r of shape (B, n) gives (B, m); (B, n, S) gives (B, m, S). O(n m) per right-hand side.
+        """
+        r = np.asarray(r, dtype=float)
+        n = self.n
+        Li, V = self._Li[:, :n, :n], self._V[:, :n]
+        if r.ndim == 2:
+            return vecmat(matvec(Li, r), V)
+        return np.matmul(V.transpose(0, 2, 1), np.matmul(Li, r))
+
     def means_at_data(self) -> np.ndarray:
         """Posterior mean at the evaluated inputs, (B, n): ``m + L z - s2 alpha``."""
         n = self.n

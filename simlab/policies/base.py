@@ -178,6 +178,13 @@ class Acquisition(Policy):
     def prepare_block(self, st: Stack) -> None:
         """Per-trial state for a block, shaped to broadcast against (B, m) scores."""
 
+    def _keep_state(self, post: Posterior) -> None:
+        """After a choice made as a block of one: leave the one-campaign state that
+        :meth:`score` reads (the incumbent; the snapshot scores with it). Rules whose
+        per-trial state is random override this to keep the block's state instead, since
+        preparing again would draw from the stream a second time."""
+        self.prepare(post)
+
     def _from_moments(self, mu, sd):  # pragma: no cover - abstract
         """Score and its partial derivatives with respect to mu and sd, each (q,)."""
         raise NotImplementedError
@@ -236,7 +243,7 @@ class Acquisition(Policy):
         if self.lockstep and not self._pending:
             block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
             u = self.choose_block(post, t, block)[0]
-            self.prepare(post)     # leave the one-campaign state (incumbent) for score()
+            self._keep_state(post)
             return u
         if t >= self.ctx.horizon - self.exploit_last:
             return _lowest_mean(post, self.ctx.pool, self.n_starts, self.polish_iterations)

@@ -4,12 +4,11 @@ after one more trial (Frazier, Powell & Dayanik 2009), exact for a discrete set.
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import solve_triangular
 from scipy.special import ndtr
 
-from .base import Acquisition, Option
+from .base import Acquisition, Block, Option, _lowest_mean_block
 
-__all__ = ["KnowledgeGradient", "expected_min_drop", "knowledge_gradient"]
+__all__ = ["KnowledgeGradient", "expected_min_drop", "knowledge_gradient", "knowledge_gradients"]
 
 
 # ---------------------------------------------------------------------------------------- KG
@@ -77,22 +76,49 @@ def knowledge_gradient(post, P) -> np.ndarray:
 
     Notes
     -----
+    The one-campaign form of :func:`knowledge_gradients` (a stack of one).
+    """
+    return knowledge_gradients(post, np.atleast_2d(np.asarray(P, dtype=float))[None])[0][0]
+
+
+def knowledge_gradients(st, P):
+    """Knowledge gradient over each replicate's own discrete set, for a stack of beliefs.
+
+    Parameters
+    ----------
+    st : Stack
+    P : ndarray of shape (B, L, d)
+
+    Returns
+    -------
+    kg : ndarray of shape (B, L)
+    var : ndarray of shape (B, L)
+        Posterior variances at P (the diagonal of the posterior covariance).
+
+    Notes
+    -----
     After observing ``y = f(x) + eps`` at x, ``mu_{n+1}(x') = mu_n(x') + sigma~(x', x) Z`` with
     ``Z ~ N(0, 1)`` and ``sigma~(x', x) = Cov_n(x', x) / sqrt(var_n(x) + s2)`` (Frazier,
     Powell & Dayanik 2009); the expectation of the minimum over P of these lines is
-    exact (:func:`expected_min_drop`). ``Cov_n(P, P) = K(P, P) - V^T V`` with ``V = L^-1 K(X, P)``.
+    exact (:func:`expected_min_drop`). ``Cov_n(P, P) = K(P, P) - V^T V`` with ``V = L^-1 K(X, P)``,
+    through the stack's kept inverse factor, so each replicate's bits do not depend on the block.
     """
-    P = np.atleast_2d(np.asarray(P, dtype=float))
-    K = post.kernel(P)
-    if post.n:
-        V = solve_triangular(post.L, post.kernel(post.X, P), lower=True, check_finite=False)
-        cov = K - V.T @ V
-        mu = post.mean + post.kernel(P, post.X) @ post.alpha()
+    from ..model.gp import matvec
+
+    B, L, _ = P.shape
+    n = st.n
+    K = st.kernel.stacked(P, P)
+    if n:
+        X, Li = st._X[:, :n], st._Li[:, :n, :n]
+        V = np.matmul(Li, st.kernel.stacked(X, P))                       # (B, n, L)
+        cov = K - np.matmul(V.transpose(0, 2, 1), V)
+        mu = st.mean + matvec(st.kernel.stacked(P, X), st.alphas())
     else:
-        cov, mu = K, np.full(len(P), post.mean)
-    var = np.maximum(np.diag(cov), 0.0)
-    slopes = cov / np.sqrt(var + post.s2)[None, :]     # column j: sigma~(P, P_j)
-    return expected_min_drop(np.broadcast_to(mu, (len(P), len(P))), slopes.T)
+        cov, mu = K, np.full((B, L), st.mean)
+    var = np.maximum(np.diagonal(cov, axis1=1, axis2=2), 0.0)
+    slopes = cov / np.sqrt(var + st._s2()[:, None])[:, None, :]          # column j: sigma~(P, P_j)
+    kg = np.stack([expected_min_drop(np.broadcast_to(mu[b], (L, L)), slopes[b].T) for b in range(B)])
+    return kg, var
 
 
 class KnowledgeGradient(Acquisition):
@@ -101,7 +127,7 @@ class KnowledgeGradient(Acquisition):
     Notes
     -----
     ``KG(x) = min_A mu_n - E[min_A mu_{n+1} | trial at x]`` (Frazier, Powell & Dayanik 2009),
-    computed exactly over a discrete set A (:func:`knowledge_gradient`). A is the ``points``
+    computed exactly over a discrete set A (:func:`knowledge_gradients`). A is the ``points``
     pool points with the lowest lower bound ``mu - 2 sd`` (those most plausibly holding the
     minimum after one more trial, since one trial moves ``mu(x')`` by ``sigma~ |Z| <= sd(x') |Z|``),
     plus the current recommendation (the evaluated input with the lowest posterior mean, so
@@ -109,7 +135,9 @@ class KnowledgeGradient(Acquisition):
     same points. The exact envelope costs O(points^3) for all candidates together: with 64
     points a trial takes about 4 ms on one core (pool 2048, 2-D), with 128 about 45 ms. The
     rule returns the best candidate without polishing; ties (all KG zero, only when no trial
-    can change the minimum) go to the highest posterior sd.
+    can change the minimum) go to the highest posterior sd. Campaigns advance in lockstep
+    (the one-campaign path is the block code on a block of one); the envelope is still
+    computed replicate by replicate, and it is most of a trial's time.
 
     References
     ----------
@@ -120,6 +148,7 @@ class KnowledgeGradient(Acquisition):
     rule = "kg"
     description = "knowledge gradient"
     scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
+    lockstep = True
     options = {
         "points": Option(64, int, 2, 1024, "pool points in the discrete set and candidates"),
         "fill": Option("believer", str, help="how a round of several trials is filled",
@@ -127,24 +156,36 @@ class KnowledgeGradient(Acquisition):
     }
     n_starts = 0
 
-    def candidates(self, post) -> np.ndarray:
-        """The discrete set A (and the candidates): shape (<= points + 1, d)."""
-        pool = self.ctx.pool
-        mu, sd = post.pool_moments()
-        k = min(self.points, len(pool))
-        idx = np.argpartition(mu - 2.0 * sd, k - 1)[:k]
-        P = pool[idx]
-        if post.n:
-            P = np.vstack([P, post.X[post.recommend()]])
+    def candidates_block(self, st) -> np.ndarray:
+        """Each replicate's discrete set A (and candidates): shape (B, <= points + 1, d)."""
+        pools = st.pools
+        mu, sd = st.stacked_pool_moments()
+        k = min(self.points, pools.shape[1])
+        idx = np.argpartition(mu - 2.0 * sd, k - 1, axis=-1)[:, :k]
+        rows = np.arange(st.size)
+        P = pools[rows[:, None], idx]
+        if st.n:
+            rec = np.argmin(st.means_at_data(), axis=-1)
+            P = np.concatenate([P, st._X[rows, rec][:, None, :]], axis=1)
         return P
 
+    def candidates(self, post) -> np.ndarray:
+        """The discrete set A (and the candidates) of one campaign: shape (<= points + 1, d)."""
+        return self.candidates_block(post)[0]
+
     def choose(self, post, t):
-        if t >= self.ctx.horizon - self.exploit_last:
-            return super().choose(post, t)              # the final switch to the lowest mean
-        P = self.candidates(post)
-        kg = knowledge_gradient(post, P)
-        best = np.flatnonzero(kg == kg.max())
-        if len(best) > 1:
-            _, sd = post.moments(P[best])
-            best = best[[int(np.argmax(sd))]]
-        return P[best[0]].copy()
+        block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
+        return self.choose_block(post, t, block)[0]
+
+    def choose_block(self, st, t, block):
+        if t >= block.horizon - self.exploit_last:
+            return _lowest_mean_block(st, self.n_starts, self.polish_iterations)   # the final switch
+        P = self.candidates_block(st)
+        kg, var = knowledge_gradients(st, P)
+        out = np.empty((st.size, P.shape[2]))
+        for b in range(st.size):
+            best = np.flatnonzero(kg[b] == kg[b].max())
+            if len(best) > 1:                      # ties go to the highest posterior sd
+                best = best[[int(np.argmax(var[b, best]))]]
+            out[b] = P[b, best[0]]
+        return out

@@ -114,6 +114,35 @@ class PathwiseDraws:
             return G
         return G, fX + post.kernel(post.X) @ post.solve(R)
 
+    def draw_in(self, st, b: int, rng, n_samples: int, rows):
+        """:meth:`draw` for replicate b of a stack (its pool, data and factors), with the
+        draws at the evaluated inputs too: ``(G, GX)``.
+
+        Solves go through the stack's kept inverse factor (``L^-T L^-1``) rather than a
+        Cholesky solve, so replicate b gets the same bits whether the stack holds it alone
+        or beside others (every product is on b's own slices).
+        """
+        if st.version != self._version:          # the belief was refitted: new kernel, new features
+            self._build(st, rng)
+        all_rows = len(rows) == len(self.pool)
+        S = int(n_samples)
+        W = rng.standard_normal((self._basis.shape[1], S))
+        Phi = self._basis if all_rows else self._basis[rows]
+        G = Phi @ W.astype(np.float32)                                         # prior draws, (r, S)
+        n = st.n
+        if n == 0:
+            return G, np.empty((0, S))
+        X, Li = st._X[b, :n], st._Li[b, :n, :n]
+        fX = self.sample.basis(X) @ W                                          # the same draws at the data
+        R = (st._y[b, :n] - st.mean)[:, None] - fX - np.sqrt(st._s2()[b]) * rng.standard_normal((n, S))
+        w = Li @ R                                                             # L^-1 R
+        if 2 * len(rows) >= len(self.pool):
+            V = st._V[b, :n]
+            G += V.T @ w if all_rows else V[:, rows].T @ w                     # cached cross term, O(n m S)
+        else:
+            G += st.kernel(self.pool[rows], X) @ (Li.T @ w)                    # few rows: O(n |rows| S)
+        return G, fX + st.kernel(X) @ (Li.T @ w)
+
     def path(self, post, s: int):
         """Draw s of the last :meth:`draw` as a function anywhere: ``fg(U) -> (values, gradients)``."""
         self.sample.w = self._W[:, s].copy()
@@ -248,9 +277,10 @@ def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = Fal
 
     Parameters
     ----------
-    mu, sd : ndarray of shape (q,)
-        Posterior mean and sd of f at the inputs (sd > 0).
-    fstar : ndarray of shape (K,)
+    mu, sd : ndarray of shape (..., q)
+        Posterior mean and sd of f at the inputs (sd > 0); leading axes (replicates of a
+        block) broadcast against those of fstar.
+    fstar : ndarray of shape (..., K)
         Sampled values of the minimum ``min f``.
     noise : float
         Observation noise sd s; 0 gives Wang & Jegelka's noise-free form.
@@ -259,9 +289,9 @@ def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = Fal
 
     Returns
     -------
-    info : ndarray of shape (q, K)
+    info : ndarray of shape (..., q, K)
         Nats. Average over K for the acquisition.
-    dmu, dsd : ndarray of shape (q, K), only if ``grad``
+    dmu, dsd : ndarray of shape (..., q, K), only if ``grad``
 
     Notes
     -----
@@ -296,9 +326,9 @@ def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = Fal
     Optimization, AISTATS, also write the density of a noisy observation given the optimum
     value in closed form.
     """
-    mu = np.asarray(mu, dtype=float)[:, None]
-    sd = np.asarray(sd, dtype=float)[:, None]
-    fstar = np.asarray(fstar, dtype=float).reshape(1, -1)
+    mu = np.asarray(mu, dtype=float)[..., :, None]
+    sd = np.asarray(sd, dtype=float)[..., :, None]
+    fstar = np.asarray(fstar, dtype=float)[..., None, :]
     g = (mu - fstar) / sd
     logpsi = log_ndtr(g)
     lam = _inv_mills(g)
@@ -313,13 +343,13 @@ def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = Fal
     rho, kappa = sd / sy, s / sy
     u = (kappa * g)[..., None] + rho[..., None] * _GH_NODES          # (q, K, Q)
     bu, logp = _b(u)
-    G = bu @ _GH_WEIGHTS
+    G = (bu * _GH_WEIGHTS).sum(-1)     # a sum over the last axis: the same bits in any block
     info = 0.5 * rho**2 * g * lam - logpsi + kappa * lam * G
     if not grad:
         return info
     db = logp + 1.0 + u * bu
-    Eb1 = db @ _GH_WEIGHTS
-    Ebs = db @ (_GH_WEIGHTS * _GH_NODES)
+    Eb1 = (db * _GH_WEIGHTS).sum(-1)
+    Ebs = (db * (_GH_WEIGHTS * _GH_NODES)).sum(-1)
     dlam = -lam * (g + lam)
     d_g = 0.5 * rho**2 * (lam + g * dlam) - lam + kappa * (dlam * G + lam * kappa * Eb1)
     d_rho = rho * g * lam + kappa * lam * Ebs
@@ -363,26 +393,54 @@ class MaxValueEntropySearch(Acquisition):
         "noise_aware": Option(1, int, 0, 1, "1: information carried by the noisy observation"),
     }
 
+    lockstep = True   # the one-campaign path is the block code on a block of one
+
     def start(self, ctx):
         super().start(ctx)
-        self.draws = None if self.gumbel else PathwiseDraws(ctx.posterior, ctx.pool, ctx.rng, self.features)
+        self._draws = None
+        self._draws_for(ctx.posterior, [ctx.rng])
+
+    def _draws_for(self, st, rngs):
+        """Each replicate's pathwise draws (frequencies from its own stream), made once."""
+        if self.gumbel or getattr(self, "_draws", None) is not None:
+            return
+        self._draws = [PathwiseDraws(st, pool, rng, self.features) for pool, rng in zip(st.pools, rngs)]
+
+    def choose_block(self, st, t, block):
+        self._rngs, self._fstars = block.rngs, None
+        return super().choose_block(st, t, block)
+
+    def prepare_block(self, st):
+        self._draws_for(st, self._rngs)
+        mu, sd = st.stacked_pool_moments()
+        sd = np.maximum(sd, self.sd_floor * st.kernel.amplitude)
+        self.fstar = np.stack([self._gumbel_minima(mu[b], sd[b], rng) if self.gumbel else
+                               self._sampled_minima(st, b, mu[b], sd[b], rng)
+                               for b, rng in enumerate(self._rngs)])            # (B, K)
+        self._fstars = self.fstar
+        self._noise = st.noise if self.noise_aware else 0.0
+
+    def _keep_state(self, post):
+        """The sampled minima of the choice just made, for :meth:`score`: no new draw."""
+        if self._fstars is not None:          # None after the final switch to the lowest mean
+            self.fstar = self._fstars[0]
 
     def prepare(self, post):
-        self.fstar = self._gumbel_minima(post) if self.gumbel else self._sampled_minima(post)
-        self._noise = post.noise if self.noise_aware else 0.0
+        """One campaign's sampled minima (a round filled by penalizers takes this path)."""
+        self._rngs = [self.ctx.rng]
+        self.prepare_block(post)
+        self.fstar = self.fstar[0]
 
-    def _sampled_minima(self, post):
-        rows = self.draws.plausible(post)
-        G, GX = self.draws.draw(post, self.ctx.rng, self.samples, rows, at_data=True)
+    def _sampled_minima(self, st, b, mu, sd, rng):
+        """Minima of ``samples`` pathwise draws over replicate b's plausible pool points and data."""
+        rows = np.arange(len(mu)) if st.n == 0 else np.flatnonzero(mu - _SCREEN * sd <= np.min(mu + _SCREEN * sd))
+        G, GX = self._draws[b].draw_in(st, b, rng, self.samples, rows)
         low = G.min(0).astype(float)
-        if post.n:
+        if st.n:
             low = np.minimum(low, GX.min(0))
-        return post.mean + low
+        return st.mean + low
 
-    def _gumbel_minima(self, post):
-        mu, sd = post.pool_moments()
-        sd = self._floor(post, sd)
-
+    def _gumbel_minima(self, mu, sd, rng):
         def cdf(z, p):  # P(f* <= z) - p under independence across the pool
             return -np.expm1(log_ndtr((mu - z) / sd).sum()) - p
 
@@ -390,44 +448,48 @@ class MaxValueEntropySearch(Acquisition):
         q25, q50, q75 = (brentq(cdf, lo, hi, args=(p,), xtol=1e-12 * (hi - lo)) for p in (0.25, 0.5, 0.75))
         b = (q75 - q25) / (np.log(-np.log(0.25)) - np.log(-np.log(0.75)))
         c = q50 - b * np.log(np.log(2.0))
-        r = self.ctx.rng.random(self.samples)
+        r = rng.random(self.samples)
         return c + b * np.log(-np.log(r))
 
+    def _pool_values(self, mu, sd, k):
+        """Scores over each replicate's pool (B, m), screened replicate by replicate (:meth:`_screened`)."""
+        return np.stack([self._screened(mu[b], sd[b], self.fstar[b], k) for b in range(mu.shape[0])])
+
     def score_pool(self, post):
-        """Scores over the pool; with the noisy form, points that cannot be among the
-        ``n_starts`` best keep their noise-free bound, which lies below the best few.
+        mu, sd = post.pool_moments()
+        sd = self._floor(post, sd)
+        if self._noise > 0.0 and self.fill == "penalize":   # penalizers reorder the pool: no screen
+            return self._value(mu, sd)
+        return self._screened(mu, sd, self.fstar, max(self.n_starts, 1))
+
+    def _screened(self, mu, sd, fstar, keep):
+        """Scores over one pool; with the noisy form, points that cannot be among the
+        ``keep`` best keep their noise-free bound, which lies below the best few.
 
         The noisy information never exceeds the noise-free one for the same (mu, sd, f*)
         (an observation corrupted by noise tells less; ``tests/unit/test_info_rules.py``
         checks it on a grid), so the noise-free scores, cheap and closed-form, bound the noisy
         ones: points are evaluated in decreasing order of the bound, in growing chunks, until
-        the bound of the next falls below the ``n_starts``-th best noisy score found. With
-        ``fill = "penalize"`` every point is evaluated, since the penalizers reorder the pool.
+        the bound of the next falls below the ``keep``-th best noisy score found.
         """
-        mu, sd = post.pool_moments()
-        sd = self._floor(post, sd)
-        upper = max_value_information(mu, sd, self.fstar).mean(1)
+        upper = max_value_information(mu, sd, fstar).mean(-1)
         if self._noise <= 0.0:
             return upper
-        if self.fill == "penalize":   # penalizers reorder the pool: the bound no longer screens
-            return self._value(mu, sd)
         order = np.argsort(-upper, kind="stable")
         out = upper.copy()
-        keep = max(self.n_starts, 1)
+        keep = max(keep, 1)
         done, chunk = 0, 64
         while done < len(order):
             idx = order[done : done + chunk]
-            out[idx] = self._value(mu[idx], sd[idx])
+            out[idx] = max_value_information(mu[idx], sd[idx], fstar, self._noise).mean(-1)
             done, chunk = done + len(idx), 2 * chunk
             if done < len(order) and upper[order[done]] <= np.partition(out[order[:done]], -keep)[-keep]:
                 break
         return out
 
     def _value(self, mu, sd):
-        return max_value_information(mu, sd, self.fstar, self._noise).mean(1)
+        return max_value_information(mu, sd, self.fstar, self._noise).mean(-1)
 
     def _from_moments(self, mu, sd):
         info, dmu, dsd = max_value_information(mu, sd, self.fstar, self._noise, grad=True)
-        return info.mean(1), dmu.mean(1), dsd.mean(1)
-
-
+        return info.mean(-1), dmu.mean(-1), dsd.mean(-1)

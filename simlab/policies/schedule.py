@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Acquisition, Option, Policy
+from .base import Acquisition, Block, Option, Policy
 from .classic import ConfidenceBound, ExpectedImprovement, ProbabilityOfImprovement
 
 __all__ = ["GPUCB", "GPHedge", "gp_ucb_beta"]
@@ -103,51 +103,65 @@ class GPHedge(Policy):
     description = "portfolio of EI, PI and the confidence bound, weighted by past gains"
     options = {"eta": Option(1.0, float, 0.0, 1e6, "learning rate of the softmax over gains, per objective unit")}
 
+    lockstep = True   # the members are lockstep rules; the one-campaign path is a block of one
+
     def start(self, ctx):
         super().start(ctx)
-        self.members = (ExpectedImprovement(), ProbabilityOfImprovement(), ConfidenceBound())
+        self._begin(1)
         for m in self.members:
             m.start(ctx)
-        self.gains = np.zeros(len(self.members))
-        self.nominees: list[np.ndarray] = []   # (members, d) per choice whose reward is pending
-        self.picked: int | None = None
+
+    def _begin(self, size: int) -> None:
+        """Fresh members and zero gains for a block of ``size`` campaigns."""
+        self.members = (ExpectedImprovement(), ProbabilityOfImprovement(), ConfidenceBound())
+        self.gains = np.zeros((size, len(self.members)))
+        self.nominees: list[np.ndarray] = []   # (B, members, d) per choice whose reward is pending
+        self.picked: np.ndarray | None = None  # (B,) member chosen for each campaign
         self._n_seen = -1                      # observations when those choices were made
         self._holding = False                  # inside a round, with pending trials held
         self._chose_last = False               # the latest trial was chosen here (not the design)
 
     def probabilities(self) -> np.ndarray:
-        """``exp(eta g) / sum exp(eta g)`` over the members (computed shift-invariantly)."""
+        """``exp(eta g) / sum exp(eta g)`` over the members (computed shift-invariantly), per campaign (B, members)."""
         e = self.eta * self.gains
-        w = np.exp(e - e.max())
-        return w / w.sum()
+        w = np.exp(e - e.max(-1, keepdims=True))
+        return w / w.sum(-1, keepdims=True)
 
-    def pick(self, rng) -> int:
-        """Index of the member whose nominee is run, drawn with :meth:`probabilities`."""
-        return int(rng.choice(len(self.members), p=self.probabilities()))
+    def pick(self, rngs) -> np.ndarray:
+        """Index of the member whose nominee is run, per campaign, each drawn from its own stream."""
+        p = self.probabilities()
+        return np.array([int(rng.choice(len(self.members), p=pb)) for rng, pb in zip(rngs, p)])
 
-    def collect(self, post) -> None:
-        """Add each member's rewards ``-mu(nominee)`` once the posterior holds new observations."""
-        if self.nominees and post.n > self._n_seen:
-            mu, _ = post.moments(np.concatenate(self.nominees))
-            self.gains -= mu.reshape(len(self.nominees), len(self.members)).sum(0)
+    def collect(self, st) -> None:
+        """Add each member's rewards ``-mu(nominee)`` once the beliefs hold new observations."""
+        if self.nominees and st.n > self._n_seen:
+            k, M = len(self.nominees), len(self.members)
+            mu, _ = st.stacked_moments(np.concatenate(self.nominees, axis=1))     # (B, k M)
+            self.gains -= mu.reshape(st.size, k, M).sum(1)
             self.nominees = []
 
     def choose(self, post, t):
+        block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
+        return self.choose_block(post, t, block)[0]
+
+    def choose_block(self, st, t, block):
+        if getattr(self, "gains", None) is None or len(self.gains) != st.size:
+            self._begin(st.size)
         if not self._holding:            # first choice of a round: the last round's results are in
-            self.collect(post)
-            self._n_seen = post.n
-        nominees = np.stack([m.choose(post, t) for m in self.members])
-        self.picked = self.pick(self.ctx.rng)
+            self.collect(st)
+            self._n_seen = st.n
+        nominees = np.stack([m.choose_block(st, t, block) for m in self.members], axis=1)   # (B, M, d)
+        self.picked = self.pick(block.rngs)
         self._chose_last = True
         self.nominees.append(nominees)
-        return nominees[self.picked].copy()
+        return nominees[np.arange(st.size), self.picked].copy()
 
     def hold(self, post, u):
         """A round of several trials: the member that chose the pending trial fills it in its
         own way (by default the kriging believer), so every member sees it before nominating
         again; a trial the portfolio did not choose (initial design) is held by EI's."""
         self._holding = True
-        member = self.members[self.picked] if self._chose_last else self.members[0]
+        member = self.members[int(self.picked[0])] if self._chose_last else self.members[0]
         self._chose_last = False
         member.hold(post, u)
 

@@ -18,13 +18,33 @@ Campaigns run in lockstep when the rule declares ``lockstep = True`` and every c
 the block stays the same length at every step: one trial per round, no lost trials and no
 belief refits. Other campaigns are replayed one at a time.
 
-Why two loops and not one: the one-campaign loop (campaign.py) also serves rounds of several
-trials (pending trials held as fantasies and released), lost trials (the belief skips a row,
-so replicates of one block would hold different numbers of rows) and refits (each replicate
-gets its own kernel mid-campaign). A stacked belief with a row count per replicate would let
-lost trials advance here too; until then this loop covers the equal-length case. Both start
-from the same past trials and buffers (trace.py) and call the same arithmetic, so a campaign
-has the same bits on either path.
+Which rules: random, sobol, mean, lcb, gp-ucb, pi, ei (rules of the posterior moments),
+thompson and mes (posterior samples: each replicate draws its own weights, noise and
+minima from its own stream, in the order the one-campaign path draws them), kg (each
+replicate's discrete set; the exact envelope is still computed replicate by replicate) and
+hedge (its members are lockstep rules; each replicate picks a member from its own stream).
+Every one of them makes its one-campaign choice by running its block code on a block of
+one, and polishes with :func:`~simlab.model.optimize.polish_block`, so the two paths share
+every operation. The snapshot's ``score`` after a choice reads the state kept from it
+(``Acquisition._keep_state``), never a second draw.
+
+Still one campaign at a time, and why:
+
+- ``pbest``: its trial is 256 pathwise draws over the pool (a float32 product of
+  2048 x 256 x 256) and a count of their minima, then a SciPy polish of one draw; a block
+  would save only the Python around that product (see DEVELOPERS.md for the measured split).
+- rounds of several trials (``[campaign] batch`` > 1): pending trials are held as fantasies
+  between choices (``Stack.fantasies`` exists; a block form of each rule's ``hold`` does not
+  yet, and ``fill = "penalize"`` keeps a list of pending inputs per campaign).
+- lost trials (``[world] lost`` > 0): the belief skips a row, so replicates of one block would
+  hold different numbers of rows; :class:`~simlab.model.gp.Stack` keeps one ``n`` for the
+  block (a row count per replicate would lift this).
+- belief refits (``[belief] refit_every``): each replicate gets its own kernel mid-campaign,
+  and a Stack shares one kernel.
+
+Why two loops and not one: the one-campaign loop (campaign.py) serves those cases. Both
+start from the same past trials and buffers (trace.py) and call the same arithmetic, so a
+campaign has the same bits on either path.
 """
 
 from __future__ import annotations

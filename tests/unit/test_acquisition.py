@@ -385,3 +385,30 @@ def test_thompson_negative_controls(thompson_draws):
     # Monte Carlo error somewhere, so the check against var_feat above is the one that can pass
     _, z_exact, _ = mean_var_z(d["direct"], mu, var)
     assert np.max(np.abs(z_exact)) > Z_MAX, z_exact
+
+
+def test_thompson_block_ranking_is_the_sample_that_is_minimised():
+    """The lockstep path ranks the pool with the prior draw in float32 and polishes in float64:
+    its pool values equal the float64 sample (the one the tests above check against the
+    scikit-learn posterior) to float32 rounding, about 1e-6 of the prior sd per feature sum
+    (tolerance 1e-4 x amplitude, common practice for float32 sums of 512 terms), and the
+    chosen input is no worse than the best screened pool point of that sample."""
+    rng = np.random.default_rng(610)
+    X = rng.random((6, 2))
+    y = MEAN + AMP * np.sin(4 * X[:, 0] + 2 * X[:, 1]) + NOISE * rng.standard_normal(6)
+    pool = rng.random((300, 2))
+    post = Posterior(KERNELS["matern52"](LS, AMP), MEAN, NOISE, pool=pool)
+    post.add_many(X, y)
+    ts = ThompsonSampling("thompson")
+    ts.start(Context(pool=pool, rng=np.random.default_rng(611), sequence=np.zeros((10, 2)), horizon=10,
+                     posterior=post))
+    u = ts.choose(post, 6)
+    ranked = ts._ranked[0] - post.mean                 # ranked without the constant prior mean
+    scored = np.isfinite(ranked)
+    assert scored.sum() > 10
+    direct = ts.score(post, pool)                       # -sample, float64, the state choose() kept
+    assert np.max(np.abs(ranked[scored] - direct[scored])) < 1e-4 * AMP
+    assert -ts.score(post, u[None])[0] <= np.min(-direct[scored]) + 1e-12
+    # negative control: another draw's sample is far from the ranked values
+    ts.prepare(post)
+    assert np.max(np.abs(ranked[scored] - ts.score(post, pool)[scored])) > 1e-2 * AMP

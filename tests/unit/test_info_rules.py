@@ -200,7 +200,8 @@ def test_sampled_minima_match_exact_joint_draws():
     means = []
     for seed in range(runs):
         rule = start(MaxValueEntropySearch(samples=500, features=1024), post, grid, seed)
-        means.append(rule._sampled_minima(post).mean())
+        rule.prepare(post)                                   # the rule's own draws (block of one)
+        means.append(rule.fstar.mean())
     means = np.array(means)
     est, se_est = means.mean(), means.std(ddof=1) / np.sqrt(runs)   # spread over feature draws too
     U = np.vstack([grid, post.X])
@@ -221,7 +222,11 @@ def test_gumbel_minima_follow_the_independence_approximation():
     law matches its quartiles, so about 1/4, 1/2, 3/4 of the sampled minima fall below them."""
     kernel, grid, post = line_data()
     rule = start(MaxValueEntropySearch(samples=1024, gumbel=1), post, grid, 11)
-    draws = np.concatenate([rule._gumbel_minima(post) for _ in range(4)])
+    draws = []
+    for _ in range(4):
+        rule.prepare(post)
+        draws.append(rule.fstar)
+    draws = np.concatenate(draws)
     mu, cov = exact_gp(kernel, post.mean, post.s2, post.X, post.y, grid)
     sd = np.sqrt(np.diag(cov))
 
@@ -414,13 +419,13 @@ def test_gp_ucb_width_follows_the_published_schedule(n, delta):
 def test_hedge_picks_members_with_softmax_of_gains():
     _, pool, post = plane_data()
     rule = start(GPHedge(eta=1.5), post, pool, 0)
-    rule.gains = np.array([0.3, -1.2, 0.8])
+    rule.gains = np.array([[0.3, -1.2, 0.8]])            # a block of one campaign
     # Hoffman, Brochu & de Freitas (2011), Algorithm 1: p_j = exp(eta g_j) / sum_l exp(eta g_l)
-    p = np.exp(1.5 * rule.gains) / np.exp(1.5 * rule.gains).sum()
-    np.testing.assert_allclose(rule.probabilities(), p, rtol=1e-13)
+    p = np.exp(1.5 * rule.gains[0]) / np.exp(1.5 * rule.gains[0]).sum()
+    np.testing.assert_allclose(rule.probabilities()[0], p, rtol=1e-13)
     rng = np.random.default_rng(5)
     N = 20_000
-    freq = np.bincount([rule.pick(rng) for _ in range(N)], minlength=3) / N
+    freq = np.bincount([rule.pick([rng])[0] for _ in range(N)], minlength=3) / N
     assert np.all(np.abs(freq - p) < Z_MAX * np.sqrt(p * (1 - p) / N))
     # negative control: equal odds are rejected by the same tolerance
     assert np.any(np.abs(freq - 1 / 3) > Z_MAX * np.sqrt(2 / 9 / N))
@@ -430,8 +435,8 @@ def test_hedge_gains_add_the_negated_posterior_mean_at_each_nominee():
     kernel, pool, post = plane_data(n=6)
     rule = start(GPHedge(), post, pool, 0)
     x = rule.choose(post, 0)
-    first = rule.nominees[0].copy()
-    np.testing.assert_array_equal(x, first[rule.picked])
+    first = rule.nominees[0][0].copy()                   # nominees of the block's only campaign
+    np.testing.assert_array_equal(x, first[rule.picked[0]])
     ei = start(ExpectedImprovement(), post, pool, 0)
     np.testing.assert_array_equal(first[0], ei.choose(post, 0))        # members nominate as they would choose
     assert np.all(rule.gains == 0.0)
@@ -439,16 +444,16 @@ def test_hedge_gains_add_the_negated_posterior_mean_at_each_nominee():
     post.add(x, 0.37)
     rule.choose(post, 1)
     mu, _ = exact_gp(kernel, post.mean, post.s2, post.X, post.y, first)
-    np.testing.assert_allclose(rule.gains, -mu, atol=1e-10)
+    np.testing.assert_allclose(rule.gains[0], -mu, atol=1e-10)
     rule.release()
     rule.choose(post, 2)                       # nothing observed in between (a lost trial): no reward yet
-    np.testing.assert_allclose(rule.gains, -mu, atol=1e-10)
-    second, third = (n.copy() for n in rule.nominees)
+    np.testing.assert_allclose(rule.gains[0], -mu, atol=1e-10)
+    second, third = (n[0].copy() for n in rule.nominees)
     rule.release()
-    post.add(third[rule.picked], -0.2)
+    post.add(third[rule.picked[0]], -0.2)
     rule.choose(post, 3)                       # both pending choices are rewarded now
     mu2, _ = exact_gp(kernel, post.mean, post.s2, post.X, post.y, np.vstack([second, third]))
-    np.testing.assert_allclose(rule.gains, -mu - mu2[:3] - mu2[3:], atol=1e-10)
+    np.testing.assert_allclose(rule.gains[0], -mu - mu2[:3] - mu2[3:], atol=1e-10)
 
 
 def test_hedge_rounds_hold_pending_trials_and_reward_after_the_round():
@@ -463,12 +468,12 @@ def test_hedge_rounds_hold_pending_trials_and_reward_after_the_round():
         assert np.all(rule.gains == 0.0)       # fantasies are not results: no reward inside a round
     rule.release()
     assert np.max(np.abs(u1 - u2)) > 1e-3      # the held trial moved the next choice
-    noms = np.concatenate(rule.nominees)
+    noms = np.concatenate([n[0] for n in rule.nominees])
     post.add(u1, 0.1)
     post.add(u2, -0.3)
     rule.choose(post, 2)
     mu, _ = exact_gp(kernel, post.mean, post.s2, post.X, post.y, noms)
-    np.testing.assert_allclose(rule.gains, -(mu[:3] + mu[3:]), atol=1e-10)
+    np.testing.assert_allclose(rule.gains[0], -(mu[:3] + mu[3:]), atol=1e-10)
 
 
 # --------------------------------------------------------------------------- study files

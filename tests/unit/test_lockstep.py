@@ -195,9 +195,10 @@ def test_identity_holds_for_other_worlds_and_designs(over):
 
 def test_only_campaigns_of_equal_length_run_in_lockstep():
     belief = Belief(Matern52([0.3], 1.0), 0.0, 0.1)
-    ei, ts = POLICIES["ei"](), POLICIES["thompson"]()
+    ei, kg, pbest = POLICIES["ei"](), POLICIES["kg"](), POLICIES["pbest"]()
     assert fits_lockstep(ei, belief, batch=1, lost=0.0)
-    assert not fits_lockstep(ts, belief, batch=1, lost=0.0)          # needs its own samples
+    assert fits_lockstep(kg, belief, batch=1, lost=0.0)              # in lockstep since its block form
+    assert not fits_lockstep(pbest, belief, batch=1, lost=0.0)       # still one campaign at a time
     assert not fits_lockstep(ei, belief, batch=2, lost=0.0)          # rounds fantasise
     assert not fits_lockstep(ei, belief, batch=1, lost=0.1)          # ragged beliefs
     refit = Belief(belief.kernel, 0.0, 0.1, refit_every=5)
@@ -215,3 +216,49 @@ def test_identity_holds_with_past_trials():
     s = dataclasses.replace(s, replicates=5)
     pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=5), replay(s, lockstep=False, chunk=5),
                                   check_exact=True)
+
+
+# ---------------------------------------------------------------- rules of their own random draws
+# Rules that draw posterior samples (each replicate from its own stream) and polish with
+# polish_block; the one-at-a-time path runs the same block code on a block of one.
+SAMPLING = {
+    "study": {"name": "sampling", "goal": "minimize", "replicates": 7, "seed": 23},
+    "space": {"speed": [1.0, 5.0], "gap": [0.1, 0.9]},
+    "world": {"kernel": "matern52", "lengthscale": [1.2, 0.25], "amplitude": 1.0, "mean": 3.0, "noise": 0.05},
+    "campaign": {"initial": 3, "budgets": [5, 8], "pool": 96},
+    "target": {"regret": 0.2},
+}
+MOVED = [[{"rule": "thompson", "features": 64}, {"rule": "thompson", "label": "ts exploit", "features": 32,
+                                                  "exploit_last": 1}],
+         [{"rule": "mes", "samples": 8, "features": 32}, {"rule": "mes", "label": "mes gumbel", "gumbel": 1},
+          {"rule": "mes", "label": "mes free", "noise_aware": 0, "exploit_last": 1}],
+         [{"rule": "hedge"}, {"rule": "hedge", "label": "hedge eager", "eta": 20.0}],
+         [{"rule": "kg", "points": 16}, {"rule": "kg", "label": "kg exploit", "points": 8, "exploit_last": 1}]]
+
+
+@pytest.mark.parametrize("policies", MOVED, ids=lambda p: p[0]["rule"])
+@pytest.mark.parametrize("over", [{}, {"world": {"noise": 0.0}}], ids=["noisy", "noise-free"])
+def test_sampling_rules_are_bit_identical_to_one_at_a_time(policies, over):
+    s = study_with(SAMPLING, "test", policy=policies, **over)
+    for policy in policies:
+        assert fits_lockstep(POLICIES[policy["rule"]](), Belief(Matern52([0.3], 1.0), 0.0, 0.1), batch=1, lost=0.0)
+    ref = replay(s, lockstep=False, chunk=7)
+    for chunk in (1, 3, 7):
+        pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=chunk), ref, check_exact=True)
+
+
+
+def test_negative_control_a_stream_shared_by_the_block_is_seen(monkeypatch):
+    """Were a block's replicates to draw from one shared stream, the traces would differ."""
+    import simlab.replay.lockstep as lockstep
+
+    s = study_with(SAMPLING, "test", policy=MOVED[0][:1])
+    ref = replay(s, lockstep=False, chunk=7)
+    real = lockstep.run_block
+
+    def shared(policy, belief, reps, *, rngs, **kw):
+        return real(policy, belief, reps, rngs=[rngs[0]] * len(rngs), **kw)
+
+    monkeypatch.setattr(lockstep, "run_block", shared)
+    with pytest.raises(AssertionError):
+        pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=7), ref, check_exact=True)
