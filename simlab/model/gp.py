@@ -12,7 +12,7 @@ import warnings
 from contextlib import contextmanager
 
 import numpy as np
-from scipy.linalg import cho_solve, solve_triangular
+from ..lazy import linalg
 
 from .kernels import Kernel
 
@@ -247,7 +247,7 @@ class Stack:
             warnings.warn("a Gaussian-process factorisation needed extra diagonal jitter (repeated or "
                           "near-identical inputs with little noise); the belief is smoothed slightly there",
                           RuntimeWarning, stacklevel=3)
-        Li = solve_triangular(L, np.eye(n), lower=True, check_finite=False)
+        Li = linalg.solve_triangular(L, np.eye(n), lower=True, check_finite=False)
         self._L[b, :n, :n], self._L[b, :n, n:] = L, 0.0
         self._Li[b, :n, :n], self._Li[b, :n, n:] = Li, 0.0
         z = Li @ (self._y[b, :n] - self.mean)
@@ -470,7 +470,7 @@ class Posterior(Stack):
         """``(K + s2 I)^-1 r`` for a vector r of shape (n,)."""
         if self.n == 0:
             return np.zeros(0)
-        return cho_solve((self.L, True), r, check_finite=False)
+        return linalg.cho_solve((self.L, True), r, check_finite=False)
 
     def pool_cross(self, r) -> np.ndarray:
         """``K(pool, X) (K + s2 I)^-1 r`` over the pool in O(n m) using the cached cross term.
@@ -480,7 +480,7 @@ class Posterior(Stack):
         """
         if self.n == 0:
             return np.zeros((self.pool.shape[0],) + np.shape(r)[1:])
-        w = solve_triangular(self.L, r, lower=True, check_finite=False)
+        w = linalg.solve_triangular(self.L, r, lower=True, check_finite=False)
         return self._V[0, : self.n].T @ w
 
     def log_marginal_likelihood(self) -> float:

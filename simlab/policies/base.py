@@ -7,7 +7,7 @@ from typing import ClassVar
 
 import numpy as np
 
-from scipy.special import log_ndtr
+from ..lazy import special
 
 from ..model.gp import Posterior, Stack
 from ..model.optimize import distinct_best, polish, polish_block
@@ -334,9 +334,9 @@ class Acquisition(Policy):
             diff = U - xj
             dist = np.sqrt((diff**2).sum(1))
             z = (self._lipschitz * dist - mu_j + self._minimum) / sd_j
-            total = total + log_ndtr(z)
+            total = total + special.log_ndtr(z)
             if grads is not None:
-                ratio = np.exp(-0.5 * z * z - 0.5 * np.log(2 * np.pi) - log_ndtr(z))   # phi / Phi
+                ratio = np.exp(-0.5 * z * z - 0.5 * np.log(2 * np.pi) - special.log_ndtr(z))   # phi / Phi
                 with np.errstate(invalid="ignore", divide="ignore"):
                     unit = np.where(dist[:, None] > 0, diff / dist[:, None], 0.0)
                 g = g + (ratio * self._lipschitz / sd_j)[:, None] * unit

@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import ClassVar
 
 import numpy as np
-from scipy.special import log_ndtr
+from ..lazy import special
 
 from ..model.gp import matvec
 from ..worlds.draws import FeatureSample, feature_values
@@ -145,11 +145,11 @@ class ProbabilityOfImprovement(_Improvement):
                 "thesis; cited from memory).")
 
     def _value(self, mu, sd):
-        return log_ndtr((self.best - self.margin - mu) / sd)
+        return special.log_ndtr((self.best - self.margin - mu) / sd)
 
     def _from_moments(self, mu, sd):
         z = (self.best - self.margin - mu) / sd
-        a = log_ndtr(z)
+        a = special.log_ndtr(z)
         dz = np.exp(-0.5 * z * z - 0.5 * np.log(2 * np.pi) - a)  # phi(z) / Phi(z)
         return a, -dz / sd, -dz * z / sd
 

@@ -4,7 +4,7 @@ after one more trial (Frazier, Powell & Dayanik 2009), exact for a discrete set.
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import ndtr
+from ..lazy import special
 
 from .base import Acquisition, Block, Option, _lowest_mean_block
 
@@ -55,7 +55,7 @@ def expected_min_drop(a, b) -> np.ndarray:
     dominated = ((db == 0.0) & ((da > 0.0) | ((da == 0.0) & earlier))).any(2)
     live = (lo < hi) & ~dominated
     with np.errstate(invalid="ignore"):
-        part = (A * (ndtr(hi) - ndtr(lo))
+        part = (A * (special.ndtr(hi) - special.ndtr(lo))
                 + B * (np.exp(-0.5 * lo * lo) - np.exp(-0.5 * hi * hi)) / np.sqrt(2.0 * np.pi))
     return np.maximum(np.where(live, part, 0.0).sum(1), 0.0)
 

@@ -5,8 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 from numpy.polynomial.hermite_e import hermegauss
-from scipy.optimize import brentq
-from scipy.special import erfcx, log_ndtr, ndtr
+from ..lazy import optimize, special
 
 from ..model.optimize import polish
 from ..worlds.draws import FeatureSample
@@ -249,26 +248,26 @@ class ProbabilityOfMinimum(Acquisition):
 # ---------------------------------------------------------------------------------------- MES
 def _inv_mills(g):
     """``phi(g) / Phi(g)`` without overflow or underflow."""
-    return np.exp(-0.5 * g * g - _LOG_SQRT_2PI - log_ndtr(g))
+    return np.exp(-0.5 * g * g - _LOG_SQRT_2PI - special.log_ndtr(g))
 
 
 def _b(u):
     """``Phi(u) log Phi(u) / phi(u)`` and ``log Phi(u)``, finite for every u.
 
-    For u <= 0, ``Phi/phi = sqrt(pi/2) erfcx(-u/sqrt2)``; for u > 0, with ``Q = Phi(-u)``,
-    ``log Phi = log1p(-Q)`` and ``1/phi = sqrt(pi/2) erfcx(u/sqrt2) / Q``, and
+    For u <= 0, ``Phi/phi = sqrt(pi/2) special.erfcx(-u/sqrt2)``; for u > 0, with ``Q = Phi(-u)``,
+    ``log Phi = log1p(-Q)`` and ``1/phi = sqrt(pi/2) special.erfcx(u/sqrt2) / Q``, and
     ``log1p(-Q) / Q -> -1`` as Q underflows.
     """
     out = np.empty_like(u)
-    logp = log_ndtr(u)
+    logp = special.log_ndtr(u)
     neg = u <= 0.0
     un = u[neg]
-    out[neg] = _SQRT_HALF_PI * erfcx(-un / np.sqrt(2.0)) * logp[neg]
+    out[neg] = _SQRT_HALF_PI * special.erfcx(-un / np.sqrt(2.0)) * logp[neg]
     up = u[~neg]
-    Q = ndtr(-up)
+    Q = special.ndtr(-up)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(Q > 0.0, np.log1p(-Q) / Q, -1.0)
-    out[~neg] = (1.0 - Q) * _SQRT_HALF_PI * erfcx(up / np.sqrt(2.0)) * ratio
+    out[~neg] = (1.0 - Q) * _SQRT_HALF_PI * special.erfcx(up / np.sqrt(2.0)) * ratio
     return out, logp
 
 
@@ -330,7 +329,7 @@ def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = Fal
     sd = np.asarray(sd, dtype=float)[..., :, None]
     fstar = np.asarray(fstar, dtype=float)[..., None, :]
     g = (mu - fstar) / sd
-    logpsi = log_ndtr(g)
+    logpsi = special.log_ndtr(g)
     lam = _inv_mills(g)
     if noise <= 0.0:
         info = 0.5 * g * lam - logpsi
@@ -442,10 +441,10 @@ class MaxValueEntropySearch(Acquisition):
 
     def _gumbel_minima(self, mu, sd, rng):
         def cdf(z, p):  # P(f* <= z) - p under independence across the pool
-            return -np.expm1(log_ndtr((mu - z) / sd).sum()) - p
+            return -np.expm1(special.log_ndtr((mu - z) / sd).sum()) - p
 
         lo, hi = float(np.min(mu - 10.0 * sd)), float(np.min(mu + 10.0 * sd))
-        q25, q50, q75 = (brentq(cdf, lo, hi, args=(p,), xtol=1e-12 * (hi - lo)) for p in (0.25, 0.5, 0.75))
+        q25, q50, q75 = (optimize.brentq(cdf, lo, hi, args=(p,), xtol=1e-12 * (hi - lo)) for p in (0.25, 0.5, 0.75))
         b = (q75 - q25) / (np.log(-np.log(0.25)) - np.log(-np.log(0.75)))
         c = q50 - b * np.log(np.log(2.0))
         r = rng.random(self.samples)

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import erfcx, log_ndtr, ndtr
+from ..lazy import special
 
 __all__ = ["log_h", "dlog_h"]
 
@@ -20,8 +20,8 @@ def log_h(z) -> np.ndarray:
     Three branches:
 
     - z > -1: direct evaluation;
-    - -1000 < z <= -1: ``-z^2/2 - log(2 pi)/2 + log1mexp(log(erfcx(-z/sqrt2) |z|) + log(pi/2)/2)``,
-      using ``Phi(z) = erfcx(-z/sqrt2) exp(-z^2/2) / 2`` (Ament et al. 2023, eq. 9);
+    - -1000 < z <= -1: ``-z^2/2 - log(2 pi)/2 + log1mexp(log(special.erfcx(-z/sqrt2) |z|) + log(pi/2)/2)``,
+      using ``Phi(z) = special.erfcx(-z/sqrt2) exp(-z^2/2) / 2`` (Ament et al. 2023, eq. 9);
     - z <= -1000: the tail series ``h(z) = phi(z) / z^2 (1 - 3/z^2 + 15/z^4 - 105/z^6 + ...)``,
       from the asymptotic expansion of the Mills ratio (Abramowitz & Stegun 1964, 7.1.23),
       whose next term is below 1e-20 there. In the middle branch's formula ``1 - exp(t)``
@@ -33,9 +33,9 @@ def log_h(z) -> np.ndarray:
     mid = (z <= -1.0) & (z > _Z_TAIL)
     lo = z <= _Z_TAIL
     zh = z[hi]
-    out[hi] = np.log(np.exp(-0.5 * zh * zh) / np.sqrt(2 * np.pi) + zh * ndtr(zh))
+    out[hi] = np.log(np.exp(-0.5 * zh * zh) / np.sqrt(2 * np.pi) + zh * special.ndtr(zh))
     zm = z[mid]
-    t = np.log(erfcx(-zm / np.sqrt(2.0)) * np.abs(zm)) + _C2
+    t = np.log(special.erfcx(-zm / np.sqrt(2.0)) * np.abs(zm)) + _C2
     # for -1000 < z <= -1, t lies in (-0.43, -1e-6), where log1mexp(t) = log(-expm1(t)) is the
     # accurate branch (Maechler 2012, "Accurately computing log(1 - exp(-|a|))")
     out[mid] = -0.5 * zm * zm - _C1 + np.log(-np.expm1(t))
@@ -54,7 +54,7 @@ def dlog_h(z, lh=None) -> np.ndarray:
     difference of two numbers of size z^2/2 would lose the digits there.
     """
     z = np.asarray(z, dtype=float)
-    out = np.exp(log_ndtr(z) - (log_h(z) if lh is None else lh))
+    out = np.exp(special.log_ndtr(z) - (log_h(z) if lh is None else lh))
     lo = z <= _Z_TAIL
     if np.any(lo):
         zl = z[lo]
