@@ -4,9 +4,9 @@ import functools
 
 import numpy as np
 import pytest
-from scipy.optimize import differential_evolution, minimize
 from threadpoolctl import threadpool_limits
 
+from helpers import evolved_minimum
 from simlab.model.kernels import KERNELS
 from simlab.model.optimize import separated_best
 from simlab.rng import stream
@@ -33,15 +33,7 @@ def de_minimum(d, name, ls, i):
     float32 values), then L-BFGS-B with the world's analytic gradient (float64) from the 5 best members
     of the final population."""
     world = _world(d, name, ls, i)
-    res = differential_evolution(lambda X: world.rank_values(X.T), [(0.0, 1.0)] * d, popsize=20, maxiter=300,
-                                 tol=0.0, mutation=(0.5, 1.0), recombination=0.7, vectorized=True,
-                                 updating="deferred", polish=False, seed=100 + i, init="sobol")
-    best = np.inf
-    for x0 in res.population[np.argsort(res.population_energies)[:5]]:
-        r = minimize(lambda x: (world(x[None])[0], world.grad(x[None])[0]), x0, jac=True, method="L-BFGS-B",
-                     bounds=[(0.0, 1.0)] * d)
-        best = min(best, float(r.fun))
-    return best
+    return evolved_minimum(world, d, seed=100 + i, polished=5)
 
 
 @pytest.mark.slow

@@ -13,9 +13,9 @@ import functools
 
 import numpy as np
 import pytest
-from scipy.optimize import differential_evolution, minimize
 from threadpoolctl import threadpool_limits
 
+from helpers import evolved_minimum
 from simlab.model.kernels import KERNELS
 from simlab.rng import stream
 from simlab.worlds.draws import FeatureWorld, SearchPlan, find_minimum, search_plan, spread_best
@@ -33,16 +33,7 @@ def _world(d, name, i):
 @functools.lru_cache(maxsize=None)
 def reference(d, name, i):
     w = _world(d, name, i)
-    with threadpool_limits(1):
-        res = differential_evolution(lambda X: w.rank_values(X.T), [(0.0, 1.0)] * d, popsize=20, maxiter=300,
-                                     tol=0.0, mutation=(0.5, 1.0), recombination=0.7, vectorized=True,
-                                     updating="deferred", polish=False, seed=200 + i, init="sobol")
-        best = np.inf
-        for x0 in res.population[np.argsort(res.population_energies)[:8]]:
-            r = minimize(lambda x: (w(x[None])[0], w.grad(x[None])[0]), x0, jac=True, method="L-BFGS-B",
-                         bounds=[(0.0, 1.0)] * d)
-            best = min(best, float(r.fun))
-    return best
+    return evolved_minimum(w, d, seed=200 + i, polished=8)
 
 
 @pytest.mark.slow
