@@ -12,10 +12,10 @@ from simlab.study.spec import parse_study
 AMPLITUDE = 2.0
 
 
-def _study(*policies):
+def _study(*policies, batch=1):
     return parse_study({"study": {"replicates": 2}, "space": {"feed": [0.0, 1.0], "heat": [20.0, 40.0]},
                         "world": {"lengthscale": [0.3, 6.0], "amplitude": AMPLITUDE, "noise": 0.1},
-                        "campaign": {"initial": 2, "budgets": [4]}, "target": {"regret": 0.1},
+                        "campaign": {"initial": 2, "budgets": [4], "batch": batch}, "target": {"regret": 0.1},
                         "policy": list(policies)}, source="test")
 
 
@@ -36,13 +36,18 @@ def _cautions(page):
 
 
 def test_every_setting_is_shown_resolved_with_its_help_text():
+    # with rounds of two trials every setting counts, the round-filling ones (fill, lie) too
+    rounds = _row(_assumptions(_study({"rule": "pi", "label": "PI"}, batch=2), "test"), "PI")
+    for key, option in POLICIES["pi"].options.items():          # every setting and its help text
+        assert f"<code>{key} = " in rounds and option.help.replace('"', "&quot;") in rounds
+    assert rounds.index("margin = ") < rounds.index("fill = ")  # the rule's own setting first
     page = _assumptions(_study({"rule": "pi", "label": "PI"}, {"rule": "ei", "label": "EI", "margin": 0.05},
                                {"rule": "random", "label": "Random"}), "test")
     row = _row(page, "PI")
     assert "<code>margin = 0</code>" in row                    # the default, written out, not "defaults"
-    for key, option in POLICIES["pi"].options.items():          # every setting and its help text
-        assert f"<code>{key} = " in row and option.help.replace('"', "&quot;") in row
-    assert row.index("margin = ") < row.index("fill = ")        # the rule's own setting first
+    for key, option in POLICIES["pi"].options.items():          # one trial per round: all but fill and lie
+        shown = f"<code>{key} = " in row
+        assert shown == (key not in ("fill", "lie")), key
     assert "<code>margin = 0.05</code>" in _row(page, "EI")
     assert "<td>defaults</td>" not in page                     # what the table said before
     assert "none (the rule has no settings)" in _row(page, "Random")
