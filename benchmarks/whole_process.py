@@ -76,7 +76,7 @@ def main() -> None:
         ours, theirs = [], []
         for _ in range(args.repeats):
             ours.append(wall(simlab("run", study, "--no-report", "--jobs", 1, "--quiet", "--fresh", "--out", tmp / "o")))
-            theirs.append(wall([sys.executable, str(HERE / "handwritten_loop.py"), "--replicates", args.replicates]))
+            theirs.append(wall([sys.executable, str(HERE / "handwritten_loop.py"), "--replicates", str(args.replicates)]))
         a, b = statistics.median(ours), statistics.median(theirs)
         print(f"\nstudy: {args.replicates} replicates x 30 trials of EI, 2-D, one job (medians of {args.repeats}; "
               f"load {os.getloadavg()[0]:.1f})")
