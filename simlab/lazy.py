@@ -1,7 +1,7 @@
 """SciPy modules bound now, imported on first use.
 
 Reading a study needs the rule and kernel classes but none of SciPy: importing
-``scipy.special``, ``scipy.linalg`` and ``scipy.optimize`` costs about 0.5 s on a 2-core
+``scipy.special``, ``scipy.linalg`` and ``scipy.optimize`` costs about 0.5 s (``scipy.stats`` another 0.9 s) on a 2-core
 machine, which ``simlab --help``, ``simlab check`` and the first line of ``simlab run`` would
 otherwise pay before printing anything. The standard library's ``importlib.util.LazyLoader``
 (the recipe in the ``importlib`` documentation) gives a module object whose first attribute
@@ -30,3 +30,4 @@ def lazy_module(name: str):
 special = lazy_module("scipy.special")
 linalg = lazy_module("scipy.linalg")
 optimize = lazy_module("scipy.optimize")
+stats = lazy_module("scipy.stats")      # for stats.qmc: scipy.stats alone costs ~0.9 s

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..lazy import optimize
+
 __all__ = ["polish", "polish_block", "distinct_best", "separated_best"]
 
 
@@ -95,8 +97,7 @@ def polish(fg, starts, *, maxiter: int = 50) -> tuple[np.ndarray, np.ndarray]:
             return np.inf, np.zeros(q * d)
         return float(v.sum()), g.reshape(-1)
 
-    from scipy.optimize import minimize  # here, not at the top: reading a study needs no optimiser
-    res = minimize(total, starts.reshape(-1), jac=True, method="L-BFGS-B",
+    res = optimize.minimize(total, starts.reshape(-1), jac=True, method="L-BFGS-B",
                    bounds=[(0.0, 1.0)] * (q * d), options={"maxiter": maxiter})
     U = np.clip(res.x.reshape(q, d), 0.0, 1.0)
     v, _ = fg(U)

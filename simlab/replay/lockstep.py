@@ -62,9 +62,10 @@ from .trace import Trace, allocate, past_trials
 __all__ = ["run_block", "fits_lockstep"]
 
 
-def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float) -> bool:
-    """Whether campaigns of this policy can advance in lockstep."""
-    return policy.lockstep and batch == 1 and belief.refit_every == 0 and lost == 0.0
+def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float, library: bool = False) -> bool:
+    """Whether campaigns of this policy can advance in lockstep (a [candidates] library's campaigns
+    run one at a time: the block forms score a pool and polish, a library's rows are scored exactly)."""
+    return policy.lockstep and batch == 1 and belief.refit_every == 0 and lost == 0.0 and not library
 
 
 def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budget: int, rngs,

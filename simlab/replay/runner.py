@@ -70,8 +70,8 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     for spec in study.policies:
         probe = make_policy(spec)
         horizons = c.budgets if probe.horizon_aware else (c.horizon,)
-        together = (lockstep and study.space.library is None     # a library's campaigns run one at a time
-                    and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost))
+        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost,
+                                              library=study.space.library is not None)
         per: list[list[tuple[int, Trace]]] = [[] for _ in reps]
         for b in horizons:
             if together:

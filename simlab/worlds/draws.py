@@ -7,6 +7,8 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
+from ..lazy import stats
+
 from .functions import TestFunction
 from ..model.kernels import Kernel
 from ..model.optimize import polish
@@ -219,8 +221,7 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
         # the function as resolved at a box of this half-width (all of it without ``band``)
         return rank(U) if band is None else band(U, _BAND_RADIANS / float(np.min(half)))
 
-    from scipy.stats import qmc  # here, not at the top: scipy.stats takes ~0.9 s to import; reading a study needs none
-    U = qmc.Sobol(dim, seed=rng).random_base2(int(np.log2(plan.n_search)))
+    U = stats.qmc.Sobol(dim, seed=rng).random_base2(int(np.log2(plan.n_search)))
     if extra is not None:
         U = np.vstack([U, extra])
     half = plan.half.copy()

@@ -9,6 +9,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..lazy import stats
+
 from ..model.kernels import make_kernel
 from ..rng import stream
 from ..study.types import Prior, Study
@@ -69,8 +71,7 @@ def _uncertain(kernel, w, rng):
 def _sobol(d: int, n: int, rng) -> np.ndarray:
     # Draw a power of two and keep the first n points: prefixes of a scrambled Sobol'
     # sequence keep their low discrepancy and this avoids SciPy's balance warning.
-    from scipy.stats import qmc  # here, not at the top: scipy.stats takes ~0.9 s to import; reading a study needs none
-    return qmc.Sobol(d, seed=rng).random_base2(max(int(np.ceil(np.log2(max(n, 2)))), 1))[:n]
+    return stats.qmc.Sobol(d, seed=rng).random_base2(max(int(np.ceil(np.log2(max(n, 2)))), 1))[:n]
 
 
 @dataclass
@@ -135,8 +136,7 @@ def make_replicate(study: Study, r: int) -> Replicate:
     if c.design == "sobol":
         design = sequence[: c.initial]
     elif c.design == "lhs":
-        from scipy.stats import qmc
-        design = qmc.LatinHypercube(d, seed=rng).random(c.initial)
+        design = stats.qmc.LatinHypercube(d, seed=rng).random(c.initial)
     else:
         design = rng.random((c.initial, d))
     shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
