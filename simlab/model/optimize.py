@@ -98,7 +98,7 @@ def polish(fg, starts, *, maxiter: int = 50) -> tuple[np.ndarray, np.ndarray]:
         return float(v.sum()), g.reshape(-1)
 
     res = optimize.minimize(total, starts.reshape(-1), jac=True, method="L-BFGS-B",
-                   bounds=[(0.0, 1.0)] * (q * d), options={"maxiter": maxiter})
+                            bounds=[(0.0, 1.0)] * (q * d), options={"maxiter": maxiter})
     U = np.clip(res.x.reshape(q, d), 0.0, 1.0)
     v, _ = fg(U)
     v = np.asarray(v, dtype=float)

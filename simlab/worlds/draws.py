@@ -8,7 +8,6 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from ..lazy import stats
-
 from .functions import TestFunction
 from ..model.kernels import Kernel
 from ..model.optimize import polish

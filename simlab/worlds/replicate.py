@@ -10,7 +10,6 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..lazy import stats
-
 from ..model.kernels import make_kernel
 from ..rng import stream
 from ..study.types import Prior, Study
