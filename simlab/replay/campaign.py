@@ -20,7 +20,8 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                  sequence: np.ndarray, observe: Callable[[float, int], float], budget: int,
                  pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
                  history: tuple[np.ndarray, np.ndarray] | None = None,
-                 refit_rng: np.random.Generator | None = None, library: bool = False) -> Trace:
+                 refit_rng: np.random.Generator | None = None, library: bool = False,
+                 snap: Callable[[np.ndarray], np.ndarray] | None = None) -> Trace:
     """Replay one campaign.
 
     Parameters
@@ -47,6 +48,9 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         Stream for the random restarts of belief refits (``belief.refit_every > 0``).
     library : bool
         The pool is a [candidates] library: policies choose its rows (``Context.library``).
+    snap : callable, optional
+        Moves a chosen input to allowed values (``Space.snap``: stepped and categorical inputs)
+        before the world, the posterior and any pending-trial rule see it.
     """
     d = sequence.shape[1]
     H, yH = past_trials(history, d)
@@ -62,7 +66,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         rec[i] = seen[post.recommend()]
     for start in range(0, budget, batch):                  # one round of up to `batch` trials
         ts = range(start, min(start + batch, budget))
-        chosen = _fill_round(policy, post, ts, design)      # choose
+        chosen = _fill_round(policy, post, ts, design, snap)  # choose
         for t, u in zip(ts, chosen):
             i = h + t
             U[i], f[i] = u, world(u[None, :])[0]           # evaluate
@@ -97,16 +101,19 @@ def _refit(post: Posterior, rng: np.random.Generator) -> None:
     post.refit(type(kernel)(fit.lengthscale, fit.amplitude), fit.mean, fit.noise)
 
 
-def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray) -> list[np.ndarray]:
+def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray, snap=None) -> list[np.ndarray]:
     """Choose every trial of a round before any of its results is back."""
+    def pick(t):
+        u = np.asarray(design[t] if t < len(design) else policy.choose(post, t), dtype=float)
+        return u if snap is None else snap(u)
+
     if len(ts) == 1:                                       # nothing pending: no fantasies to undo
-        t = ts[0]
-        return [np.asarray(design[t] if t < len(design) else policy.choose(post, t), dtype=float)]
+        return [pick(ts[0])]
     chosen = []
     with post.fantasies():
         for k, t in enumerate(ts):
-            u = design[t] if t < len(design) else policy.choose(post, t)
-            chosen.append(np.asarray(u, dtype=float))
+            u = pick(t)
+            chosen.append(u)
             if k + 1 < len(ts):
                 policy.hold(post, u)                       # pending: believer, liar, penalizer...
     policy.release()

@@ -69,7 +69,7 @@ def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float, li
 
 
 def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budget: int, rngs,
-              history: tuple[np.ndarray, np.ndarray] | None = None) -> list[Trace]:
+              history: tuple[np.ndarray, np.ndarray] | None = None, snap=None) -> list[Trace]:
     """Replay one policy on a block of replicates in lockstep.
 
     Parameters
@@ -86,6 +86,8 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
         Each replicate's own stream for this policy.
     history : (ndarray (h, d), ndarray (h,)), optional
         Past trials shared by every replicate (first in every trace).
+    snap : callable, optional
+        Moves chosen inputs to allowed values (``Space.snap``), as in ``run_campaign``.
 
     Returns
     -------
@@ -111,6 +113,8 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
         for t in range(budget):
             i = h + t
             U[:, i] = design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block)   # choose
+            if snap is not None:
+                U[:, i] = snap(U[:, i])
             f[:, i] = worlds(U[:, i])                                                              # evaluate
             y[:, i] = observer.many(f[:, i], shocks[:, t], lost[:, t])                            # observe
             st.add(U[:, i], y[:, i])                                                               # update

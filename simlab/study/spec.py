@@ -739,19 +739,18 @@ class _Reader:
         return tuple(out)
 
 
-# Input kinds a study file may declare but some part of simlab cannot run yet (issue 15 lands them in
-# slices), and which parts those are. A study using one is refused as a whole, in one line, by
-# load_study: never run with a part that would treat a stepped or categorical input as a real number.
-NOT_YET: dict[str, str] = {
-    STEPPED: "the policies, the belief and the report",
-    CATEGORICAL: "the policies, the belief and the report",
-}
+# Rules that run over stepped and categorical inputs: those that score inputs through the posterior
+# mean and sd (the pool moved to allowed values, the continuous part polished within each point's
+# level combination), and those that draw from the space. The sampling rules (thompson, pbest, mes,
+# kg) draw posterior functions with random features of a stationary kernel and wait for the mixed
+# features (issue 15's next slice).
+MIXED_RULES = ("random", "sobol", "mean", "lcb", "pi", "ei", "gp-ucb", "hedge")
 # Rules that choose a library's rows (every row scored exactly, or drawn without replacement).
 LIBRARY_RULES = ("random", "sobol", "ei")
 
 
 def unsupported(study: Study) -> tuple[str, str] | None:
-    """(field, message) when the study uses an input kind some part of simlab does not support yet."""
+    """(field, message) when the study combines a space with a part of simlab that does not run on it yet."""
     space = study.space
     if space.library is not None:
         for i, p in enumerate(study.policies):
@@ -762,13 +761,15 @@ def unsupported(study: Study) -> tuple[str, str] | None:
                 return f"policy[{i}].exploit_last", "is not supported yet with a [candidates] library"
         if study.campaign.batch != 1:
             return "campaign.batch", "rounds of several trials are not supported yet with a [candidates] library"
-    for j in range(space.dim):
-        kind = space.kind(j)
-        if kind == STEPPED and space.library is not None:
-            continue    # a library's rows lie on the grid already: the prior at the rows needs no rounding
-        if kind in NOT_YET:
-            return f"space.{space.names[j]}", (f"{kind} inputs are not supported yet by {NOT_YET[kind]} (issue 15 is "
-                                                "landing in slices); the study file is valid but cannot run yet")
+    elif space.discrete:
+        kinds = " and ".join(sorted({space.kind(j) for j in space.discrete}))
+        for i, p in enumerate(study.policies):
+            if p.rule not in MIXED_RULES:
+                return f"policy[{i}].rule", (f"\"{p.rule}\" does not run over {kinds} inputs yet (issue 15 is landing "
+                                             f"in slices); there use {', '.join(MIXED_RULES)}")
+    if space.discrete and study.refit_every:
+        return "belief.refit_every", ("belief refits are not supported yet with stepped or categorical inputs "
+                                      "(the refit searches the lengthscales of a stationary kernel only)")
     return None
 
 

@@ -125,6 +125,33 @@ def _library_material(study: Study, r: int):
     return sequence[: study.campaign.initial], sequence, rows
 
 
+def _discrete_pool(study: Study, rng) -> np.ndarray:
+    """The candidate pool over a space with stepped or categorical inputs: the scrambled Sobol'
+    points moved to allowed values (:meth:`Space.snap`), so each level combination is scored on
+    about pool / K points and polishing moves the continuous inputs within it.
+
+    With no continuous input the space is a finite grid: every point when it has at most ``pool``
+    of them (scored exactly, the same for every replicate), otherwise ``pool`` distinct points
+    taken from ever longer Sobol' prefixes (snapped points repeat, and a repeat is scored twice
+    for nothing). A continuous coordinate of a scrambled Sobol' set never repeats, so there the
+    snapped points are distinct already.
+    """
+    space, m = study.space, study.campaign.pool
+    if len(space.discrete) < space.dim:
+        return space.snap(_sobol(space.dim, m, rng))
+    grids = [space.grid(j) for j in range(space.dim)]
+    if np.prod([len(g) for g in grids], dtype=float) <= m:
+        return np.stack(np.meshgrid(*grids, indexing="ij"), axis=-1).reshape(-1, space.dim)
+    seed = rng.integers(2**63)
+    n = m
+    while True:
+        P = space.snap(_sobol(space.dim, n, np.random.default_rng(seed)))
+        _, first = np.unique(P, axis=0, return_index=True)
+        if len(first) >= m:
+            return P[np.sort(first)[:m]]
+        n *= 2
+
+
 def make_replicate(study: Study, r: int) -> Replicate:
     d, c = study.space.dim, study.campaign
     B = c.horizon
@@ -141,6 +168,10 @@ def make_replicate(study: Study, r: int) -> Replicate:
     shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
     if study.space.library is not None:
         design, sequence, pool = _library_material(study, r)
+    elif study.space.discrete:
+        # stepped and categorical inputs take allowed values only (each equally likely from a uniform draw)
+        design, sequence = study.space.snap(design), study.space.snap(sequence)
+        pool = _discrete_pool(study, stream(study.seed, r, "pool"))
     else:
         pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
     return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,
