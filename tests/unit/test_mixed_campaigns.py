@@ -3,7 +3,6 @@ from a uniform draw), the pool covers the space, lockstep and one-at-a-time repl
 beats random search on worlds drawn from its own prior."""
 
 import numpy as np
-import pytest
 from scipy import stats
 
 from simlab.replay.runner import replay_replicate
