@@ -58,6 +58,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=n + batch)
     policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post, library=library))
     U, y, f, rec = allocate(n, d)
+    rows = {np.ascontiguousarray(r).tobytes() for r in pool} if library else None   # every trial must be a row
     seen: list[int] = []                                   # trace rows the posterior has observed
     for i in range(h):                                     # past trials, already observed
         U[i], y[i], f[i] = H[i], yH[i], world(H[i : i + 1])[0]
@@ -68,6 +69,8 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         ts = range(start, min(start + batch, budget))
         chosen = _fill_round(policy, post, ts, design, snap)  # choose
         for t, u in zip(ts, chosen):
+            if library and u.tobytes() not in rows:
+                raise RuntimeError(f"policy {policy.label!r} chose an input that is not a row of the library: {u}")
             i = h + t
             U[i], f[i] = u, world(u[None, :])[0]           # evaluate
             y[i] = observe(f[i], t)

@@ -739,14 +739,12 @@ class _Reader:
         return tuple(out)
 
 
-# Rules that run over stepped and categorical inputs: those that score inputs through the posterior
-# mean and sd (the pool moved to allowed values, the continuous part polished within each point's
-# level combination), and those that draw from the space. The sampling rules (thompson, pbest, mes,
-# kg) draw posterior functions with random features of a stationary kernel and wait for the mixed
-# features (issue 15's next slice).
-MIXED_RULES = ("random", "sobol", "mean", "lcb", "pi", "ei", "gp-ucb", "hedge")
+# Rules that run over stepped and categorical inputs: every rule (the pool moved to allowed values,
+# the continuous part polished within each point's level combination; posterior samples drawn with
+# the mixed random features, simlab.worlds.mixed.MixedFeatureSample).
+MIXED_RULES = ("random", "sobol", "mean", "lcb", "pi", "ei", "gp-ucb", "hedge", "thompson", "pbest", "mes", "kg")
 # Rules that choose a library's rows (every row scored exactly, or drawn without replacement).
-LIBRARY_RULES = ("random", "sobol", "ei")
+LIBRARY_RULES = ("random", "sobol", "ei", "pi", "lcb", "mean", "gp-ucb", "hedge", "thompson", "pbest", "mes", "kg")
 
 
 def unsupported(study: Study) -> tuple[str, str] | None:

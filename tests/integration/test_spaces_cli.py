@@ -9,11 +9,10 @@ CATEGORICAL = SMALL.replace("dose = [0.0, 1.0]", 'dose = [0.0, 1.0]\nwashes = { 
     "lengthscale = 0.2\n", "lengthscale = [0.2, 2.0]\nlevel_correlation = 0.3\n")
 
 
-def test_bad_step_and_unsupported_rule_write_nothing(tmp_path):
+def test_bad_step_correlation_and_unsupported_refit_write_nothing(tmp_path):
     for text, words in [
         (SMALL.replace("dose = [0.0, 1.0]", "dose = { low = 0, high = 1, step = 0.3 }"), "space.dose.step"),
-        (CATEGORICAL + '[[policy]]\nrule = "thompson"\n',
-         'policy[2].rule: "thompson" does not run over categorical and stepped inputs yet'),
+        (CATEGORICAL.replace("level_correlation = 0.3", "level_correlation = -0.6"), "world.level_correlation"),
         (CATEGORICAL.replace("[campaign]", "[belief]\nrefit_every = 2\n[campaign]"), "belief.refit_every"),
     ]:
         (tmp_path / "s.toml").write_text(text, encoding="utf-8")
