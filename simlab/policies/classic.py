@@ -10,7 +10,7 @@ from ..lazy import special
 from ..model.gp import matvec
 from ..worlds.draws import feature_values
 from ..worlds.mixed import MixedFeatureSample, feature_sample
-from .base import Acquisition, Option, Policy, _best_polished, _lowest_mean_block
+from .base import Acquisition, Option, Policy, _best_polished, _lowest_mean_block, best_row
 from .logei import dlog_h, log_h
 
 __all__ = ["RandomSearch", "SobolSearch", "PosteriorMean", "ConfidenceBound", "ProbabilityOfImprovement",
@@ -25,14 +25,21 @@ class RandomSearch(Policy):
     lockstep = True
 
     def choose(self, post, t):
-        if self.ctx.library:   # a row not yet evaluated in this campaign, uniformly; any row once all are
-            free = np.flatnonzero(~self.ctx.evaluated_rows(post))
-            rows = free if free.size else np.arange(len(self.ctx.pool))
-            return self.ctx.pool[rows[self.ctx.rng.integers(rows.size)]].copy()
+        if self.ctx.library:
+            return self.choose_block(post, t, self.ctx.block())[0]
         return self.ctx.rng.random(self.ctx.pool.shape[1])
 
     def choose_block(self, st, t, block):
-        return np.stack([rng.random(st.pools.shape[2]) for rng in block.rngs])
+        if block.library is None:
+            return np.stack([rng.random(st.pools.shape[2]) for rng in block.rngs])
+        # a row not yet evaluated in this campaign, uniformly; any row once all are
+        seen, m = block.evaluated(st), len(block.library)
+        out = []
+        for b, rng in enumerate(block.rngs):
+            free = np.flatnonzero(~seen[b])
+            rows = free if free.size else np.arange(m)
+            out.append(block.library[rows[rng.integers(rows.size)]])
+        return np.array(out)
 
 
 class SobolSearch(Policy):
@@ -342,7 +349,8 @@ class ThompsonSampling(Acquisition):
                 dg = dg + np.stack([matvec(dj, beta) for dj in dK], axis=-1)
             return g, dg
 
-        chosen = _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations)
+        chosen = (best_row(st, block, values) if block.library is not None else
+                  _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations))
         self._beta, self._ranked = beta, values      # kept for score() and the tests
         return chosen
 
@@ -384,7 +392,8 @@ class ThompsonSampling(Acquisition):
                 dg = dg + np.stack([matvec(dj, beta) for dj in dK], axis=-1)
             return g, dg
 
-        chosen = _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations)
+        chosen = (best_row(st, block, values) if block.library is not None else
+                  _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations))
         self._beta, self._ranked = beta, values
         return chosen
 
@@ -412,12 +421,7 @@ class ThompsonSampling(Acquisition):
         eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
         r = post.y - self.sample(post.X) - eps
         self.beta = post.solve(r)
-        # a library's rows: only the plausible ones are evaluated (100,000 rows would take seconds per
-        # trial; the rest can hold the sample's minimum only 5 sd off the mean, as in choose_block)
-        rows = np.flatnonzero(self._plausible(post)[0]) if self.ctx.library else np.arange(len(self.ctx.pool))
-        self._pool_values = np.full(len(self.ctx.pool), np.inf)
-        prior = self.sample.values32 if self.ctx.library else self.sample    # rows ranked in float32
-        self._pool_values[rows] = prior(self.ctx.pool[rows]) + post.pool_cross(r)[rows]
+        self._pool_values = self.sample(self.ctx.pool) + post.pool_cross(r)
 
     def score_pool(self, post):
         return -self._pool_values

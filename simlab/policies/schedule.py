@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Acquisition, Block, Option, Policy
+from .base import Acquisition, Option, Policy
 from .classic import ConfidenceBound, ExpectedImprovement, ProbabilityOfImprovement
 
 __all__ = ["GPUCB", "GPHedge", "gp_ucb_beta"]
@@ -141,19 +141,15 @@ class GPHedge(Policy):
             self.nominees = []
 
     def choose(self, post, t):
-        block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
-        if self.ctx.library:             # each member nominates one of the library's rows its own way
-            return self.choose_block(post, t, block, nominate=lambda m: m.choose(post, t)[None])[0]
-        return self.choose_block(post, t, block)[0]
+        return self.choose_block(post, t, self.ctx.block())[0]
 
-    def choose_block(self, st, t, block, nominate=None):
+    def choose_block(self, st, t, block):
         if getattr(self, "gains", None) is None or len(self.gains) != st.size:
             self._begin(st.size)
         if not self._holding:            # first choice of a round: the last round's results are in
             self.collect(st)
             self._n_seen = st.n
-        nominate = nominate or (lambda m: m.choose_block(st, t, block))
-        nominees = np.stack([nominate(m) for m in self.members], axis=1)   # (B, M, d)
+        nominees = np.stack([m.choose_block(st, t, block) for m in self.members], axis=1)   # (B, M, d)
         self.picked = self.pick(block.rngs)
         self._chose_last = True
         self.nominees.append(nominees)

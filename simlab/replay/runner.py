@@ -74,14 +74,13 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     for spec in study.policies:
         probe = make_policy(spec)
         horizons = c.budgets if probe.horizon_aware else (c.horizon,)
-        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost,
-                                              library=study.space.library is not None)
+        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost)
         per: list[list[tuple[int, Trace]]] = [[] for _ in reps]
         for b in horizons:
             if together:
                 rngs = [stream(study.seed, rep.index, "policy", spec.label) for rep in reps]
                 traces = run_block(make_policy(spec), belief, reps, observer=observer, budget=b, rngs=rngs,
-                                   history=history, snap=_snap(study))
+                                   history=history, snap=_snap(study), library=study.space.library is not None)
             else:
                 traces = [_alone(study, spec, belief, observer, history, rep, b) for rep in reps]
             for k, trace in enumerate(traces):

@@ -220,11 +220,14 @@ class SnapshotFigure(Figure):
                 "the next input each policy would choose, and where posterior function samples put the best "
                 "input. "
                 + ("With more than one input this is a slice through the current recommendation along the "
-                   "first input (the other inputs held at the values in the title): the recommended trial lies "
+                   "first input with a range (the other inputs held at the values in the title): the recommended "
+                   "trial lies "
                    "on it, and the other trials, run elsewhere, are drawn in grey at their coordinate on this "
                    "input with the value observed there (projected), so they need not sit near the curves. "
                    if study.space.dim > 1 else "")
-                + ("The model shown is the study's stated belief, before any refit." if study.refit_every else ""))
+                + ("The model shown is the study's stated belief, before any refit." if study.refit_every else "")
+                + (" The slice runs between the library's rows: the curves show the belief and the prior's world "
+                   "there, but every trial is one of the rows." if study.space.library is not None else ""))
 
     def draw(self, given):
         from .snapshot import snapshot_figure

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import textwrap
+
 __all__ = ["snapshot_figure"]
 
 from dataclasses import dataclass
@@ -313,7 +315,8 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     if not snap.fixed:
         top.plot([snap.best_x], [snap.best_y], ls="none", marker="*", ms=13, color="#E69F00", mec="#000000",
                  mew=0.6, label="true best input", gid="true-best")
-    top.set_ylabel(f"objective, {unit_label(study)} ({goal})")
+    ylabel = f"objective, {unit_label(study)} ({goal})"
+    top.set_ylabel(ylabel if len(ylabel) <= 30 else ylabel.replace(" (", "\n(", 1))   # long units: two lines
     top.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=8.5)
 
     for label in labels:
@@ -384,8 +387,12 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         held = ", ".join(f"{display_label(k)} = {v if isinstance(v, str) else format(v, '.4g')}"
                          for k, v in snap.fixed.items())
         title += f"; slice at {held}"
-    # over the whole width (the legends take the right of every panel), on one line
-    fig.suptitle(title, fontsize=10, x=0.01, ha="left")
+    # over the whole width (the legends take the right of every panel); a long slice (several held
+    # inputs) breaks after the "when" part rather than running off the figure
+    if len(title) > 110 and "; slice at " in title:
+        title = title.replace("; slice at ", ";\nslice at ", 1)
+    fig.suptitle(textwrap.fill(title, 120, replace_whitespace=False) if len(title) > 240 else title,
+                 fontsize=10, x=0.01, ha="left")
     return fig
 
 

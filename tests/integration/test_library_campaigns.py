@@ -141,3 +141,21 @@ def test_a_trial_off_the_library_is_refused_by_the_campaign_loop(tmp_path):
     with pytest.raises(RuntimeError, match="not a row of the library"):
         run_campaign(Centre(), make_belief(s), rep.world, design=rep.design, sequence=rep.sequence,
                      observe=lambda f, t: f, budget=4, pool=rep.pool, rng=np.random.default_rng(0), library=True)
+
+
+@pytest.mark.parametrize("noise", [0.0, 0.1])
+def test_library_campaigns_in_lockstep_match_one_at_a_time(tmp_path, noise):
+    # lockstep covers libraries: the block code scores every row, as each campaign does alone
+    import numpy as np
+    from simlab.replay.runner import replay_replicate
+    rules = ["ei", "pi", "lcb", "mean", "gp-ucb", "hedge", "thompson", "mes", "kg", "random", "sobol"]
+    policies = "".join(f'[[policy]]\nrule = "{r}"\n' for r in rules)
+    (tmp_path / "feeds.csv").write_text(ROWS, encoding="utf-8")
+    text = STUDY.split("[[policy]]")[0].replace("replicates = 20", "replicates = 2").replace(
+        "noise = 0.0", f"noise = {noise}") + policies
+    (tmp_path / "s.toml").write_text(text, encoding="utf-8")
+    s = load_study(tmp_path / "s.toml")
+    for r in range(2):
+        a, b = replay_replicate(s, r, lockstep=True), replay_replicate(s, r, lockstep=False)
+        np.testing.assert_array_equal(a[["feed_rate", "temp", "y", "regret"]].to_numpy(),
+                                      b[["feed_rate", "temp", "y", "regret"]].to_numpy())
