@@ -127,6 +127,7 @@ def _brute_minimum(world, sp, n=4001):
     return best
 
 
+@pytest.mark.slow
 def test_conditioned_optimum_is_not_missed(tmp_path):
     """A past trial far below the prior (mean - 4 amplitudes) puts the optimum where the prior draw alone
     has none. The combination-by-combination search of the conditioned world must reach a dense grid's
@@ -222,3 +223,12 @@ def test_a_past_trial_off_the_library_names_its_row(tmp_path):
                           "library.csv"), msg
     out = one_line(simlab("check", "s.toml", cwd=tmp_path))
     assert "row 3 (the header is row 1): (filler = 1.5, binder = gum, layers = 3) is not a row" in out
+
+
+def test_results_folder_keeps_the_mixed_history(tmp_path):
+    """The results folder's study.toml and its copy of the past trials read back to the same study."""
+    from simlab import load_results, run_study
+    s = dataclasses.replace(load_study(write(tmp_path)), replicates=1)
+    run_study(s, out=tmp_path / "out")
+    (tmp_path / "past.csv").unlink()                       # the original moves away
+    assert load_results(tmp_path / "out").study == s
