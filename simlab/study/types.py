@@ -227,13 +227,16 @@ class Space:
             return (np.arange(L) + 0.5) / L
         raise ValueError(f"input {self.names[j]!r} is {self.kind(j)}: it has no grid")
 
-    def library_unit(self) -> np.ndarray:
-        """The library's rows on the unit cube, shape (n, d)."""
+    def library_user(self) -> np.ndarray:
+        """The library's rows as user values (n, d), a categorical input's level names as level indices."""
         if self.library is None:
             raise ValueError("this space has no library")
-        X = np.array([[self.levels[j].index(v) if self.kind(j) == CATEGORICAL else v
-                       for j, v in enumerate(row)] for row in self.library.rows], dtype=float)
-        return self.to_unit(X)
+        return np.array([[self.levels[j].index(v) if self.kind(j) == CATEGORICAL else v
+                          for j, v in enumerate(row)] for row in self.library.rows], dtype=float)
+
+    def library_unit(self) -> np.ndarray:
+        """The library's rows on the unit cube, shape (n, d)."""
+        return self.to_unit(self.library_user())
 
 
 @dataclass(frozen=True)

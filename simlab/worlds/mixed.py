@@ -9,10 +9,11 @@ import numpy as np
 
 from ..model.levels import MixedKernel, level_matrix, mixed_kernel
 from ..study.types import CATEGORICAL, STEPPED, Space
-from .draws import FeatureSample, World, find_minimum
+from .draws import ConditionedWorld, FeatureSample, World, find_minimum
 
-__all__ = ["MixedWorld", "LibraryWorld", "MixedFeatureSample", "feature_sample", "make_mixed_world", "needs_mixed",
-           "discrete_combinations", "MAX_SEARCHED", "MAX_ENUMERATED"]
+__all__ = ["MixedWorld", "ConditionedMixedWorld", "LibraryWorld", "MixedFeatureSample", "feature_sample",
+           "make_mixed_world", "search_combinations", "needs_mixed", "discrete_combinations", "MAX_SEARCHED",
+           "MAX_ENUMERATED"]
 
 # Level-and-step combinations whose continuous part gets its own optimum search: each search costs
 # about as much as one box world's, so more than this would make a replicate's optimum the run.
@@ -119,49 +120,108 @@ class MixedWorld(World):
         return f, fg, dims
 
     def optimum(self, rng: np.random.Generator) -> tuple[np.ndarray, float]:
-        """The minimiser (d,) and minimum over every level combination and stepped value.
+        """The minimiser (d,) and minimum over every level combination and stepped value
+        (:func:`search_combinations`)."""
+        return search_combinations(self, rng)
 
-        Without continuous inputs every allowed point is evaluated (at most ``MAX_ENUMERATED``).
-        Otherwise each of the (at most ``MAX_SEARCHED``) combinations of levels and stepped values
-        gets the continuous search :func:`simlab.worlds.draws.find_minimum`, at the world's
-        roughness, and the best is kept: a missed optimum makes regret too small, so every
-        combination is searched, none sampled.
-        """
-        sp = self.space
-        discrete = [j for j in range(sp.dim) if sp.kind(j) in (STEPPED, CATEGORICAL)]
-        continuous = [j for j in range(sp.dim) if j not in discrete]
-        grids = [sp.grid(j) for j in discrete]
-        total = discrete_combinations(sp)
-        if not continuous:
-            if total > MAX_ENUMERATED:
-                raise ValueError(f"{total} allowed points: more than the {MAX_ENUMERATED} enumerated exactly")
-            best_u, best_v = None, np.inf
-            combos = itertools.product(*grids)
-            while True:
-                block = np.array(list(itertools.islice(combos, _CHUNK)))
-                if not len(block):
-                    break
-                v = self(block)
-                i = int(np.argmin(v))
-                if v[i] < best_v:
-                    best_u, best_v = block[i].copy(), float(v[i])
-            return best_u, best_v
-        if total > MAX_SEARCHED:
-            raise ValueError(f"{total} combinations of levels and stepped values: more than the {MAX_SEARCHED} "
-                             "searched one by one")
-        pos = {j: i for i, j in enumerate(self.numeric)}
-        ls = self.kernel.lengthscale[[pos[j] for j in continuous]]
+
+class ConditionedMixedWorld(ConditionedWorld):
+    """A :class:`MixedWorld` updated pathwise to agree with past trials (Matheron's rule, as
+    :class:`simlab.worlds.draws.ConditionedWorld` does for boxes).
+
+    ``g(u) = f(u) + k(u, H) beta`` with ``beta = (K_HH + s2 I)^-1 (y_H - f(H) - eps)`` and ``k`` the
+    product kernel the world was drawn from: an exact draw of the prior conditioned on the trials
+    when ``f`` is one (Wilson et al. 2020, ICML). Within one level combination the correction is a
+    smooth function of the continuous inputs, so the optimum is searched as the world's own, one
+    combination at a time with the correction included (:func:`search_combinations`).
+    """
+
+    def __init__(self, base: MixedWorld, kernel: MixedKernel, H, yH, noise: float, rng: np.random.Generator):
+        super().__init__(base, kernel, H, yH, noise, rng)
+        self.space, self.shape, self.numeric = base.space, base.shape, base.numeric
+
+    def grad(self, U):     # pragma: no cover - the search uses combination_function
+        raise NotImplementedError("a mixed world's gradient is taken within one level combination")
+
+    def combination(self, U) -> np.ndarray:
+        return self.base.combination(U)
+
+    def combination_function(self, c: int, fixed):
+        """As :meth:`MixedWorld.combination_function`, with the correction to the past trials added."""
+        f0, fg0, dims = self.base.combination_function(c, fixed)
+        template = np.zeros(self.space.dim)
+        template[self.numeric] = np.nan_to_num(np.asarray(fixed, dtype=float))
+        if self.shape:
+            for j, level in zip(self.kernel.cats, np.unravel_index(c, self.shape)):
+                template[j] = (level + 0.5) / len(self.space.levels[j])
+        where = self.numeric[dims]                      # the continuous inputs' positions in the space
+        H, beta, kernel = self.H, self.beta, self.kernel
+
+        def full(X):
+            U = np.repeat(template[None], len(X), axis=0)
+            U[:, where] = X
+            return U
+
+        def f(X):
+            X = np.atleast_2d(X)
+            return f0(X) + kernel(full(X), H) @ beta
+
+        def fg(X):
+            X = np.atleast_2d(X)
+            v, g = fg0(X)
+            K, grads = kernel.stacked_grad(full(X), H)
+            return v + K @ beta, g + np.stack([grads[j] @ beta for j in where], axis=-1)
+
+        return f, fg, dims
+
+    def optimum(self, rng: np.random.Generator) -> tuple[np.ndarray, float]:
+        return search_combinations(self, rng)
+
+
+def search_combinations(world, rng: np.random.Generator) -> tuple[np.ndarray, float]:
+    """The minimiser (d,) and minimum of a mixed world over every level combination and stepped value.
+
+    Without continuous inputs every allowed point is evaluated (at most ``MAX_ENUMERATED``).
+    Otherwise each of the (at most ``MAX_SEARCHED``) combinations of levels and stepped values
+    gets the continuous search :func:`simlab.worlds.draws.find_minimum` of
+    ``world.combination_function``, at the world's roughness, and the best is kept: a missed
+    optimum makes regret too small, so every combination is searched, none sampled.
+    """
+    sp = world.space
+    discrete = [j for j in range(sp.dim) if sp.kind(j) in (STEPPED, CATEGORICAL)]
+    continuous = [j for j in range(sp.dim) if j not in discrete]
+    grids = [sp.grid(j) for j in discrete]
+    total = discrete_combinations(sp)
+    if not continuous:
+        if total > MAX_ENUMERATED:
+            raise ValueError(f"{total} allowed points: more than the {MAX_ENUMERATED} enumerated exactly")
         best_u, best_v = None, np.inf
-        for values in itertools.product(*grids):
-            u = np.full(sp.dim, np.nan)
-            u[discrete] = values
-            c = int(self.combination(u[None])[0]) if self.shape else 0
-            f, fg, dims = self.combination_function(c, u[self.numeric])
-            uc, v = find_minimum(f, fg, len(dims), rng, lengthscale=ls, nu=self.kernel.nu)
-            if v < best_v:
-                u[continuous] = uc
-                best_u, best_v = u, float(v)
+        combos = itertools.product(*grids)
+        while True:
+            block = np.array(list(itertools.islice(combos, _CHUNK)))
+            if not len(block):
+                break
+            v = world(block)
+            i = int(np.argmin(v))
+            if v[i] < best_v:
+                best_u, best_v = block[i].copy(), float(v[i])
         return best_u, best_v
+    if total > MAX_SEARCHED:
+        raise ValueError(f"{total} combinations of levels and stepped values: more than the {MAX_SEARCHED} "
+                         "searched one by one")
+    pos = {j: i for i, j in enumerate(world.numeric)}
+    ls = world.kernel.lengthscale[[pos[j] for j in continuous]]
+    best_u, best_v = None, np.inf
+    for values in itertools.product(*grids):
+        u = np.full(sp.dim, np.nan)
+        u[discrete] = values
+        c = int(world.combination(u[None])[0]) if world.shape else 0
+        f, fg, dims = world.combination_function(c, u[world.numeric])
+        uc, v = find_minimum(f, fg, len(dims), rng, lengthscale=ls, nu=world.kernel.nu)
+        if v < best_v:
+            u[continuous] = uc
+            best_u, best_v = u, float(v)
+    return best_u, best_v
 
 
 class MixedFeatureSample:
@@ -317,15 +377,27 @@ class LibraryWorld(World):
         return self.rows[i].copy(), float(self._values[i])
 
 
-def make_mixed_world(study, kernel_prior, mean: float, rng: np.random.Generator, n_freq: int) -> World:
-    """The replicate's world over a mixed space (internal orientation, unit cube)."""
+def make_mixed_world(study, kernel_prior, mean: float, rng: np.random.Generator, n_freq: int, *,
+                     history=None, noise: float = 0.0) -> World:
+    """The replicate's world over a mixed space (internal orientation, unit cube).
+
+    ``history`` (past inputs (h, d) on the unit cube, observations (h,) in the internal orientation):
+    the draw is conditioned on them pathwise, with observation noise sd ``noise``, before a library
+    sees it at its rows, exactly as a box world is (:class:`ConditionedWorld`).
+    """
     space = study.space
     if space.categorical or any(space.kind(j) == STEPPED for j in range(space.dim)):
-        base = MixedWorld(mixed_kernel(kernel_prior, space), mean, rng, n_freq)
+        kernel = mixed_kernel(kernel_prior, space)
+        base = MixedWorld(kernel, mean, rng, n_freq)
+        if history is not None:
+            base = ConditionedMixedWorld(base, kernel, *history, noise, rng)
     else:
         from ..worlds.draws import FeatureWorld
         from .replicate import unit_kernel
-        base = FeatureWorld(unit_kernel(kernel_prior, study), mean, rng, n_freq)
+        kernel = unit_kernel(kernel_prior, study)
+        base = FeatureWorld(kernel, mean, rng, n_freq)
+        if history is not None:
+            base = ConditionedWorld(base, kernel, *history, noise, rng)
     if space.library is not None:
         return LibraryWorld(base, space.library_unit())
     return base

@@ -35,7 +35,7 @@ def make_world(study: Study, replicate: int) -> World:
         return FunctionWorld(functions.FUNCTIONS[w.function])
     if needs_mixed(study.space):   # stepped or categorical inputs, or a library (simlab.worlds.mixed)
         return make_mixed_world(study, w.prior, study.sign * w.prior.mean, stream(study.seed, replicate, "world"),
-                                dict(w.method_settings)["features"])
+                                dict(w.method_settings)["features"], history=history_arrays(study), noise=w.noise)
     kernel = unit_kernel(w.prior, study)
     if w.lengthscale_within != 1.0 or w.amplitude_within != 1.0:
         kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
@@ -52,7 +52,13 @@ def history_arrays(study: Study) -> tuple[np.ndarray, np.ndarray] | None:
     """Past trials on the unit cube and in the internal orientation, or None."""
     if study.history is None:
         return None
-    return study.space.to_unit(np.array(study.history.X)), study.sign * np.array(study.history.y)
+    space, X = study.space, np.array(study.history.X)
+    if space.library is not None:
+        # every past trial is one of the library's rows (spec.py checked and copied its values): take
+        # that row's own unit-cube point, so the policies and the world see it as that row, bit for bit
+        rows = {tuple(r): i for i, r in enumerate(space.library_user())}
+        return space.library_unit()[[rows[tuple(x)] for x in X]], study.sign * np.array(study.history.y)
+    return space.to_unit(X), study.sign * np.array(study.history.y)
 
 
 def _uncertain(kernel, w, rng):

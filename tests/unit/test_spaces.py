@@ -260,10 +260,11 @@ def test_library_with_a_categorical_column_not_runnable_yet_is_refused(tmp_path)
         load_study(write(tmp_path, LIBRARY_TOML))
 
 
-def test_history_refused_with_stepped_inputs(tmp_path):
-    write(tmp_path, "cooling_rate,stages,seed_load,solvent,y\n", "past.csv")
-    with pytest.raises(StudyError, match=r"\[history\]: past trials are not supported yet"):
-        load_study(write(tmp_path, MIXED + '\n[history]\nfile = "past.csv"\n'), runnable=False)
+def test_history_reads_stepped_and_categorical_inputs(tmp_path):
+    """Past trials over this space read (tests/integration/test_mixed_history.py checks them in full)."""
+    write(tmp_path, "cooling_rate,stages,seed_load,solvent,y\n0.5,2,0.1,water,9.0\n", "past.csv")
+    s = load_study(write(tmp_path, MIXED + '\n[history]\nfile = "past.csv"\n'))
+    assert s.history.X == ((0.5, 2.0, 0.1, 2.0),) and round_trip(s, tmp_path) == s
 
 
 LOG_STUDY = {
