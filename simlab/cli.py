@@ -237,8 +237,9 @@ def _calibrate(args) -> int:
         check_new_file(args.study, force=args.force)   # refuse before the fit, not after it
     inputs = [s.strip() for s in args.inputs.split(",")] if args.inputs else None
     try:
+        stepped = _stepped(args.stepped, args.data)
         cal = calibrate(args.data, response=args.response, inputs=inputs, kernel=args.kernel,
-                        goal=args.goal, restarts=args.restarts, seed=args.seed)
+                        goal=args.goal, restarts=args.restarts, seed=args.seed, stepped=stepped)
     except DataError as exc:
         print(f"simlab: error: {exc}", file=sys.stderr)
         return 2
@@ -256,6 +257,25 @@ def _calibrate(args) -> int:
           "campaign, target and policies (marked guessed: review them)")
     print(f"next: simlab check {path}; simlab run {path}; simlab plan {path}")
     return 0
+
+
+def _stepped(text, data):
+    """``--stepped a,b=0.5`` -> {"a": None, "b": 0.5}; a malformed entry is a DataError naming the option."""
+    from .study.data import DataError
+    out = {}
+    for item in (text or "").split(","):
+        if not item.strip():
+            continue
+        name, _, step = (part.strip() for part in item.partition("="))
+        if not step:
+            out[name] = None
+            continue
+        try:
+            out[name] = float(step)
+        except ValueError:
+            raise DataError(str(data), f"--stepped {item.strip()}: the step must be a number, e.g. "
+                            f"--stepped {name}=1") from None
+    return out
 
 
 def _new(args) -> int:

@@ -43,6 +43,12 @@ trials per input), [target] and set of policies, every guessed value commented:
 
   simlab calibrate configs/fermentation-runs.csv --response titre --goal maximize --study ferment.toml
   simlab calibrate runs.csv --response yield --study continue.toml --history
+
+A column of text (solvent names, say) is a categorical input: its levels are the names in order
+of first appearance, and one level correlation per such input is fitted with the rest. Whole-number
+columns stay continuous unless named in --stepped:
+
+  simlab calibrate crystals.csv --response purity --stepped stages --study seeding.toml
 """
 
 
@@ -162,12 +168,17 @@ def build_parser() -> argparse.ArgumentParser:
 
     cal = sub.add_parser("calibrate", help="fit a world prior to past runs (prints TOML)",
                          description="Fit Gaussian-process hyperparameters (lengthscale per input, amplitude, "
-                         "constant mean, noise) to a CSV of past runs by maximum marginal likelihood, and "
+                         "constant mean, noise, a level correlation per text column) to a CSV of past runs by maximum marginal likelihood, and "
                          "print [space] and [world] tables for a study.",
                          epilog=_EPILOG_CALIBRATE, formatter_class=argparse.RawDescriptionHelpFormatter)
     cal.add_argument("data", metavar="DATA.csv")
     cal.add_argument("--response", required=True, metavar="COLUMN", help="column holding the measured response")
-    cal.add_argument("--inputs", metavar="A,B,...", help="input columns (default: every other numeric column)")
+    cal.add_argument("--inputs", metavar="A,B,...",
+                     help="input columns (default: every other numeric column, and every text column in which a "
+                     "name repeats); a text column is a categorical input, its levels in order of first appearance")
+    cal.add_argument("--stepped", metavar="A[=STEP],...",
+                     help="numeric input columns to write as stepped inputs, each with its step (default: the "
+                     "smallest gap between its values); other columns stay continuous")
     cal.add_argument("--kernel", default="matern52", choices=[*_kernel_names(), "auto"],
                      help="kernel family, or auto to compare all by leave-one-out (default matern52)")
     cal.add_argument("--goal", default="minimize", choices=["minimize", "maximize"],

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["BAND", "placement_table", "own_trials", "edge_flags", "effective_trials"]
+__all__ = ["BAND", "placement_table", "own_trials", "edge_flags", "effective_trials", "box_view"]
 
 import numpy as np
 import pandas as pd
@@ -18,6 +18,25 @@ BAND = 0.01
 # Inputs come back from the unit cube in user units (low + u * range), which moves a point
 # placed exactly on the band's edge by a few ulps; this much of the range absorbs that.
 _ROUNDING = 1e-9
+
+
+def box_view(traces, space):
+    """The inputs that have a boundary, for :func:`placement_table`: (frame, names, low, high).
+
+    Only continuous and log inputs have one (a stepped input's ends are two of its few values,
+    and a categorical input has no order). A log input is measured in ``log x``, where its prior
+    is stationary, so "within 1 % of a bound" means 1 % of its log range.
+    """
+    from ..study.types import LOG
+    names = [space.names[j] for j in space.numeric if j not in space.discrete]
+    logs = [space.names[j] for j in range(space.dim) if space.kind(j) == LOG]
+    view = traces.copy() if logs else traces
+    for name in logs:
+        view[name] = np.log(pd.to_numeric(view[name]))
+    bounds = {space.names[j]: (space.low[j], space.high[j]) for j in range(space.dim)}
+    low = [np.log(bounds[n][0]) if n in logs else bounds[n][0] for n in names]
+    high = [np.log(bounds[n][1]) if n in logs else bounds[n][1] for n in names]
+    return view, names, low, high
 
 
 def own_trials(traces):

@@ -212,6 +212,8 @@ class Stack:
         ``kernel.stacked`` with the pools' scaled coordinates cached and passes done in place
         (this is the costliest step of a lockstep trial after the pool scores)."""
         kernel = self.kernel
+        if not hasattr(kernel, "cov_from_sq"):     # not stationary in every input (levels.MixedKernel)
+            return kernel.stacked(xs[:, None, :], self.pools)[:, 0, :]
         if self._scaled_for is not kernel:
             self._scaled = [np.ascontiguousarray(self.pools[..., j] / lj) for j, lj in enumerate(kernel.lengthscale)]
             self._scaled_for = kernel

@@ -141,6 +141,11 @@ class MixedKernel:
                     grads[j] = self.variance * factor * gb[i]
         return K, grads
 
+    def grad(self, A, B) -> np.ndarray:
+        """Gradient of ``k(a, b)`` in ``a``, shape (n, m, d) (0 in stepped and categorical inputs)."""
+        _, grads = self.stacked_grad(np.asarray(A, dtype=float), np.asarray(B, dtype=float))
+        return np.stack(grads, axis=-1)
+
     def __call__(self, A, B=None) -> np.ndarray:
         """Covariance matrix (n, m) between rows of A (n, d) and B (m, d)."""
         B = A if B is None else B

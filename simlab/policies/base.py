@@ -13,7 +13,7 @@ from ..model.gp import Posterior, Stack
 from ..model.optimize import distinct_best, polish, polish_block
 from ..options import Option
 
-__all__ = ["Option", "Context", "Block", "Policy", "Acquisition"]
+__all__ = ["Option", "Context", "Block", "Policy", "Acquisition", "best_row"]
 
 
 @dataclass
@@ -27,18 +27,10 @@ class Context:
     posterior: Posterior
     library: bool = False       # the pool is a [candidates] library: every trial is one of its rows
 
-    def evaluated_rows(self, post: Posterior) -> np.ndarray:
-        """Library mode: which pool rows the posterior has observed (trials are exact copies of rows)."""
-        seen = np.zeros(len(self.pool), dtype=bool)
-        if post.n:
-            index = getattr(self, "_row_index", None)
-            if index is None:
-                index = self._row_index = {row.tobytes(): i for i, row in enumerate(self.pool)}
-            for x in post.X:
-                i = index.get(np.ascontiguousarray(x).tobytes())
-                if i is not None:
-                    seen[i] = True
-        return seen
+    def block(self) -> "Block":
+        """This campaign as a block of one (rules whose one-campaign path is their block code)."""
+        return Block(rngs=[self.rng], sequences=self.sequence[None], horizon=self.horizon,
+                     library=self.pool if self.library else None)
 
 
 @dataclass
@@ -48,6 +40,21 @@ class Block:
     rngs: list[np.random.Generator]   # each replicate's own stream for this policy
     sequences: np.ndarray             # (B, horizon, d) each replicate's Sobol' sequence
     horizon: int                      # trials in each campaign
+    library: np.ndarray | None = None  # (m, d) a [candidates] library's rows (every replicate's pool), or None
+
+    def evaluated(self, st: Stack) -> np.ndarray:
+        """Library mode: which rows each replicate's belief has observed, (B, m) bool (a trial is an
+        exact copy of its row, so rows are matched by their bytes)."""
+        index = getattr(self, "_index", None)
+        if index is None:
+            index = self._index = {np.ascontiguousarray(row).tobytes(): i for i, row in enumerate(self.library)}
+        seen = np.zeros((st.size, len(self.library)), dtype=bool)
+        for b in range(st.size):
+            for x in st._X[b, : st.n]:
+                i = index.get(np.ascontiguousarray(x).tobytes())
+                if i is not None:
+                    seen[b, i] = True
+        return seen
 
 
 class Policy:
@@ -222,27 +229,9 @@ class Acquisition(Policy):
     # ------------------------------------------------------------------ choosing
     zero_at_evaluated: ClassVar[bool] = False   # with zero noise the score is exactly 0 at an evaluated input
 
-    def _choose_row(self, post):
-        """A library's row: every row scored exactly (no pool sample, no polish).
-
-        With a noise-free belief a rule whose score is exactly zero at evaluated inputs (expected
-        improvement: Jones, Schonlau & Welch 1998) scores them -inf, so the nugget's ~1e-5 sd there
-        never outranks an unevaluated row; once every row is evaluated they compete again.
-        """
-        self.prepare(post)
-        values = np.array(self.score_pool(post), dtype=float)
-        if self.zero_at_evaluated and post.noise == 0.0:
-            seen = self.ctx.evaluated_rows(post)
-            if not seen.all():
-                values[seen] = -np.inf
-        return self.ctx.pool[int(np.argmax(values))].copy()
-
     def choose(self, post, t):
-        if self.ctx.library:
-            return self._choose_row(post)
         if self.lockstep and not self._pending:
-            block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
-            u = self.choose_block(post, t, block)[0]
+            u = self.choose_block(post, t, self.ctx.block())[0]
             self._keep_state(post)
             return u
         if t >= self.ctx.horizon - self.exploit_last:
@@ -267,7 +256,11 @@ class Acquisition(Policy):
         self.prepare_block(st)
         floor = self.sd_floor * st.kernel.amplitude
         mu, sd = st.stacked_pool_moments()
-        values = self._pool_values(mu, np.maximum(sd, floor), _candidates(self.n_starts, mu.shape[-1]))
+        m = mu.shape[-1]
+        library = block.library is not None        # every row scored exactly: no pruning, no polish
+        values = self._pool_values(mu, np.maximum(sd, floor), m if library else _candidates(self.n_starts, m))
+        if library:
+            return best_row(st, block, values, skip_evaluated=self.zero_at_evaluated)
 
         def neg(U):
             mu, sd, dmu, dsd = st.stacked_moments(U, grad=True)
@@ -341,6 +334,21 @@ class Acquisition(Policy):
                     unit = np.where(dist[:, None] > 0, diff / dist[:, None], 0.0)
                 g = g + (ratio * self._lipschitz / sd_j)[:, None] * unit
         return total if grads is None else (total, g)
+
+
+def best_row(st: Stack, block: Block, values, *, skip_evaluated: bool = False) -> np.ndarray:
+    """Library mode: per replicate, the row with the highest score (B, d): every row scored exactly,
+    no polish.
+
+    ``skip_evaluated``: with a noise-free belief, a rule whose score is exactly 0 at evaluated inputs
+    (expected improvement: Jones, Schonlau & Welch 1998) gives those rows -inf, so the nugget's
+    ~1e-5 sd there never outranks an unevaluated row; once every row is evaluated they compete again.
+    """
+    values = np.array(values, dtype=float)
+    if skip_evaluated and st.noise == 0.0:
+        seen = block.evaluated(st)
+        values[seen & ~seen.all(axis=-1, keepdims=True)] = -np.inf
+    return st.pools[np.arange(st.size), np.argmax(values, axis=-1)].copy()
 
 
 def _lowest_mean(post: Posterior, pool, n_starts: int, iterations: int) -> np.ndarray:

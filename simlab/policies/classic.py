@@ -8,8 +8,9 @@ import numpy as np
 from ..lazy import special
 
 from ..model.gp import matvec
-from ..worlds.draws import FeatureSample, feature_values
-from .base import Acquisition, Option, Policy, _best_polished, _lowest_mean_block
+from ..worlds.draws import feature_values
+from ..worlds.mixed import MixedFeatureSample, feature_sample
+from .base import Acquisition, Option, Policy, _best_polished, _lowest_mean_block, best_row
 from .logei import dlog_h, log_h
 
 __all__ = ["RandomSearch", "SobolSearch", "PosteriorMean", "ConfidenceBound", "ProbabilityOfImprovement",
@@ -24,14 +25,21 @@ class RandomSearch(Policy):
     lockstep = True
 
     def choose(self, post, t):
-        if self.ctx.library:   # a row not yet evaluated in this campaign, uniformly; any row once all are
-            free = np.flatnonzero(~self.ctx.evaluated_rows(post))
-            rows = free if free.size else np.arange(len(self.ctx.pool))
-            return self.ctx.pool[rows[self.ctx.rng.integers(rows.size)]].copy()
+        if self.ctx.library:
+            return self.choose_block(post, t, self.ctx.block())[0]
         return self.ctx.rng.random(self.ctx.pool.shape[1])
 
     def choose_block(self, st, t, block):
-        return np.stack([rng.random(st.pools.shape[2]) for rng in block.rngs])
+        if block.library is None:
+            return np.stack([rng.random(st.pools.shape[2]) for rng in block.rngs])
+        # a row not yet evaluated in this campaign, uniformly; any row once all are
+        seen, m = block.evaluated(st), len(block.library)
+        out = []
+        for b, rng in enumerate(block.rngs):
+            free = np.flatnonzero(~seen[b])
+            rows = free if free.size else np.arange(m)
+            out.append(block.library[rows[rng.integers(rows.size)]])
+        return np.array(out)
 
 
 class SobolSearch(Policy):
@@ -288,9 +296,11 @@ class ThompsonSampling(Acquisition):
     def _features(self, st, rngs):
         """Each replicate's frequencies (drawn from its own stream), again after a refit."""
         if getattr(self, "_samples", None) is None or self._version != st.version:
-            self._samples = [FeatureSample(st.kernel, st.mean, rng, self.features) for rng in rngs]
-            self._omega32 = [s.omega.T.astype(np.float32) for s in self._samples]
-            self._pools32 = st.pools.astype(np.float32)
+            self._samples = [feature_sample(st.kernel, st.mean, rng, self.features) for rng in rngs]
+            self._mixed = isinstance(self._samples[0], MixedFeatureSample)
+            if not self._mixed:
+                self._omega32 = [s.omega.T.astype(np.float32) for s in self._samples]
+                self._pools32 = st.pools.astype(np.float32)
             self._version = st.version
 
     def _draw(self, st, rngs):
@@ -317,15 +327,11 @@ class ThompsonSampling(Acquisition):
         if t >= block.horizon - self.exploit_last:
             return _lowest_mean_block(st, self.n_starts, self.polish_iterations)
         self._features(st, block.rngs)
+        if self._mixed:
+            return self._choose_mixed(st, block)
         omega, amp, phase, scale, beta, cross = self._draw(st, block.rngs)
-        mu, sd = st.stacked_pool_moments()
-        B, m = mu.shape
-        keep = max(self.n_starts, 1)
-        if st.n and m > keep:
-            upper = mu + self.screen * sd
-            plausible = mu - self.screen * sd <= np.partition(upper, keep - 1, axis=-1)[:, keep - 1 : keep]
-        else:
-            plausible = np.ones((B, m), bool)
+        B, m = st.pools.shape[:2]
+        plausible = self._plausible(st)
         values = np.full((B, m), -np.inf)
         for b in range(B):
             rows = np.flatnonzero(plausible[b])
@@ -343,8 +349,52 @@ class ThompsonSampling(Acquisition):
                 dg = dg + np.stack([matvec(dj, beta) for dj in dK], axis=-1)
             return g, dg
 
-        chosen = _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations)
+        chosen = (best_row(st, block, values) if block.library is not None else
+                  _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations))
         self._beta, self._ranked = beta, values      # kept for score() and the tests
+        return chosen
+
+    def _plausible(self, st) -> np.ndarray:
+        """(B, m) bool: the pool points whose lower bound ``mu - 5 sd`` is not above the ``n_starts``-th
+        lowest upper bound ``mu + 5 sd`` (the others are not scored; see the class notes)."""
+        mu, sd = st.stacked_pool_moments()
+        keep = max(self.n_starts, 1)
+        if not st.n or mu.shape[1] <= keep:
+            return np.ones(mu.shape, bool)
+        upper = mu + self.screen * sd
+        return mu - self.screen * sd <= np.partition(upper, keep - 1, axis=-1)[:, keep - 1 : keep]
+
+    def _choose_mixed(self, st, block):
+        """Over stepped or categorical inputs: the same sample and polish with the mixed features
+        (:class:`simlab.worlds.mixed.MixedFeatureSample`), replicate by replicate, without the
+        float32 ranking and the pool screen (the whole pool is scored in float64)."""
+        n, B = st.n, st.size
+        X, s2 = st._X[:, :n], st._s2()
+        R = np.zeros((B, n))
+        for b, (sample, rng) in enumerate(zip(self._samples, block.rngs)):
+            sample.redraw(rng)
+            eps = np.sqrt(s2[b]) * rng.standard_normal(n)
+            if n:
+                R[b] = st._y[b, :n] - sample(X[b]) - eps
+        beta, cross = (st.solves(R), st.pool_crosses(R)) if n else (R, np.zeros(st.pools.shape[:2]))
+        plausible = self._plausible(st)
+        values = np.full(plausible.shape, -np.inf)
+        for b, sample in enumerate(self._samples):
+            rows = np.flatnonzero(plausible[b])
+            values[b, rows] = -(sample.values32(st.pools[b, rows]) + cross[b, rows])   # ranked in float32
+
+        def fg(U):
+            g = np.stack([sample(U[b]) for b, sample in enumerate(self._samples)])
+            dg = np.stack([sample.grad(U[b]) for b, sample in enumerate(self._samples)])
+            if n:
+                Kq, dK = st.kernel.stacked_grad(U, X)
+                g = g + matvec(Kq, beta)
+                dg = dg + np.stack([matvec(dj, beta) for dj in dK], axis=-1)
+            return g, dg
+
+        chosen = (best_row(st, block, values) if block.library is not None else
+                  _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations))
+        self._beta, self._ranked = beta, values
         return chosen
 
     def _prior32(self, b, rows, amp, phase) -> np.ndarray:

@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 from ..lazy import special
 
-from .base import Acquisition, Block, Option, _lowest_mean_block
+from .base import Acquisition, Option, _lowest_mean_block
 
 __all__ = ["KnowledgeGradient", "expected_min_drop", "knowledge_gradient", "knowledge_gradients"]
 
@@ -174,8 +174,7 @@ class KnowledgeGradient(Acquisition):
         return self.candidates_block(post)[0]
 
     def choose(self, post, t):
-        block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
-        return self.choose_block(post, t, block)[0]
+        return self.choose_block(post, t, self.ctx.block())[0]
 
     def choose_block(self, st, t, block):
         if t >= block.horizon - self.exploit_last:

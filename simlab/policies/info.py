@@ -8,7 +8,7 @@ from numpy.polynomial.hermite_e import hermegauss
 from ..lazy import optimize, special
 
 from ..model.optimize import polish
-from ..worlds.draws import FeatureSample
+from ..worlds.mixed import feature_sample
 from .base import Acquisition, Option
 
 __all__ = ["ProbabilityOfMinimum", "MaxValueEntropySearch", "PathwiseDraws", "max_value_information"]
@@ -63,7 +63,7 @@ class PathwiseDraws:
         self._build(post, rng)
 
     def _build(self, post, rng):
-        self.sample = FeatureSample(post.kernel, post.mean, rng, self.n_freq)
+        self.sample = feature_sample(post.kernel, post.mean, rng, self.n_freq)
         self._basis = self.sample.basis(self.pool).astype(np.float32)   # (m, 2F)
         self._version = post.version
 
@@ -238,7 +238,7 @@ class ProbabilityOfMinimum(Acquisition):
             tied = tied[[int(np.argmax(sd[tied]))]]
         best = int(tied[0])
         start = self.ctx.pool[best][None, :]
-        if not self.refine:
+        if not self.refine or self.ctx.library:    # a library's trial is one of its rows, as drawn
             return start[0].copy()
         fg = self.draws.path(post, int(np.flatnonzero(votes == best)[0]))
         U, _ = polish(fg, start, maxiter=self.polish_iterations)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import Acquisition, Block, Option, Policy
+from .base import Acquisition, Option, Policy
 from .classic import ConfidenceBound, ExpectedImprovement, ProbabilityOfImprovement
 
 __all__ = ["GPUCB", "GPHedge", "gp_ucb_beta"]
@@ -141,8 +141,7 @@ class GPHedge(Policy):
             self.nominees = []
 
     def choose(self, post, t):
-        block = Block(rngs=[self.ctx.rng], sequences=self.ctx.sequence[None], horizon=self.ctx.horizon)
-        return self.choose_block(post, t, block)[0]
+        return self.choose_block(post, t, self.ctx.block())[0]
 
     def choose_block(self, st, t, block):
         if getattr(self, "gains", None) is None or len(self.gains) != st.size:

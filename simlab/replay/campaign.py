@@ -20,7 +20,8 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                  sequence: np.ndarray, observe: Callable[[float, int], float], budget: int,
                  pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
                  history: tuple[np.ndarray, np.ndarray] | None = None,
-                 refit_rng: np.random.Generator | None = None, library: bool = False) -> Trace:
+                 refit_rng: np.random.Generator | None = None, library: bool = False,
+                 snap: Callable[[np.ndarray], np.ndarray] | None = None) -> Trace:
     """Replay one campaign.
 
     Parameters
@@ -47,6 +48,9 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         Stream for the random restarts of belief refits (``belief.refit_every > 0``).
     library : bool
         The pool is a [candidates] library: policies choose its rows (``Context.library``).
+    snap : callable, optional
+        Moves a chosen input to allowed values (``Space.snap``: stepped and categorical inputs)
+        before the world, the posterior and any pending-trial rule see it.
     """
     d = sequence.shape[1]
     H, yH = past_trials(history, d)
@@ -54,6 +58,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=n + batch)
     policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post, library=library))
     U, y, f, rec = allocate(n, d)
+    rows = {np.ascontiguousarray(r).tobytes() for r in pool} if library else None   # every trial must be a row
     seen: list[int] = []                                   # trace rows the posterior has observed
     for i in range(h):                                     # past trials, already observed
         U[i], y[i], f[i] = H[i], yH[i], world(H[i : i + 1])[0]
@@ -62,8 +67,10 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         rec[i] = seen[post.recommend()]
     for start in range(0, budget, batch):                  # one round of up to `batch` trials
         ts = range(start, min(start + batch, budget))
-        chosen = _fill_round(policy, post, ts, design)      # choose
+        chosen = _fill_round(policy, post, ts, design, snap)  # choose
         for t, u in zip(ts, chosen):
+            if library and u.tobytes() not in rows:
+                raise RuntimeError(f"policy {policy.label!r} chose an input that is not a row of the library: {u}")
             i = h + t
             U[i], f[i] = u, world(u[None, :])[0]           # evaluate
             y[i] = observe(f[i], t)
@@ -97,16 +104,19 @@ def _refit(post: Posterior, rng: np.random.Generator) -> None:
     post.refit(type(kernel)(fit.lengthscale, fit.amplitude), fit.mean, fit.noise)
 
 
-def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray) -> list[np.ndarray]:
+def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray, snap=None) -> list[np.ndarray]:
     """Choose every trial of a round before any of its results is back."""
+    def pick(t):
+        u = np.asarray(design[t] if t < len(design) else policy.choose(post, t), dtype=float)
+        return u if snap is None else snap(u)
+
     if len(ts) == 1:                                       # nothing pending: no fantasies to undo
-        t = ts[0]
-        return [np.asarray(design[t] if t < len(design) else policy.choose(post, t), dtype=float)]
+        return [pick(ts[0])]
     chosen = []
     with post.fantasies():
         for k, t in enumerate(ts):
-            u = design[t] if t < len(design) else policy.choose(post, t)
-            chosen.append(np.asarray(u, dtype=float))
+            u = pick(t)
+            chosen.append(u)
             if k + 1 < len(ts):
                 policy.hold(post, u)                       # pending: believer, liar, penalizer...
     policy.release()

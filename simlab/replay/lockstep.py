@@ -16,7 +16,9 @@ gives it alone; ``tests/unit/test_lockstep.py`` compares them.
 
 Campaigns run in lockstep when the rule declares ``lockstep = True`` and every campaign of
 the block stays the same length at every step: one trial per round, no lost trials and no
-belief refits. Other campaigns are replayed one at a time.
+belief refits. Other campaigns are replayed one at a time. Spaces with stepped or categorical
+inputs and [candidates] libraries run in lockstep too (a library's rows are every replicate's
+pool, scored exactly and never polished: ``Block.library``).
 
 Which rules: random, sobol, mean, lcb, gp-ucb, pi, ei (rules of the posterior moments),
 thompson and mes (posterior samples: each replicate draws its own weights, noise and
@@ -62,14 +64,14 @@ from .trace import Trace, allocate, past_trials
 __all__ = ["run_block", "fits_lockstep"]
 
 
-def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float, library: bool = False) -> bool:
-    """Whether campaigns of this policy can advance in lockstep (a [candidates] library's campaigns
-    run one at a time: the block forms score a pool and polish, a library's rows are scored exactly)."""
-    return policy.lockstep and batch == 1 and belief.refit_every == 0 and lost == 0.0 and not library
+def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float) -> bool:
+    """Whether campaigns of this policy can advance in lockstep."""
+    return policy.lockstep and batch == 1 and belief.refit_every == 0 and lost == 0.0
 
 
 def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budget: int, rngs,
-              history: tuple[np.ndarray, np.ndarray] | None = None) -> list[Trace]:
+              history: tuple[np.ndarray, np.ndarray] | None = None, snap=None,
+              library: bool = False) -> list[Trace]:
     """Replay one policy on a block of replicates in lockstep.
 
     Parameters
@@ -86,6 +88,11 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
         Each replicate's own stream for this policy.
     history : (ndarray (h, d), ndarray (h,)), optional
         Past trials shared by every replicate (first in every trace).
+    snap : callable, optional
+        Moves chosen inputs to allowed values (``Space.snap``), as in ``run_campaign``.
+    library : bool
+        The pools are a [candidates] library's rows (the same in every replicate): rules score every
+        row and choose one (``Block.library``), and a trial off the library is refused.
 
     Returns
     -------
@@ -97,11 +104,13 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     h, n = len(yH), len(yH) + budget
     st = Stack(belief.kernel, belief.mean, belief.noise, pools=np.stack([r.pool for r in reps]),
                capacity=n + 1)
-    block = Block(rngs=list(rngs), sequences=np.stack([r.sequence for r in reps]), horizon=budget)
+    block = Block(rngs=list(rngs), sequences=np.stack([r.sequence for r in reps]), horizon=budget,
+                  library=reps[0].pool if library else None)
     design = np.stack([r.design for r in reps])
     shocks, lost = np.stack([r.shocks for r in reps]), np.stack([r.lost for r in reps])
     worlds = WorldBlock([r.world for r in reps])
     U, y, f, rec = allocate(n, d, B)
+    rows = {np.ascontiguousarray(r).tobytes() for r in reps[0].pool} if library else None
     try:
         for i in range(h):                                        # past trials, already observed
             U[:, i], y[:, i] = H[i], yH[i]
@@ -111,6 +120,10 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
         for t in range(budget):
             i = h + t
             U[:, i] = design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block)   # choose
+            if snap is not None:
+                U[:, i] = snap(U[:, i])
+            if library and not all(np.ascontiguousarray(u).tobytes() in rows for u in U[:, i]):
+                raise RuntimeError(f"policy {policy.label!r} chose an input that is not a row of the library")
             f[:, i] = worlds(U[:, i])                                                              # evaluate
             y[:, i] = observer.many(f[:, i], shocks[:, t], lost[:, t])                            # observe
             st.add(U[:, i], y[:, i])                                                               # update

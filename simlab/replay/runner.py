@@ -13,6 +13,7 @@ from ..policies import POLICIES, Policy
 from ..rng import stream
 from ..study.spec import Study
 from ..model.belief import Belief
+from ..model.levels import mixed_kernel
 from ..worlds.noise import Observer
 # what the worlds stage hands on: each replicate's material (imported here for the replay's use)
 from ..worlds.replicate import (Replicate, history_arrays, make_observer, make_replicate, make_world, unit_kernel,
@@ -28,9 +29,12 @@ __all__ = ["make_belief", "make_policy", "replay_replicate", "replay", "replay_s
 
 
 def make_belief(study: Study) -> Belief:
-    b = study.belief
-    return Belief(kernel=unit_kernel(b, study), mean=study.sign * b.mean, noise=b.noise,
-                  refit_every=study.refit_every)
+    """The policies' belief: over stepped or categorical inputs the product kernel of
+    :mod:`simlab.model.levels` (stepped values rounded inside it, an exchangeable correlation
+    between levels), otherwise the stationary kernel on the unit cube."""
+    b, space = study.belief, study.space
+    kernel = mixed_kernel(b, space) if space.discrete else unit_kernel(b, study)
+    return Belief(kernel=kernel, mean=study.sign * b.mean, noise=b.noise, refit_every=study.refit_every)
 
 
 def make_policy(spec) -> Policy:
@@ -70,14 +74,13 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     for spec in study.policies:
         probe = make_policy(spec)
         horizons = c.budgets if probe.horizon_aware else (c.horizon,)
-        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost,
-                                              library=study.space.library is not None)
+        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost)
         per: list[list[tuple[int, Trace]]] = [[] for _ in reps]
         for b in horizons:
             if together:
                 rngs = [stream(study.seed, rep.index, "policy", spec.label) for rep in reps]
                 traces = run_block(make_policy(spec), belief, reps, observer=observer, budget=b, rngs=rngs,
-                                   history=history)
+                                   history=history, snap=_snap(study), library=study.space.library is not None)
             else:
                 traces = [_alone(study, spec, belief, observer, history, rep, b) for rep in reps]
             for k, trace in enumerate(traces):
@@ -97,7 +100,14 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
                         observe=observe, budget=budget, pool=rep.pool,
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
                         history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
-                        library=study.space.library is not None)
+                        library=study.space.library is not None, snap=_snap(study))
+
+
+def _snap(study: Study):
+    """What moves a chosen trial to allowed values, or None when every value is allowed (a box of
+    reals, or a library, whose policies choose rows)."""
+    space = study.space
+    return space.snap if space.discrete and space.library is None else None
 
 
 def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
@@ -109,7 +119,7 @@ def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
     frames = []
     for label, per in runs:
         cols = _compose([(b, _columns(t, trial[: h + b], fstar)) for b, t in per], trial)
-        X = study.space.from_unit(cols.pop("U"))
+        X = study.space.columns(cols.pop("U"))
         frame = {
             "policy": label,
             "replicate": np.full(len(trial), r, dtype=np.int32),
@@ -118,7 +128,7 @@ def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
             "initial": (trial >= 1) & (trial <= c.initial),
             "history": trial <= 0,
         }
-        frame.update({name: X[:, j] for j, name in enumerate(study.space.names)})
+        frame.update(X)
         frame.update({"y": study.sign * cols["y"], "f": study.sign * cols["f"],
                       "lost": ~np.isfinite(cols["y"]), "regret": cols["regret"],
                       "regret_seen": cols["regret_seen"], "rec_trial": cols["rec_trial"],
@@ -136,8 +146,7 @@ def _world_rows(study: Study, reps: list[Replicate], runs_per_rep) -> pd.DataFra
     """worlds.csv rows of some replicates: the searched optimum in the user's units and orientation,
     how far the second search disagreed, and the reference regret was measured against."""
     rows = {"replicate": np.array([rep.index for rep in reps], dtype=np.int32)}
-    X = study.space.from_unit(np.array([rep.optimum[0] for rep in reps]).reshape(len(reps), study.space.dim))
-    rows.update({name: X[:, j] for j, name in enumerate(study.space.names)})
+    rows.update(study.space.columns(np.array([rep.optimum[0] for rep in reps]).reshape(len(reps), study.space.dim)))
     fstar = np.array([_fstar(rep, runs) for rep, runs in zip(reps, runs_per_rep)])
     best = np.array([rep.optimum[1] for rep in reps])
     rows.update({"best_value": study.sign * best, "optimum_gap": np.array([rep.optimum_gap for rep in reps]),

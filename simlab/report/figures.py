@@ -193,14 +193,18 @@ class PlacementFigure(Figure):
         return ("Where each policy put the trials it chose itself (after the shared initial design, up to "
                 f"{study.campaign.horizon} trials, every campaign pooled): one histogram per input, bars of "
                 "5 % of the range, height the share of the policy's trials. The dark bar at each end is the "
-                "share within 1 % of that bound; the numbers are those of the table above.")
+                "share within 1 % of that bound; the numbers are those of the table above."
+                + (" A stepped or categorical input has one bar per allowed value (no bound: the boundary and corner "
+                   "shares count the continuous inputs only), and a log-scaled input is binned and bounded in "
+                   "its logarithm." if study.space.kinds else ""))
 
     def draw(self, given):
         from ..evidence.placement import BAND, own_trials
         from . import plots
         space = given.study.space
         return plots.placement_figure(own_trials(given.traces), names=space.names, low=space.low, high=space.high,
-                                      band=BAND, placement=given.tables.get(PLACEMENT), colors=given.colors)
+                                      band=BAND, placement=given.tables.get(PLACEMENT), colors=given.colors,
+                                      space=space if space.kinds else None)
 
 
 class SnapshotFigure(Figure):
@@ -216,11 +220,14 @@ class SnapshotFigure(Figure):
                 "the next input each policy would choose, and where posterior function samples put the best "
                 "input. "
                 + ("With more than one input this is a slice through the current recommendation along the "
-                   "first input (the other inputs held at the values in the title): the recommended trial lies "
+                   "first input with a range (the other inputs held at the values in the title): the recommended "
+                   "trial lies "
                    "on it, and the other trials, run elsewhere, are drawn in grey at their coordinate on this "
                    "input with the value observed there (projected), so they need not sit near the curves. "
                    if study.space.dim > 1 else "")
-                + ("The model shown is the study's stated belief, before any refit." if study.refit_every else ""))
+                + ("The model shown is the study's stated belief, before any refit." if study.refit_every else "")
+                + (" The slice runs between the library's rows: the curves show the belief and the prior's world "
+                   "there, but every trial is one of the rows." if study.space.library is not None else ""))
 
     def draw(self, given):
         from .snapshot import snapshot_figure

@@ -10,7 +10,7 @@ from pathlib import Path
 import pandas as pd
 
 from ..evidence import choice, compare, frame, metrics, reach
-from ..evidence.placement import placement_table
+from ..evidence.placement import box_view, placement_table
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
 from .figures import FigureInput
@@ -130,7 +130,8 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     else:
         step(2)  # nothing to compare with a single policy
     space = study.space
-    tables[PLACEMENT] = placement_table(traces, names=space.names, low=space.low, high=space.high)
+    view, names, low, high = box_view(traces, space)
+    tables[PLACEMENT] = placement_table(view, names=names, low=low, high=high)
     paths[PLACEMENT] = _write_csv(tables[PLACEMENT], PLACEMENT)
     step(1)
 

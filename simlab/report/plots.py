@@ -437,7 +437,7 @@ def sweep_figure(summary, *, budget, target=None, units="objective units", color
 
 
 
-def placement_figure(trials, *, names, low, high, band=0.01, placement=None, colors=None):
+def placement_figure(trials, *, names, low, high, band=0.01, placement=None, colors=None, space=None):
     """Where each policy's own trials land: one histogram per policy (rows) and input (columns).
 
     Parameters
@@ -456,6 +456,9 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
         are written in each row.
     colors : dict, optional
         `policy_colors` mapping.
+    space : simlab.study.types.Space, optional
+        Says which inputs are stepped or categorical (one bar per allowed value or level, the
+        levels named on the axis, no boundary band) and log-scaled (log bins on a log axis).
 
     Returns
     -------
@@ -463,6 +466,8 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
     """
     from matplotlib.figure import Figure
     from matplotlib.ticker import MaxNLocator
+
+    from ..study.types import CATEGORICAL, LOG
 
     from .cells import fmt_pct
 
@@ -479,18 +484,43 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
         n = max(len(mine), 1)
         for j, name in enumerate(names):
             ax = axes[i, j]
-            x = mine[name].to_numpy(dtype=float)
-            lo, hi = float(low[j]), float(high[j])
-            width = band * (hi - lo)
-            heights, edges = np.histogram(x, bins=bins, range=(lo, hi))
-            ax.bar(edges[:-1], heights / n, width=np.diff(edges), align="edge", color=colors[label], alpha=0.45,
-                   edgecolor=colors[label], linewidth=0.8)
-            reach = width * (1 + 1e-9)   # the allowance of simlab.evidence.placement.edge_flags for rounding
-            ends = [np.count_nonzero(x - lo <= reach) / n, np.count_nonzero(hi - x <= reach) / n]
-            ax.bar([lo, hi - width], ends, width=width, align="edge", color="#000000", linewidth=0,
-                   gid=f"band:{label}:{name}")
-            top = max(top, float(heights.max(initial=0)) / n, *ends)
-            ax.set_xlim(lo, hi)
+            kind = space.kind(j) if space is not None else "continuous"
+            if space is not None and j in space.discrete:
+                # one bar per allowed value (stepped) or level (categorical), in the order of the space
+                if kind == CATEGORICAL:
+                    values = list(space.levels[j])
+                    shares = mine[name].astype(str).value_counts().reindex(values, fill_value=0).to_numpy() / n
+                else:
+                    values = list(space.from_unit(np.outer(space.grid(j), np.ones(space.dim)))[:, j])
+                    x = np.round(mine[name].to_numpy(dtype=float), 12)
+                    shares = np.array([np.count_nonzero(x == np.round(v, 12)) for v in values]) / n
+                ax.bar(np.arange(len(values)), shares, width=0.7, color=colors[label], alpha=0.45,
+                       edgecolor=colors[label], linewidth=0.8, gid=f"levels:{label}:{name}")
+                ax.set_xticks(np.arange(len(values)),
+                              [str(v) if kind == CATEGORICAL else f"{v:g}" for v in values], fontsize=7,
+                              rotation=30 if kind == CATEGORICAL else 0, ha="right" if kind == CATEGORICAL else "center")
+                ax.set_xlim(-0.6, len(values) - 0.4)
+                top = max(top, float(shares.max(initial=0)))
+            else:
+                x = mine[name].to_numpy(dtype=float)
+                lo, hi = float(low[j]), float(high[j])
+                log = kind == LOG
+                if log:     # binned in log x, where the prior is stationary
+                    x, lo, hi = np.log(x), np.log(lo), np.log(hi)
+                width = band * (hi - lo)
+                heights, edges = np.histogram(x, bins=bins, range=(lo, hi))
+                draw = np.exp if log else (lambda v: v)
+                ax.bar(draw(edges[:-1]), heights / n, width=np.diff(draw(edges)), align="edge", color=colors[label],
+                       alpha=0.45, edgecolor=colors[label], linewidth=0.8)
+                reach = width * (1 + 1e-9)   # the allowance of simlab.evidence.placement.edge_flags for rounding
+                ends = [np.count_nonzero(x - lo <= reach) / n, np.count_nonzero(hi - x <= reach) / n]
+                ax.bar(draw(np.array([lo, hi - width])), ends, width=draw(np.array([lo + width, hi])) -
+                       draw(np.array([lo, hi - width])), align="edge", color="#000000", linewidth=0,
+                       gid=f"band:{label}:{name}")
+                top = max(top, float(heights.max(initial=0)) / n, *ends)
+                if log:
+                    ax.set_xscale("log")
+                ax.set_xlim(draw(lo), draw(hi))
             ax.tick_params(labelsize=8)
             if i == len(labels) - 1:
                 ax.set_xlabel(display_label(name), fontsize=9)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import textwrap
+
 __all__ = ["snapshot_figure"]
 
 from dataclasses import dataclass
@@ -40,8 +42,10 @@ class _Snapshot:
     minimisers: np.ndarray  # (S,) best input along the axis in each posterior sample
     best_x: float          # the world's true best input along the axis
     best_y: float
-    fixed: dict            # other inputs held fixed (d > 1), name -> value
+    fixed: dict            # other inputs held fixed (d > 1), name -> value (a level name for a categorical one)
     trials: int            # campaign trials so far (history not counted)
+    kind: str = "continuous"   # of the input along the axis: a stepped or categorical one is drawn value by value
+    ticks: tuple = ()      # categorical: the level names at x = 0, 1, ...
 
 
 def _acquisition_for_display(policy, values):
@@ -69,8 +73,8 @@ def _check_snapshot_args(study, replicate, policy, trial, along, samples, points
     if trial > n0 and policy is None:
         raise ValueError(f"`trial` {trial} lies beyond the initial design; name the `policy` whose trials to show")
     names = study.space.names
-    if along is None:
-        j = 0
+    if along is None:   # the first input with a range (all inputs stepped or categorical: the first)
+        j = next((i for i in range(len(names)) if i not in study.space.discrete), 0)
     elif isinstance(along, str):
         if along not in names:
             raise ValueError(f"`along` must be one of the inputs {list(names)}; got {along!r}")
@@ -117,7 +121,7 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
 
     # The belief after the trials so far (lost trials returned nothing and teach nothing).
     observed = np.isfinite(rows["y"].to_numpy(dtype=float))
-    X_user = rows[list(space.names)].to_numpy(dtype=float)[observed]
+    X_user = space.user_matrix(rows)[observed]       # level names read as level indices
     U = space.to_unit(X_user)
     y = sign * rows["y"].to_numpy(dtype=float)[observed]
     post = Posterior(belief.kernel, belief.mean, belief.noise, pool=rep.pool, capacity=max(len(y), 1) + 1)
@@ -126,8 +130,8 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
 
     # The line the figure is drawn along: the whole input range (d = 1) or a slice through
     # the current recommendation (d > 1). For d = 1 the trial inputs are on the line.
-    grid = np.linspace(0.0, 1.0, points)
-    if space.dim == 1:
+    grid = space.grid(j) if j in space.discrete else np.linspace(0.0, 1.0, points)
+    if space.dim == 1 and j not in space.discrete:
         grid = np.unique(np.concatenate([grid, U[:, 0]]))
     base = U[post.recommend()].copy() if post.n else np.full(space.dim, 0.5)
     line = np.repeat(base[None, :], grid.size, axis=0)
@@ -160,25 +164,29 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
     # Monte Carlo distribution of the minimiser: posterior function samples drawn pathwise,
     # g = f + K(., X) (K + s2 I)^-1 (y - f(X) - eps), each minimised over a candidate set.
     rng = np.random.default_rng(_SNAPSHOT_SEED)
-    sampler = FeatureSample(belief.kernel, belief.mean, rng, _SNAPSHOT_FREQUENCIES)
     candidates = line if space.dim == 1 else np.vstack([rep.pool, line])
-    weights = np.empty((sampler.w.size, samples))
-    for s in range(samples):
-        if s:
-            sampler.redraw(rng)
-        weights[:, s] = sampler.w
-    values = sampler.mean + sampler.basis(candidates) @ weights
-    if post.n:
-        eps = np.sqrt(post.s2) * rng.standard_normal((post.n, samples))
-        residual = y[:, None] - (sampler.mean + sampler.basis(U) @ weights) - eps
-        values += belief.kernel(candidates, U) @ post.solve(residual)
+    if space.discrete:
+        values = _joint_samples(post, candidates, samples, rng)
+    else:
+        sampler = FeatureSample(belief.kernel, belief.mean, rng, _SNAPSHOT_FREQUENCIES)
+        weights = np.empty((sampler.w.size, samples))
+        for s in range(samples):
+            if s:
+                sampler.redraw(rng)
+            weights[:, s] = sampler.w
+        values = sampler.mean + sampler.basis(candidates) @ weights
+        if post.n:
+            eps = np.sqrt(post.s2) * rng.standard_normal((post.n, samples))
+            residual = y[:, None] - (sampler.mean + sampler.basis(U) @ weights) - eps
+            values += belief.kernel(candidates, U) @ post.solve(residual)
     minimisers = space.from_unit(candidates[np.argmin(values, axis=0)])[:, j]
 
     u_best, f_best = rep.optimum
     fixed = {}
     if space.dim > 1:
-        base_user = space.from_unit(base)
-        fixed = {space.names[i]: float(base_user[i]) for i in range(space.dim) if i != j}
+        held = space.columns(base[None, :])
+        fixed = {name: (v[0] if i in space.categorical else float(v[0]))
+                 for i, (name, v) in enumerate(held.items()) if i != j}
     return _Snapshot(
         name=space.names[j], x=space.from_unit(line)[:, j], mean=sign * mu, low=np.minimum(*band),
         high=np.maximum(*band), world=sign * rep.world(line), trials_x=X_user[:, j], trials_y=sign * y,
@@ -186,7 +194,33 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
         on_line=np.all(np.abs(np.delete(U - base, j, axis=1)) <= 1e-9, axis=1),
         scores=scores, next_x=next_x, next_score=next_score, minimisers=minimisers,
         best_x=float(space.from_unit(u_best)[j]), best_y=float(sign * f_best), fixed=fixed, trials=trial,
+        kind=space.kind(j), ticks=tuple(space.levels[j]) if j in space.categorical else (),
     )
+
+
+def _joint_samples(post, candidates, samples, rng):
+    """Posterior samples of the noise-free objective at the candidates, (q, samples), drawn exactly
+    from the joint Gaussian (the product kernel over levels has no random-feature form here).
+
+    Candidates that repeat (or nearly) make the covariance singular; a jitter of 1e-9 of the prior
+    variance and then eigenvalues clipped at 0 keep the draw exact up to that rounding.
+    """
+    from ..lazy import linalg
+
+    kernel = post.kernel
+    C = kernel(candidates)
+    mu = np.full(len(candidates), post.mean)
+    if post.n:
+        Kc = kernel(candidates, post.X)
+        mu = mu + Kc @ post.solve(post.y - post.mean)
+        C = C - Kc @ post.solve(Kc.T)
+    C = 0.5 * (C + C.T)
+    try:
+        L = np.linalg.cholesky(C + 1e-9 * kernel.variance * np.eye(len(C)))
+    except np.linalg.LinAlgError:
+        w, V = linalg.eigh(C)
+        L = V * np.sqrt(np.clip(w, 0.0, None))
+    return mu[:, None] + L @ rng.standard_normal((len(C), samples))
 
 
 def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None, along=None, samples=400,
@@ -252,11 +286,19 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
                                       gridspec_kw={"height_ratios": [2.4, 1.4, rows, 1.0]})
     goal = "maximised" if study.sign < 0 else "minimised"
 
-    top.fill_between(snap.x, snap.low, snap.high, color="#0072B2", alpha=0.18, lw=0,
-                     label="95 % band (posterior)", gid="posterior-band")
-    top.plot(snap.x, snap.mean, color="#0072B2", lw=1.8, label="posterior mean", gid="posterior-mean")
-    top.plot(snap.x, snap.world, color="#000000", lw=1.3, ls="--", label="true world (hidden from policies)",
-             gid="world")
+    discrete = snap.kind in ("stepped", "categorical")
+    if discrete:    # value by value: a line between levels or steps would suggest values in between
+        top.errorbar(snap.x, snap.mean, yerr=[snap.mean - snap.low, snap.high - snap.mean], ls="none", marker="_",
+                     ms=14, color="#0072B2", elinewidth=6, alpha=0.5, label="posterior mean, 95 % band",
+                     gid="posterior-band")
+        top.plot(snap.x, snap.world, ls="none", marker="x", ms=8, color="#000000",
+                 label="true world (hidden from policies)", gid="world")
+    else:
+        top.fill_between(snap.x, snap.low, snap.high, color="#0072B2", alpha=0.18, lw=0,
+                         label="95 % band (posterior)", gid="posterior-band")
+        top.plot(snap.x, snap.mean, color="#0072B2", lw=1.8, label="posterior mean", gid="posterior-mean")
+        top.plot(snap.x, snap.world, color="#000000", lw=1.3, ls="--", label="true world (hidden from policies)",
+                 gid="world")
     # Trials on the drawn line are shown as observed there; with several inputs the others lie
     # off this slice, so they are drawn at their coordinate along it, in grey, and say so.
     new, on = ~snap.past, snap.on_line
@@ -273,15 +315,20 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     if not snap.fixed:
         top.plot([snap.best_x], [snap.best_y], ls="none", marker="*", ms=13, color="#E69F00", mec="#000000",
                  mew=0.6, label="true best input", gid="true-best")
-    top.set_ylabel(f"objective, {unit_label(study)} ({goal})")
+    ylabel = f"objective, {unit_label(study)} ({goal})"
+    top.set_ylabel(ylabel if len(ylabel) <= 30 else ylabel.replace(" (", "\n(", 1))   # long units: two lines
     top.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=8.5)
 
     for label in labels:
         curve = snap.scores[label]
         if curve is None:
             continue
-        mid.plot(snap.x, curve, color=colors[label], ls=styles[label], lw=1.5, label=display_label(label),
-                 marker=marks[label], ms=4, markevery=mark_every(snap.x, labels.index(label), after=-np.inf))
+        if discrete:
+            mid.plot(snap.x, curve, color=colors[label], ls="none", label=display_label(label), marker=marks[label],
+                     ms=6)
+        else:
+            mid.plot(snap.x, curve, color=colors[label], ls=styles[label], lw=1.5, label=display_label(label),
+                     marker=marks[label], ms=4, markevery=mark_every(snap.x, labels.index(label), after=-np.inf))
         if snap.next_score[label] is not None:
             mid.plot([snap.next_x[label]], [snap.next_score[label]], ls="none", marker="v", ms=7,
                      color=colors[label], mec="#000000", mew=0.5)
@@ -306,11 +353,23 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
 
     names = study.space.names
     lo_x, hi_x = study.space.low[names.index(snap.name)], study.space.high[names.index(snap.name)]
-    low.hist(snap.minimisers, bins=np.linspace(lo_x, hi_x, 41), color=GREY, alpha=0.75, gid="minimiser-hist")
+    if discrete:
+        counts = [np.count_nonzero(np.isclose(snap.minimisers, v)) for v in snap.x]
+        low.bar(snap.x, counts, width=0.6 * (np.min(np.diff(snap.x)) if len(snap.x) > 1 else 1.0), color=GREY,
+                alpha=0.75, gid="minimiser-hist")
+        pad = 0.5 * (np.min(np.diff(snap.x)) if len(snap.x) > 1 else 1.0)
+        lo_x, hi_x = float(snap.x[0]) - pad, float(snap.x[-1]) + pad
+    elif snap.kind == "log":
+        low.hist(snap.minimisers, bins=np.geomspace(lo_x, hi_x, 41), color=GREY, alpha=0.75, gid="minimiser-hist")
+        low.set_xscale("log")
+    else:
+        low.hist(snap.minimisers, bins=np.linspace(lo_x, hi_x, 41), color=GREY, alpha=0.75, gid="minimiser-hist")
     low.axvline(snap.best_x, color="#000000", lw=1.0, ls="--", label="true best input")
     low.set_ylabel("posterior\nsamples")
     low.set_xlabel(snap.name)
     low.set_xlim(lo_x, hi_x)
+    if snap.ticks:
+        low.set_xticks(snap.x, list(snap.ticks))
     low.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=8.5)
     low.set_title(f"where {snap.minimisers.size} posterior samples put the best {snap.name}", fontsize=9,
                   loc="left")
@@ -325,10 +384,15 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
     if snap.lost:
         title += f"; {snap.lost} lost"
     if snap.fixed:
-        held = ", ".join(f"{display_label(k)} = {v:.4g}" for k, v in snap.fixed.items())
+        held = ", ".join(f"{display_label(k)} = {v if isinstance(v, str) else format(v, '.4g')}"
+                         for k, v in snap.fixed.items())
         title += f"; slice at {held}"
-    # over the whole width (the legends take the right of every panel), on one line
-    fig.suptitle(title, fontsize=10, x=0.01, ha="left")
+    # over the whole width (the legends take the right of every panel); a long slice (several held
+    # inputs) breaks after the "when" part rather than running off the figure
+    if len(title) > 110 and "; slice at " in title:
+        title = title.replace("; slice at ", ";\nslice at ", 1)
+    fig.suptitle(textwrap.fill(title, 120, replace_whitespace=False) if len(title) > 240 else title,
+                 fontsize=10, x=0.01, ha="left")
     return fig
 
 

@@ -62,11 +62,13 @@ def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data"
     role : str
         What the file is for, used in messages ("calibration data", "history").
     required : sequence of str
-        With ``columns`` omitted: columns that must be present and numeric even so.
+        Columns that must be present and numeric even with ``text=True`` (and, with ``columns``
+        omitted, even if they hold no number).
     text : sequence of str or True
         Columns returned as text (stripped strings; a blank cell is refused) instead of numbers.
-        True, with ``columns`` omitted: every column with no number at all is returned as text
-        (a library's categorical inputs) instead of being skipped.
+        True: every column (of ``columns``, if given) with no number at all is returned as text
+        (a library's or a calibration's categorical inputs) instead of being skipped or refused;
+        a column holding some numbers is still read as numbers, so text in it is an error.
 
     Returns
     -------
@@ -135,6 +137,8 @@ def read_table(path, *, columns: Sequence[str] | None = None, role: str = "data"
         columns = list(columns)
         for c in columns:
             _need(name, header, c, role)
+        if as_text is True:
+            as_text = [c for c in columns if c not in required and not _looks_numeric(raw[c])]
         wanted, skipped = columns, []
     as_text = () if as_text is True else tuple(as_text)
     out = pd.DataFrame({c: _texts(name, raw[c], c, role) if c in as_text else _numbers(name, raw[c], c, role)

@@ -219,13 +219,12 @@ def _read_noise(r: "_Reader", wt: dict) -> dict:
 
 
 def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None) -> HistorySpec | None:
+    """``[history]``: past trials in a CSV, one column per input (level names for a categorical input,
+    allowed values for a stepped one; with a library, each row one of its rows) and the response."""
     if "history" not in data:
         return None
     ht = r.table(data, "history")
     r.keys(ht, "history", _section_keys()["history"])
-    if space.library is not None or space.categorical or any(space.kind(j) == STEPPED for j in range(space.dim)):
-        r.fail("[history]", "past trials are not supported yet with stepped or categorical inputs or a [candidates] "
-               "library (issue 15 lands them later); continuous and log-scaled inputs take a history")
     file = r.string(ht, "history.file")
     response = r.string(ht, "history.response", default="y")
     if response in space.names:
@@ -234,21 +233,83 @@ def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None)
     if not path.is_absolute():
         path = (base_dir or Path.cwd()) / path
     from .data import DataError, read_table
+    text = [space.names[j] for j in space.categorical]
     try:
-        table = read_table(path, columns=[*space.names, response], role="history")
+        table = read_table(path, columns=[*space.names, response], role="history", text=text)
     except DataError as exc:
         raise StudyError(r.source, "history.file", str(exc)) from None
-    X = table[list(space.names)].to_numpy(dtype=float)
+    X = np.empty((len(table), space.dim))
     for j, name in enumerate(space.names):
-        lo, hi = space.low[j], space.high[j]
-        bad = np.flatnonzero((X[:, j] < lo) | (X[:, j] > hi))
-        if bad.size:
-            i = int(bad[0])
-            r.fail("history.file", f"{path}: column \"{name}\", row {table.index[i]} (the header is row 1): "
-                   f"{X[i, j]:g} lies outside [space] [{lo:g}, {hi:g}]; widen the space or drop the row")
+        X[:, j] = _history_column(r, path, table, space, j)
+    if space.library is not None:
+        X = _history_rows(r, path, table, space, X)
     return HistorySpec(file=str(path.resolve()), response=response,
                        X=tuple(tuple(float(v) for v in row) for row in X),
                        y=tuple(float(v) for v in table[response].to_numpy(dtype=float)))
+
+
+def _history_column(r: "_Reader", path: Path, table, space: Space, j: int) -> np.ndarray:
+    """One input column of the history as floats (level indices for a categorical input, stepped
+    values moved exactly onto ``low + k step``), refusing a value the input does not allow."""
+    name, kind = space.names[j], space.kind(j)
+    col = table[name].to_numpy()
+
+    def fail(i: int, why: str):
+        r.fail("history.file", f"{path}: column \"{name}\", row {table.index[i]} (the header is row 1): {why}")
+
+    if kind == CATEGORICAL:
+        index = {level: k for k, level in enumerate(space.levels[j])}
+        bad = [i for i, v in enumerate(col) if v not in index]
+        if bad:
+            fail(bad[0], f"\"{col[bad[0]]}\" is not a level of [space] {name}; allowed: {', '.join(space.levels[j])}")
+        return np.array([index[v] for v in col], dtype=float)
+    col = col.astype(float)
+    lo, hi = space.low[j], space.high[j]
+    # 1e-9 x step: a stepped value written to about nine digits of the step is on the grid (and may
+    # sit that far beyond an end); anything farther is another setting, never rounded silently
+    tol = 1e-9 * space.steps[j] if kind == STEPPED else 0.0
+    bad = np.flatnonzero((col < lo - tol) | (col > hi + tol))
+    if bad.size:
+        i = int(bad[0])
+        fail(i, f"{col[i]:.12g} lies outside [space] [{lo:g}, {hi:g}]; widen the space or drop the row")
+    if kind == STEPPED:
+        step = space.steps[j]
+        k = np.rint((col - lo) / step)
+        off = np.flatnonzero(np.abs(col - (lo + k * step)) > tol)
+        if off.size:
+            i = int(off[0])
+            fail(i, f"{col[i]:.10g} is not one of the allowed values {lo:g}, {lo + step:g}, ... {hi:g} (step {step:g})")
+        col = lo + k * step
+    return col
+
+
+def _history_rows(r: "_Reader", path: Path, table, space: Space, X: np.ndarray) -> np.ndarray:
+    """With a library, every past trial must be one of its rows: each row is replaced by the library's
+    own values (so its unit-cube point is bit for bit the library's), else refused naming the row."""
+    rows = space.library.rows
+    cats = set(space.categorical)
+    exact = {row: i for i, row in enumerate(rows)}
+    numeric = np.array([[v for j, v in enumerate(row) if j not in cats] for row in rows], dtype=float)
+    labels = [tuple(v for j, v in enumerate(row) if j in cats) for row in rows]
+    out = np.empty_like(X)
+    for n, x in enumerate(X):
+        user = tuple(space.levels[j][int(v)] if j in cats else float(v) for j, v in enumerate(x))
+        i = exact.get(user)
+        if i is None:
+            # a number written with other digits (0.10 for 0.1, 1e-1): the same value within 1e-9 relative
+            lab = tuple(user[j] for j in sorted(cats))
+            xn = np.array([user[j] for j in range(space.dim) if j not in cats], dtype=float)
+            close = np.flatnonzero(np.all(np.abs(numeric - xn) <= 1e-9 * np.maximum(np.abs(xn), 1e-300), axis=1))
+            close = [c for c in close if labels[c] == lab]
+            if not close:
+                shown = ", ".join(f"{nm} = {v:g}" if isinstance(v, float) else f"{nm} = {v}"
+                                  for nm, v in zip(space.names, user))
+                r.fail("history.file", f"{path}: row {table.index[n]} (the header is row 1): ({shown}) is not a row of "
+                       f"the [candidates] library {Path(space.library.file).name}; every trial is one of its rows "
+                       "(add the row to the library or drop it here)")
+            i = int(close[0])
+        out[n] = [space.levels[j].index(v) if j in cats else v for j, v in enumerate(rows[i])]
+    return out
 
 
 def _read_space(r: "_Reader", data: dict, *, fn, base_dir: Path | None = None) -> Space:
@@ -739,19 +800,16 @@ class _Reader:
         return tuple(out)
 
 
-# Input kinds a study file may declare but some part of simlab cannot run yet (issue 15 lands them in
-# slices), and which parts those are. A study using one is refused as a whole, in one line, by
-# load_study: never run with a part that would treat a stepped or categorical input as a real number.
-NOT_YET: dict[str, str] = {
-    STEPPED: "the policies, the belief and the report",
-    CATEGORICAL: "the policies, the belief and the report",
-}
+# Rules that run over stepped and categorical inputs: every rule (the pool moved to allowed values,
+# the continuous part polished within each point's level combination; posterior samples drawn with
+# the mixed random features, simlab.worlds.mixed.MixedFeatureSample).
+MIXED_RULES = ("random", "sobol", "mean", "lcb", "pi", "ei", "gp-ucb", "hedge", "thompson", "pbest", "mes", "kg")
 # Rules that choose a library's rows (every row scored exactly, or drawn without replacement).
-LIBRARY_RULES = ("random", "sobol", "ei")
+LIBRARY_RULES = ("random", "sobol", "ei", "pi", "lcb", "mean", "gp-ucb", "hedge", "thompson", "pbest", "mes", "kg")
 
 
 def unsupported(study: Study) -> tuple[str, str] | None:
-    """(field, message) when the study uses an input kind some part of simlab does not support yet."""
+    """(field, message) when the study combines a space with a part of simlab that does not run on it yet."""
     space = study.space
     if space.library is not None:
         for i, p in enumerate(study.policies):
@@ -762,13 +820,15 @@ def unsupported(study: Study) -> tuple[str, str] | None:
                 return f"policy[{i}].exploit_last", "is not supported yet with a [candidates] library"
         if study.campaign.batch != 1:
             return "campaign.batch", "rounds of several trials are not supported yet with a [candidates] library"
-    for j in range(space.dim):
-        kind = space.kind(j)
-        if kind == STEPPED and space.library is not None:
-            continue    # a library's rows lie on the grid already: the prior at the rows needs no rounding
-        if kind in NOT_YET:
-            return f"space.{space.names[j]}", (f"{kind} inputs are not supported yet by {NOT_YET[kind]} (issue 15 is "
-                                                "landing in slices); the study file is valid but cannot run yet")
+    elif space.discrete:
+        kinds = " and ".join(sorted({space.kind(j) for j in space.discrete}))
+        for i, p in enumerate(study.policies):
+            if p.rule not in MIXED_RULES:
+                return f"policy[{i}].rule", (f"\"{p.rule}\" does not run over {kinds} inputs yet (issue 15 is landing "
+                                             f"in slices); there use {', '.join(MIXED_RULES)}")
+    if space.discrete and study.refit_every:
+        return "belief.refit_every", ("belief refits are not supported yet with stepped or categorical inputs "
+                                      "(the refit searches the lengthscales of a stationary kernel only)")
     return None
 
 

@@ -102,8 +102,15 @@ def check_inputs(names: Sequence[str], *, source: str = "--inputs") -> tuple[str
     return names
 
 
-def _policies(amplitude: float) -> list[list[str]]:
-    """The standard set, roughly from cautious (stays near the best so far) to bold (explores)."""
+def _policies(amplitude: float, discrete: bool = False) -> list[list[str]]:
+    """The standard set, roughly from cautious (stays near the best so far) to bold (explores); over
+    stepped or categorical inputs only the rules that run there (``spec.MIXED_RULES``)."""
+    from .spec import MIXED_RULES
+    every = _standard_policies(amplitude)
+    return [p for p in every if not discrete or p[0].split('"')[1] in MIXED_RULES]
+
+
+def _standard_policies(amplitude: float) -> list[list[str]]:
     margin = _significant(_MARGIN_FRACTION * amplitude, 2)
     g = "   # guessed: "
     return [
@@ -126,7 +133,8 @@ def _policies(amplitude: float) -> list[list[str]]:
 
 def study_text(*, name: str, goal: str, space: Sequence[str], world: Sequence[str], dim: int, amplitude: float,
                noise: float, header: Sequence[str] = (), history: tuple[str, str, int] | None = None,
-               amounts_from: str = "the fitted amplitude and noise", response: str | None = None) -> str:
+               amounts_from: str = "the fitted amplitude and noise", response: str | None = None,
+               discrete: bool = False) -> str:
     """A complete study file: ``[study]``, the given ``[space]`` and ``[world]`` lines, and a
     suggested ``[campaign]``, ``[target]`` and policy set, each guessed value commented.
 
@@ -143,6 +151,9 @@ def study_text(*, name: str, goal: str, space: Sequence[str], world: Sequence[st
     response : str, optional
         The data's response column, named in the comment of the (empty) ``units`` line: a column
         name is not a unit, so the unit is left for the team to fill in.
+    discrete : bool
+        The space has stepped or categorical inputs: the policies are those that run there, and a
+        comment names the standard ones left out.
     """
     if goal not in GOALS:
         raise ValueError(f"goal must be one of {', '.join(GOALS)}; got {goal!r}")
@@ -194,7 +205,11 @@ def study_text(*, name: str, goal: str, space: Sequence[str], world: Sequence[st
               "smallest lead between two policies worth calling clear",
               "", "# Policies, roughly from cautious to bold; drop those you would never use, and add settings "
               "you are weighing."]
-    for rule in _policies(amplitude):
+    chosen = _policies(amplitude, discrete)
+    left = [p[0].split('"')[1] for p in _standard_policies(amplitude) if p not in chosen]
+    if left:
+        lines.append(f"# Left out: {', '.join(left)} (they do not run over stepped or categorical inputs yet).")
+    for rule in chosen:
         lines += ["", "[[policy]]", *rule]
     return "\n".join(lines) + "\n"
 

@@ -100,6 +100,11 @@ class Space:
         return tuple(j for j in range(self.dim) if self.kind(j) == CATEGORICAL)
 
     @property
+    def discrete(self) -> tuple[int, ...]:
+        """Indices of the inputs with a finite set of allowed values (stepped and categorical)."""
+        return tuple(j for j in range(self.dim) if self.kind(j) in (STEPPED, CATEGORICAL))
+
+    @property
     def width(self) -> np.ndarray:
         """Span of each numeric input in the units its lengthscale is given in, shape (len(numeric),):
         ``high - low``, or ``log(high / low)`` for a log input. Lengthscale / width is the
@@ -172,6 +177,46 @@ class Space:
                 u[..., j] = (self.level_index(u[..., j], j) + 0.5) / L
         return u
 
+    def snap(self, u: np.ndarray) -> np.ndarray:
+        """Uniform unit coordinates to allowed values, every allowed value equally likely.
+
+        A stepped input with n + 1 values takes value ``floor(u (n + 1))`` (clipped to n), so a
+        uniform draw gives each value probability 1 / (n + 1) (rounding to the nearest value would
+        give the two ends half that); a categorical input takes its level's centre. Allowed values
+        are left as they are, and continuous and log inputs are unchanged. Every trial a policy
+        chooses passes through here before the world sees it.
+        """
+        if not self.discrete:
+            return np.asarray(u, dtype=float)
+        u = np.array(u, dtype=float, copy=True)
+        for j in self.discrete:
+            g = self.grid(j)
+            k = np.clip(np.floor(np.clip(u[..., j], 0.0, 1.0) * len(g)), 0, len(g) - 1).astype(int)
+            u[..., j] = g[k]
+        return u
+
+    def columns(self, u: np.ndarray) -> dict[str, np.ndarray]:
+        """Unit-cube rows (n, d) as the user's columns: numbers, and level names (text) for categorical inputs."""
+        X = self.from_unit(u)
+        return {name: (self.level_names(X[:, j], j) if self.kind(j) == CATEGORICAL else X[:, j])
+                for j, name in enumerate(self.names)}
+
+    def user_matrix(self, frame) -> np.ndarray:
+        """The inverse of :meth:`columns`: a table's input columns as a float matrix (n, d) of user
+        values, a categorical column's level names read as level indices (unknown names raise)."""
+        cols = []
+        for j, name in enumerate(self.names):
+            v = np.asarray(frame[name])
+            if self.kind(j) == CATEGORICAL:
+                index = {level: i for i, level in enumerate(self.levels[j])}
+                try:
+                    v = np.array([index[str(x)] for x in v], dtype=float)
+                except KeyError as e:
+                    raise ValueError(f"column {name!r} holds {e.args[0]!r}, which is not one of its levels "
+                                     f"({', '.join(self.levels[j])})") from None
+            cols.append(np.asarray(v, dtype=float))
+        return np.stack(cols, axis=-1) if cols else np.empty((0, 0))
+
     def grid(self, j: int) -> np.ndarray:
         """The allowed unit coordinates of a stepped or categorical input j."""
         if self.kind(j) == STEPPED:
@@ -182,13 +227,16 @@ class Space:
             return (np.arange(L) + 0.5) / L
         raise ValueError(f"input {self.names[j]!r} is {self.kind(j)}: it has no grid")
 
-    def library_unit(self) -> np.ndarray:
-        """The library's rows on the unit cube, shape (n, d)."""
+    def library_user(self) -> np.ndarray:
+        """The library's rows as user values (n, d), a categorical input's level names as level indices."""
         if self.library is None:
             raise ValueError("this space has no library")
-        X = np.array([[self.levels[j].index(v) if self.kind(j) == CATEGORICAL else v
-                       for j, v in enumerate(row)] for row in self.library.rows], dtype=float)
-        return self.to_unit(X)
+        return np.array([[self.levels[j].index(v) if self.kind(j) == CATEGORICAL else v
+                          for j, v in enumerate(row)] for row in self.library.rows], dtype=float)
+
+    def library_unit(self) -> np.ndarray:
+        """The library's rows on the unit cube, shape (n, d)."""
+        return self.to_unit(self.library_user())
 
 
 @dataclass(frozen=True)

@@ -35,7 +35,7 @@ def make_world(study: Study, replicate: int) -> World:
         return FunctionWorld(functions.FUNCTIONS[w.function])
     if needs_mixed(study.space):   # stepped or categorical inputs, or a library (simlab.worlds.mixed)
         return make_mixed_world(study, w.prior, study.sign * w.prior.mean, stream(study.seed, replicate, "world"),
-                                dict(w.method_settings)["features"])
+                                dict(w.method_settings)["features"], history=history_arrays(study), noise=w.noise)
     kernel = unit_kernel(w.prior, study)
     if w.lengthscale_within != 1.0 or w.amplitude_within != 1.0:
         kernel = _uncertain(kernel, w, stream(study.seed, replicate, "hyper"))
@@ -52,7 +52,13 @@ def history_arrays(study: Study) -> tuple[np.ndarray, np.ndarray] | None:
     """Past trials on the unit cube and in the internal orientation, or None."""
     if study.history is None:
         return None
-    return study.space.to_unit(np.array(study.history.X)), study.sign * np.array(study.history.y)
+    space, X = study.space, np.array(study.history.X)
+    if space.library is not None:
+        # every past trial is one of the library's rows (spec.py checked and copied its values): take
+        # that row's own unit-cube point, so the policies and the world see it as that row, bit for bit
+        rows = {tuple(r): i for i, r in enumerate(space.library_user())}
+        return space.library_unit()[[rows[tuple(x)] for x in X]], study.sign * np.array(study.history.y)
+    return space.to_unit(X), study.sign * np.array(study.history.y)
 
 
 def _uncertain(kernel, w, rng):
@@ -125,6 +131,33 @@ def _library_material(study: Study, r: int):
     return sequence[: study.campaign.initial], sequence, rows
 
 
+def _discrete_pool(study: Study, rng) -> np.ndarray:
+    """The candidate pool over a space with stepped or categorical inputs: the scrambled Sobol'
+    points moved to allowed values (:meth:`Space.snap`), so each level combination is scored on
+    about pool / K points and polishing moves the continuous inputs within it.
+
+    With no continuous input the space is a finite grid: every point when it has at most ``pool``
+    of them (scored exactly, the same for every replicate), otherwise ``pool`` distinct points
+    taken from ever longer Sobol' prefixes (snapped points repeat, and a repeat is scored twice
+    for nothing). A continuous coordinate of a scrambled Sobol' set never repeats, so there the
+    snapped points are distinct already.
+    """
+    space, m = study.space, study.campaign.pool
+    if len(space.discrete) < space.dim:
+        return space.snap(_sobol(space.dim, m, rng))
+    grids = [space.grid(j) for j in range(space.dim)]
+    if np.prod([len(g) for g in grids], dtype=float) <= m:
+        return np.stack(np.meshgrid(*grids, indexing="ij"), axis=-1).reshape(-1, space.dim)
+    seed = rng.integers(2**63)
+    n = m
+    while True:
+        P = space.snap(_sobol(space.dim, n, np.random.default_rng(seed)))
+        _, first = np.unique(P, axis=0, return_index=True)
+        if len(first) >= m:
+            return P[np.sort(first)[:m]]
+        n *= 2
+
+
 def make_replicate(study: Study, r: int) -> Replicate:
     d, c = study.space.dim, study.campaign
     B = c.horizon
@@ -141,6 +174,10 @@ def make_replicate(study: Study, r: int) -> Replicate:
     shocks, lost = make_observer(study).draw(stream(study.seed, r, "noise"), B)
     if study.space.library is not None:
         design, sequence, pool = _library_material(study, r)
+    elif study.space.discrete:
+        # stepped and categorical inputs take allowed values only (each equally likely from a uniform draw)
+        design, sequence = study.space.snap(design), study.space.snap(sequence)
+        pool = _discrete_pool(study, stream(study.seed, r, "pool"))
     else:
         pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
     return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,

@@ -201,7 +201,6 @@ def test_only_campaigns_of_equal_length_run_in_lockstep():
     assert not fits_lockstep(pbest, belief, batch=1, lost=0.0)       # still one campaign at a time
     assert not fits_lockstep(ei, belief, batch=2, lost=0.0)          # rounds fantasise
     assert not fits_lockstep(ei, belief, batch=1, lost=0.1)          # ragged beliefs
-    assert not fits_lockstep(ei, belief, batch=1, lost=0.0, library=True)   # a library's rows, scored exactly
     refit = Belief(belief.kernel, 0.0, 0.1, refit_every=5)
     assert not fits_lockstep(ei, refit, batch=1, lost=0.0)
 

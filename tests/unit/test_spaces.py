@@ -242,28 +242,28 @@ def test_library_of_one_distinct_row_and_a_missing_file(tmp_path):
         load_study(write(tmp_path, text.replace("library.csv", "absent.csv")), runnable=False)
 
 
-@pytest.mark.parametrize("old,new,field", [
-    ('stages = { low = 1, high = 4, step = 1 }', 'stages = { low = 1, high = 4, step = 1 }', "space.stages"),
-    ('stages = { low = 1, high = 4, step = 1 }', "stages = [1.0, 4.0]", "space.solvent"),
+@pytest.mark.parametrize("old,new", [
+    ('stages = { low = 1, high = 4, step = 1 }', 'stages = { low = 1, high = 4, step = 1 }'),
+    ('stages = { low = 1, high = 4, step = 1 }', "stages = [1.0, 4.0]"),
 ])
-def test_kinds_not_runnable_yet_are_refused_in_one_line(tmp_path, old, new, field):
-    path = write(tmp_path, MIXED.replace(old, new))
-    with pytest.raises(StudyError) as info:
-        load_study(path)
-    msg = str(info.value)
-    assert msg.startswith(f"{path}: {field}: ") and "not supported yet by" in msg and "\n" not in msg, msg
+def test_stepped_and_categorical_studies_are_runnable(tmp_path, old, new):
+    # issue 15 landed: the belief, every rule and the report run over these kinds
+    from simlab.study.spec import unsupported
+    study = load_study(write(tmp_path, MIXED.replace(old, new)))
+    assert unsupported(study) is None and study.space.categorical
 
 
-def test_library_with_a_categorical_column_not_runnable_yet_is_refused(tmp_path):
+def test_library_with_a_categorical_column_is_runnable(tmp_path):
     write(tmp_path, LIBRARY_CSV, "library.csv")
-    with pytest.raises(StudyError, match="space.binder: categorical inputs are not supported yet by the policies"):
-        load_study(write(tmp_path, LIBRARY_TOML))
+    study = load_study(write(tmp_path, LIBRARY_TOML))
+    assert study.space.library.size > 1 and study.space.categorical
 
 
-def test_history_refused_with_stepped_inputs(tmp_path):
-    write(tmp_path, "cooling_rate,stages,seed_load,solvent,y\n", "past.csv")
-    with pytest.raises(StudyError, match=r"\[history\]: past trials are not supported yet"):
-        load_study(write(tmp_path, MIXED + '\n[history]\nfile = "past.csv"\n'), runnable=False)
+def test_history_reads_stepped_and_categorical_inputs(tmp_path):
+    """Past trials over this space read (tests/integration/test_mixed_history.py checks them in full)."""
+    write(tmp_path, "cooling_rate,stages,seed_load,solvent,y\n0.5,2,0.1,water,9.0\n", "past.csv")
+    s = load_study(write(tmp_path, MIXED + '\n[history]\nfile = "past.csv"\n'))
+    assert s.history.X == ((0.5, 2.0, 0.1, 2.0),) and round_trip(s, tmp_path) == s
 
 
 LOG_STUDY = {
