@@ -24,10 +24,12 @@ def box_view(traces, space):
     """The inputs that have a boundary, for :func:`placement_table`: (frame, names, low, high).
 
     Only continuous and log inputs have one (a stepped input's ends are two of its few values,
-    and a categorical input has no order). A log input is measured in ``log x``, where its prior
+    and a categorical input has no order), and a [candidates] library has none. A log input is measured in ``log x``, where its prior
     is stationary, so "within 1 % of a bound" means 1 % of its log range.
     """
     from ..study.types import LOG
+    if space.library is not None:       # the rows are the allowed trials: a row at a column's end is no sign
+        return traces, [], [], []       # that the space is too small, so a library has no boundary to report
     names = [space.names[j] for j in space.numeric if j not in space.discrete]
     logs = [space.names[j] for j in range(space.dim) if space.kind(j) == LOG]
     view = traces.copy() if logs else traces

@@ -190,13 +190,20 @@ class PlacementFigure(Figure):
         return study.campaign.initial < study.campaign.horizon
 
     def caption(self, study, success):
-        return ("Where each policy put the trials it chose itself (after the shared initial design, up to "
+        space = study.space
+        text = ("Where each policy put the trials it chose itself (after the shared initial design, up to "
                 f"{study.campaign.horizon} trials, every campaign pooled): one histogram per input, bars of "
-                "5 % of the range, height the share of the policy's trials. The dark bar at each end is the "
-                "share within 1 % of that bound; the numbers are those of the table above."
-                + (" A stepped or categorical input has one bar per allowed value (no bound: the boundary and corner "
-                   "shares count the continuous inputs only), and a log-scaled input is binned and bounded in "
-                   "its logarithm." if study.space.kinds else ""))
+                "5 % of the range, height the share of the policy's trials.")
+        if space.library is not None:
+            return text + (" A categorical column has one bar per level. A library's rows are the allowed "
+                           "trials, so nothing is counted at a column's ends.")
+        text += (" The dark bar at each end is the share within 1 % of that bound; the numbers are those of the "
+                 "table above.")
+        if space.kinds:
+            text += (" A stepped or categorical input has one bar per allowed value (no bound: the boundary and "
+                     "corner shares count the inputs with a range only), and a log-scaled input is binned and "
+                     "bounded in its logarithm.")
+        return text
 
     def draw(self, given):
         from ..evidence.placement import BAND, own_trials

@@ -24,6 +24,17 @@ def placement_section(study, placement, figures_html):
     figures_html : str
         The figures the page shows in the "placement" section.
     """
+    space = study.space
+    if space.library is not None:         # no boundary to report (evidence.placement.box_view)
+        return ("<h3>Where the policies put their trials</h3><p>Every trial is one of the library's rows, the "
+                "allowed trials, so no share at the ends of a column is reported: a row there is no sign that the "
+                "search space is drawn too small. The figure shows how each policy spread its own trials over "
+                "the columns.</p>" + figures_html)
+    bounded = [j for j in space.numeric if j not in space.discrete]   # inputs with a boundary
+    if not bounded:
+        return ("<h3>Where the policies put their trials</h3><p>No input has a range (every one is stepped or "
+                "categorical), so no boundary share is reported; the figure shows how each policy spread its own "
+                "trials over the allowed values.</p>" + figures_html)
     frame = placement.frame
     band = fmt_pct(float(frame["band"].iloc[0])) if len(frame) else "1"
     rows, heavy = [], []
@@ -38,12 +49,15 @@ def placement_section(study, placement, figures_html):
             heavy.append(i)
     if not rows:
         return ""
-    random_edge = 1.0 - (1.0 - 2.0 * float(frame["band"].iloc[0])) ** study.space.dim
+    random_edge = 1.0 - (1.0 - 2.0 * float(frame["band"].iloc[0])) ** len(bounded)
+    which = ("on any input" if len(bounded) == space.dim else
+             "on any input with a range (" + ", ".join(space.names[j] for j in bounded) + "; stepped and "
+             "categorical inputs have no boundary, and a log-scaled one is measured in its logarithm)")
     parts = [
         "<h3>Where the policies put their trials</h3>",
         (f"<p>Of the trials each policy chose itself (after the shared initial design; past trials left out), the "
          f"share <i>on the boundary</i> of the search box — within {band} % of an input's range of its low or "
-         f"high bound, on any input — and <i>in a corner</i> — that close to a bound on every input. Uniformly "
+         f"high bound, {which} — and <i>in a corner</i> — that close to a bound on every such input. Uniformly "
          f"random trials would land on the boundary {fmt_pct(random_edge)} % of the time. The intervals allow "
          "for campaigns that differ from one another: a campaign that goes to the edge tends to stay there, so "
          "the trials are not independent. They are Clopper–Pearson intervals at the effective number of "

@@ -514,9 +514,12 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
                        alpha=0.45, edgecolor=colors[label], linewidth=0.8)
                 reach = width * (1 + 1e-9)   # the allowance of simlab.evidence.placement.edge_flags for rounding
                 ends = [np.count_nonzero(x - lo <= reach) / n, np.count_nonzero(hi - x <= reach) / n]
-                ax.bar(draw(np.array([lo, hi - width])), ends, width=draw(np.array([lo + width, hi])) -
-                       draw(np.array([lo, hi - width])), align="edge", color="#000000", linewidth=0,
-                       gid=f"band:{label}:{name}")
+                if space is not None and space.library is not None:
+                    ends = []                # a library has no boundary (simlab.evidence.placement.box_view)
+                else:
+                    ax.bar(draw(np.array([lo, hi - width])), ends, width=draw(np.array([lo + width, hi])) -
+                           draw(np.array([lo, hi - width])), align="edge", color="#000000", linewidth=0,
+                           gid=f"band:{label}:{name}")
                 top = max(top, float(heights.max(initial=0)) / n, *ends)
                 if log:
                     ax.set_xscale("log")
@@ -527,7 +530,7 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
             if j == 0:
                 ax.set_ylabel(display_label(label), fontsize=9, color=colors[label], rotation=0, ha="right",
                               va="center")
-        if placement is not None:
+        if placement is not None and not (space is not None and space.library is not None):
             row = placement[placement["policy"].astype(str) == label]
             if len(row):
                 r = row.iloc[0]
@@ -538,6 +541,7 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
     for ax in axes.flat:
         percent_axis(ax.yaxis)
         ax.yaxis.set_major_locator(MaxNLocator(2))
-    fig.suptitle(f"Where each policy's own trials land (dark bars: within {100 * band:g} % of a bound)",
+    fig.suptitle("Where each policy's own trials land" + ("" if space is not None and space.library is not None else
+                 f" (dark bars: within {100 * band:g} % of a bound)"),
                  fontsize=10, x=0.01, ha="left")
     return fig

@@ -211,3 +211,23 @@ def test_without_campaign_differences_the_campaign_aware_interval_is_the_exact_o
     assert 0.5 * 1000 < eff <= 1000 * 1.01
     assert np.isnan(effective_trials(k[:1], np.full(1, 25)))      # one campaign: no variance to estimate
     assert effective_trials(np.zeros(40), np.full(40, 25)) == 1000  # no hit: n, as Korn & Graubard
+
+
+def test_box_view_counts_only_inputs_with_a_range():
+    # stepped and categorical inputs have no boundary, a log input is measured in its logarithm, and a
+    # library has none at all (its rows are the allowed trials); common practice, the reading
+    from simlab.evidence.placement import box_view
+    from simlab.study.types import Library, Space
+    space = Space(names=("rate", "dose", "stages", "carrier"), low=(0.0, 0.01, 1.0, 0.0), high=(1.0, 10.0, 4.0, 1.0),
+                  kinds=("continuous", "log", "stepped", "categorical"), steps=(0.0, 0.0, 1.0, 0.0),
+                  levels=((), (), (), ("oil", "gel")))
+    frame = pd.DataFrame({"rate": [0.0, 0.5], "dose": [0.01, 1.0], "stages": [1.0, 4.0], "carrier": ["oil", "gel"]})
+    view, names, low, high = box_view(frame, space)
+    assert names == ["rate", "dose"]
+    np.testing.assert_allclose(view["dose"], np.log([0.01, 1.0]))
+    np.testing.assert_allclose(low, [0.0, np.log(0.01)]) and np.testing.assert_allclose(high, [1.0, np.log(10.0)])
+    flags = edge_flags(view[names].to_numpy(float), low, high)
+    assert flags.tolist() == [[True, True], [False, False]]        # the log bound 0.01 is on it, 1.0 is not
+    library = Space(names=("rate",), low=(0.0,), high=(1.0,), kinds=("continuous",), steps=(0.0,), levels=((),),
+                    library=Library(file="x.csv", rows=((0.0,), (1.0,))))
+    assert box_view(frame, library)[1] == []
