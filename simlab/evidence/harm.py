@@ -74,7 +74,7 @@ def harm_per_campaign(traces, *, floor, sign, budget, reference=None):
     -------
     DataFrame
         One row per campaign: ``policy, replicate, trials, harmful, own_trials, own_harmful,
-        shortfall``. ``harmful`` counts trials 1 .. budget, the shared initial design included
+        shortfall, floor``. ``harmful`` counts trials 1 .. budget, the shared initial design included
         (its trials are run too); ``own_*`` only the policy's own trials after the design. Past
         trials (``[history]``, trial <= 0) never count. A lost trial counts: it was run, only
         its result was lost. ``shortfall`` is the sum over the same trials as ``harmful`` of
@@ -109,6 +109,7 @@ def harm_per_campaign(traces, *, floor, sign, budget, reference=None):
     per = frame.groupby(["policy", "replicate"], sort=False).agg(
         trials=("harmful", "size"), harmful=("harmful", "sum"), own_trials=("own", "sum"),
         own_harmful=("own_harmful", "sum"), shortfall=("shortfall", "sum")).reset_index()
+    per["floor"] = floor
     order = {p: i for i, p in enumerate(map(str, policy_order(traces)))}
     per = per.sort_values(["policy", "replicate"], key=lambda c: c.map(order) if c.name == "policy" else c)
     return per.reset_index(drop=True)
