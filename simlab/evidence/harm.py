@@ -3,7 +3,8 @@ the share of campaigns with any, and the shortfall of the trials themselves agai
 
 from __future__ import annotations
 
-__all__ = ["harm_per_campaign", "harm_table", "harm_pairs", "count_mean_interval", "HARM_DIFFERENCE", "FEW"]
+__all__ = ["harm_per_campaign", "harm_table", "harm_pairs", "count_mean_interval", "skew_mean_interval",
+           "HARM_DIFFERENCE", "FEW"]
 
 from itertools import combinations
 
@@ -115,31 +116,66 @@ def harm_per_campaign(traces, *, floor, sign, budget, reference=None):
     return per.reset_index(drop=True)
 
 
-def _t_interval(x, confidence_level):
-    """Student t interval of a mean (scipy.stats.ttest_1samp); NaN below two values, a point when all agree."""
+def skew_mean_interval(x, confidence_level):
+    """Interval of a mean for a skewed sample: Student t with Hall's (1992) transformation.
+
+    Parameters
+    ----------
+    x : array_like of shape (n,)
+    confidence_level : float
+
+    Returns
+    -------
+    low, high : float
+        NaN below two values; a point when every value agrees.
+
+    Notes
+    -----
+    Hall (1992), On the removal of skewness by transformation, J. R. Statist. Soc. B 54:221
+    (from memory): with ``T = sqrt(n) (mean - mu) / s`` and the sample skewness ``g = m3 / s^3``,
+    ``h(T) = T + c / 2 + c T^2 + c^2 T^3 / 3`` with ``c = g / (3 sqrt(n))`` is nearly
+    symmetric and, unlike Johnson's (1978) correction, increasing, so ``{mu : |h(T)| <=
+    t_{n-1}}`` is an interval with ends ``mean - h^-1(+-q) s / sqrt(n)``, ``h^-1(v) =
+    (cbrt(1 + 3 c (v - c / 2)) - 1) / c``. Harmful counts and shortfalls are skewed to the right
+    (a few bad worlds carry much of the harm), where the plain t interval is too short on the
+    right: 91-92 % for 95 % at 50 campaigns on over-dispersed counts, against 94-97 % with the
+    transformation (tests/unit/test_harm.py). Written here because SciPy has the t interval
+    (scipy.stats.ttest_1samp) but no skewness-corrected one; symmetric samples (g = 0) give
+    exactly the t interval.
+    """
     from scipy import stats
 
     x = np.asarray(x, dtype=float)
-    if x.size < 2:
+    n = x.size
+    if n < 2:
         return np.nan, np.nan
-    if np.all(x == x[0]):
-        return float(x[0]), float(x[0])
-    ci = stats.ttest_1samp(x, 0.0).confidence_interval(confidence_level)
-    return float(ci.low), float(ci.high)
+    mean, sd = float(x.mean()), float(x.std(ddof=1))
+    if sd == 0.0:
+        return mean, mean
+    g = float(np.mean((x - mean) ** 3)) / sd**3
+    c = g / (3.0 * np.sqrt(n))
+    q = float(stats.t.ppf(0.5 + confidence_level / 2.0, n - 1))
+
+    def inverse(v):
+        return v if abs(c) < 1e-12 else (np.cbrt(1.0 + 3.0 * c * (v - c / 2.0)) - 1.0) / c
+
+    scale = sd / np.sqrt(n)
+    return mean - inverse(q) * scale, mean - inverse(-q) * scale
 
 
 def count_mean_interval(x, low, high, confidence_level):
     """Interval of the mean of per-campaign counts (or paired differences of counts) in [low, high].
 
-    The Student t interval (scipy.stats.ttest_1samp) when at least :data:`FEW` values are
-    non-zero, else the betting interval (`bounded_mean_interval`, coverage at least the nominal
-    level for every distribution on [low, high]). Repeated studies at 50 campaigns on
-    beta-binomial counts from rare to common harm (tests/unit/test_harm.py) put its coverage
-    at or above 93 % for 95 %; the t interval alone falls to about 70 % where harm is rare.
+    The skewness-corrected t interval (`skew_mean_interval`) when at least :data:`FEW` values
+    are non-zero, else the betting interval (`bounded_mean_interval`, coverage at least the
+    nominal level for every distribution on [low, high]). Repeated studies at 50 campaigns on
+    beta-binomial counts from rare to common, over-dispersed harm (tests/unit/test_harm.py) put
+    its coverage at or above 93 % for 95 %; the t interval alone falls to about 70 % where harm
+    is rare.
     """
     x = np.asarray(x, dtype=float)
     if np.count_nonzero(x) >= FEW:
-        return _t_interval(x, confidence_level)
+        return skew_mean_interval(x, confidence_level)
     return bounded_mean_interval(x, low, high, confidence_level)
 
 
@@ -170,14 +206,14 @@ def harm_table(traces, *, floor, sign, budgets, initial, reference=None, confide
     Campaigns are the independent units (one world each); a campaign's trials are not (a
     campaign that goes where the world is bad tends to stay there), so nothing here treats
     trials as independent. The mean of harmful trials per campaign has the interval of
-    `count_mean_interval`: Student t over campaigns, or, when fewer than :data:`FEW` campaigns
+    `count_mean_interval`: Student t over campaigns with Hall's (1992) skewness correction, or, when fewer than :data:`FEW` campaigns
     have a harmful trial (a cautious policy's counts are mostly 0, where the t interval and the
     bootstrap shrink to nothing), the betting interval of Waudby-Smith & Ramdas (2024), which
     covers whatever the distribution but allows for a rare campaign whose every trial is
     harmful, so it is wide. The shares of campaigns
     with any harmful trial are Clopper-Pearson (`share_interval`). The shortfall has no upper
-    bound (a world has no largest range), so its mean has the Student t interval
-    (scipy.stats.ttest_1samp), checked by simulation on skewed sums.
+    bound (a world has no largest range), so its mean has the skewness-corrected t interval
+    alone (`skew_mean_interval`), checked by simulation on skewed sums.
 
     For a horizon-aware policy (``horizon_aware``) the traces hold, up to each smaller budget,
     the campaign planned for that budget, so its counts at a larger budget add trials of
@@ -202,7 +238,7 @@ def harm_table(traces, *, floor, sign, budgets, initial, reference=None, confide
             hit, own_hit = int((harmful > 0).sum()), int((own > 0).sum())
             share_lo, share_hi = share_interval(hit, n, confidence_level)
             own_share_lo, own_share_hi = share_interval(own_hit, n, confidence_level)
-            short_lo, short_hi = _t_interval(mine["shortfall"], confidence_level)
+            short_lo, short_hi = skew_mean_interval(mine["shortfall"], confidence_level)
             rows.append({
                 "policy": policy, "budget": budget, "replicates": n, "floor": float(floor), "trials": budget,
                 "harmful_mean": harmful.mean(), "harmful_low": lo, "harmful_high": hi,

@@ -67,7 +67,7 @@ def harm_section(study, harm, figures_html, choice=None, attitude=None):
          "was run). <i>Shortfall</i> is the sum over the same trials of how far each fell short of the world's "
          f"best, in {unit_words(study)}: the cost inside the campaign, where regret is the cost of what is "
          "shipped after it. Campaigns are the independent units: means have Student t intervals over "
-         f"campaigns (where fewer than {FEW} campaigns had a harmful trial, the betting interval of "
+         f"campaigns, corrected for skewness (Hall 1992; where fewer than {FEW} campaigns had a harmful trial, the betting interval of "
          "Waudby-Smith &amp; Ramdas 2024 instead, which holds whatever the distribution but is wide), shares "
          f"exact Clopper–Pearson intervals (<code>{HARM}</code>).</p>"),
         sentence,
