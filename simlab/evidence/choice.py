@@ -3,7 +3,7 @@ lowest failure risk, fewest trials), with the evidence for its lead. The three a
 at the same campaigns, so they share one error budget (alpha / 3, Holm within each), and a lead
 counts as clear only when it also exceeds the difference that matters."""
 
-__all__ = ["ATTITUDES", "choice_table"]
+__all__ = ["ATTITUDES", "HARM_ATTITUDE", "choice_table"]
 
 import numpy as np
 import pandas as pd
@@ -19,6 +19,8 @@ ATTITUDES = (
     "lowest failure risk",
     "fewest trials for the requested success level",
 )
+# The fourth attitude, only when the study gives a [target] floor (then alpha is shared by four).
+HARM_ATTITUDE = "fewest harmful trials"
 
 
 def _oriented(pairs, leader, other, columns):
@@ -33,7 +35,8 @@ def _oriented(pairs, leader, other, columns):
     return row, (value, low, high)
 
 
-def _lead_verdict(pairs, leader, others, *, favours_col, p_col, test_name, level, alpha, effect, margin):
+def _lead_verdict(pairs, leader, others, *, favours_col, p_col, test_name, level, alpha, effect, margin,
+                  attitudes=len(ATTITUDES)):
     """'clear' or 'tie' for a paired attitude, with the p-value and the reason.
 
     Clear needs, against *every* other policy: the test favours the leader, its
@@ -49,7 +52,7 @@ def _lead_verdict(pairs, leader, others, *, favours_col, p_col, test_name, level
         checks[other] = (row[favours_col] == leader, float(row[p_col]), beyond, (value, low, high))
     worst_p = max(c[1] for c in checks.values())
     label = f"Holm-adjusted {test_name} p"
-    share = f"a clear lead needs p < {level:.2g}: alpha {alpha:g} shared by the {len(ATTITUDES)} attitudes"
+    share = f"a clear lead needs p < {level:.2g}: alpha {alpha:g} shared by the {attitudes} attitudes"
     if all(f and p < level and b for f, p, b, _ in checks.values()):
         closest = max(checks, key=lambda o: checks[o][3][2])
         value, low, high = checks[closest][3]
@@ -112,6 +115,8 @@ def choice_table(
     n_resamples=TABLE_RESAMPLES,
     seed=0,
     units=None,
+    harm=None,
+    harm_difference=None,
 ):
     """The policy to pick under each risk attitude, and whether its lead is clear.
 
@@ -144,6 +149,13 @@ def choice_table(
     units : str, optional
         The objective's unit for the evidence sentences (the study's ``[study] units``);
         default "objective unit(s)".
+    harm : DataFrame, optional
+        Harmful trials of every campaign at `budget`
+        (`simlab.evidence.harm.harm_per_campaign`, for a study with ``[target] floor``): adds
+        the attitude "fewest harmful trials", and alpha is then shared by four attitudes.
+    harm_difference : float, optional
+        Smallest difference in mean harmful trials per campaign that matters; default
+        `simlab.evidence.harm.HARM_DIFFERENCE` (0.1, a tenth of a harmful trial per campaign).
 
     Returns
     -------
@@ -191,6 +203,14 @@ def choice_table(
       budget (a policy whose band never reaches counts as beaten). The ranges are then
       apart by at least one whole trial, the unit a team pays for, so no further
       margin is applied.
+    - **fewest harmful trials** (only with `harm`): leader and runner-up are the two lowest
+      means of harmful trials per campaign at `budget` (ties broken by lower mean shortfall,
+      then policy order); value and interval are the mean and its interval
+      (`simlab.evidence.harm.harm_table`). Clear when, against every other policy, the
+      paired Wilcoxon signed-rank test on the per-replicate differences of harmful counts is
+      Holm-adjusted p < alpha / 4, the signed ranks favour the leader, and the 95 % interval
+      of the mean paired difference (`simlab.evidence.harm.harm_pairs`) lies wholly below
+      ``-harm_difference``.
     """
     frame = check_traces(traces)
     (budget,) = check_budgets(budget, name="budget")
@@ -205,7 +225,8 @@ def choice_table(
     policies = list(frame["policy"].cat.categories)
     if len(policies) < 2:
         raise ValueError(f"a choice needs at least two policies; got {policies}")
-    level = alpha / len(ATTITUDES)  # Bonferroni over the attitudes
+    attitudes = len(ATTITUDES) + (harm is not None)
+    level = alpha / attitudes  # Bonferroni over the attitudes
     rng = np.random.default_rng(seed)
     summary = budget_summary(
         frame, budgets=[budget], target=target, confidence_level=confidence_level,
@@ -228,7 +249,7 @@ def choice_table(
                      f"{difference:g} {_unit_words(units, difference)}, the smallest difference that matters")
     lead, p_value, evidence = _lead_verdict(
         pairs, leader, ranked[1:], favours_col="regret_favours", p_col="regret_p_holm", test_name="Wilcoxon",
-        level=level, alpha=alpha, effect=regret_effect, margin=difference,
+        level=level, alpha=alpha, effect=regret_effect, margin=difference, attitudes=attitudes,
     )
     rows.append(
         _choice_row(ATTITUDES[0], f"median regret at budget {budget}", summary, leader, runner,
@@ -247,6 +268,7 @@ def choice_table(
     lead, p_value, evidence = _lead_verdict(
         pairs, leader, ranked[1:], favours_col="failure_favours", p_col="failure_p_holm",
         test_name="McNemar exact", level=level, alpha=alpha, effect=failure_effect, margin=failure_difference,
+        attitudes=attitudes,
     )
     rows.append(
         _choice_row(ATTITUDES[1], f"share with regret > {target:g} at budget {budget}", summary, leader,
@@ -276,7 +298,7 @@ def choice_table(
         )  # fmt: skip
     else:
         leader, runner = ranked[0], ranked[1]
-        bands = f"with the bands at {100 * (1.0 - level):.1f} %, alpha {alpha:g} shared by the {len(ATTITUDES)} attitudes"
+        bands = f"with the bands at {100 * (1.0 - level):.1f} %, alpha {alpha:g} shared by the {attitudes} attitudes"
         conservative = wide.at[leader, "budget_conservative"]
         blockers = [
             o for o in ranked[1:]
@@ -298,7 +320,45 @@ def choice_table(
                     f"{other} from {int(wide.at[other, 'budget_optimistic'])} ({bands})"
                 )
         rows.append(_choice_row(ATTITUDES[2], criterion, plan, leader, runner, columns, lead, np.nan, evidence))
+    if harm is not None:
+        rows.append(_harm_row(harm, policies, budget=budget, level=level, alpha=alpha, attitudes=attitudes,
+                              confidence_level=confidence_level, margin=harm_difference))
     return pd.DataFrame(rows)
+
+
+def _harm_row(harm, policies, *, budget, level, alpha, attitudes, confidence_level, margin):
+    """The row of the attitude "fewest harmful trials" (see `choice_table`)."""
+    from .harm import HARM_DIFFERENCE, count_mean_interval, harm_pairs
+
+    margin = HARM_DIFFERENCE if margin is None else _check_margin("harm_difference", margin)
+    harm = harm[harm["policy"].isin(policies)]
+    missing = [p for p in policies if p not in set(harm["policy"])]
+    if missing:
+        raise ValueError(f"`harm` has no campaigns of policies {missing}")
+    trials = int(harm["trials"].max())
+    if trials != budget:
+        raise ValueError(f"`harm` counts {trials} trials per campaign, not the budget {budget}")
+    initial = int((harm["trials"] - harm["own_trials"]).min())
+    rows = {}
+    for policy, mine in harm.groupby("policy", sort=False):
+        x = mine["harmful"].to_numpy(dtype=float)
+        low, high = count_mean_interval(x, 0.0, float(trials), confidence_level)
+        rows[policy] = {"harmful_mean": x.mean(), "harmful_low": low, "harmful_high": high,
+                        "shortfall": float(mine["shortfall"].mean())}
+    table = pd.DataFrame.from_dict(rows, orient="index").loc[policies]
+    position = {p: i for i, p in enumerate(policies)}
+    ranked = sorted(policies, key=lambda p: (table.at[p, "harmful_mean"], table.at[p, "shortfall"], position[p]))
+    pairs = harm_pairs(harm, trials=trials, initial=initial, confidence_level=confidence_level)
+    effect = (("harm_difference", "harm_difference_low", "harm_difference_high"),
+              "mean paired difference in harmful trials per campaign", lambda v: f"{v:.3g}",
+              f"{margin:g} harmful trials per campaign, the smallest difference that matters")
+    lead, p_value, evidence = _lead_verdict(
+        pairs, ranked[0], ranked[1:], favours_col="harm_favours", p_col="harm_p_holm", test_name="Wilcoxon",
+        level=level, alpha=alpha, effect=effect, margin=margin, attitudes=attitudes,
+    )
+    floor = f" (true value worse than the floor {float(harm['floor'].iloc[0]):g})" if "floor" in harm.columns else ""
+    return _choice_row(HARM_ATTITUDE, f"harmful trials per campaign{floor} in {budget} trials", table, ranked[0],
+                       ranked[1], ("harmful_mean", "harmful_low", "harmful_high"), lead, p_value, evidence)
 
 
 def _choice_row(attitude, criterion, table, leader, runner, columns, lead, p_value, evidence):

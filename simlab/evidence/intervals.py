@@ -80,6 +80,82 @@ def share_interval(count, n, confidence_level):
     return np.asarray(low, dtype=float), np.asarray(high, dtype=float)
 
 
+def bounded_mean_interval(x, low, high, confidence_level, *, grid=2001, cap=0.75):
+    """Interval for the mean of independent values known to lie in [low, high], by betting.
+
+    Parameters
+    ----------
+    x : array_like of shape (n,)
+        The values (e.g. harmful trials per campaign, one value per campaign), in their order
+        of sampling (replicate order: independent worlds).
+    low, high : float
+        Bounds every value respects whatever the world (e.g. 0 and the trials counted).
+    confidence_level : float
+    grid : int
+        Candidate means tried between `low` and `high`; each end moves out by one grid step
+        so that the interval contains the exact one.
+    cap : float in (0, 1)
+        Largest bet as a share of the wealth that may be lost (the paper's c).
+
+    Returns
+    -------
+    low, high : float
+        NaN for an empty sample; (low, low) when ``high == low``.
+
+    Notes
+    -----
+    Waudby-Smith & Ramdas (2024), Estimating means of bounded random variables by betting, J. R.
+    Statist. Soc. B 86:1 (arXiv:2010.09686), the hedged capital process with the
+    predictable plug-in bets tuned for a fixed n (their Section 4 and Remark on fixed-time
+    intervals, from memory): values scaled to u in [0, 1]; for a candidate mean m,
+    ``K+(m) = prod(1 + l+_i (u_i - m))`` and ``K-(m) = prod(1 - l-_i (u_i - m))`` with
+    ``l_i = sqrt(2 log(2 / a) / (n s2_{i-1}))``, ``s2_t = (1/4 + sum_{j<=t} (u_j - mu_j)^2) / (t + 1)``,
+    ``mu_t = (1/2 + sum_{j<=t} u_j) / (t + 1)``, truncated to ``l+ <= cap / m`` and
+    ``l- <= cap / (1 - m)`` so that no factor is below ``1 - cap``. At the true mean both are
+    non-negative martingales of mean 1, so by Markov's inequality ``max(K+, K-) / 2 >= 1 / a``
+    happens with probability at most ``a``: the candidates kept, an interval (K+ falls and K-
+    rises with m), cover with probability at least ``1 - a`` for every distribution on
+    [low, high] and every n. Written here because neither SciPy nor the project's other
+    libraries offer a mean interval with guaranteed coverage at small n: the t interval and
+    the bootstrap have none near the ends of the range, where a cautious policy's harmful
+    counts sit (all zero in most campaigns: both then give a zero-width interval), which
+    tests/unit/test_harm.py shows by simulation.
+    """
+    x = np.asarray(x, dtype=float).ravel()
+    low, high = float(low), float(high)
+    if x.size == 0:
+        return np.nan, np.nan
+    if not high >= low or not np.all(np.isfinite(x)):
+        raise ValueError(f"`x` must be finite and `high` >= `low`; got low={low!r}, high={high!r}")
+    span = high - low
+    if span == 0.0:
+        return low, low
+    u = (x - low) / span
+    if u.min() < -1e-9 or u.max() > 1 + 1e-9:
+        raise ValueError(f"every value must lie in [{low:g}, {high:g}]; got {x.min():g} to {x.max():g}")
+    u = np.clip(u, 0.0, 1.0)
+    n = u.size
+    a = 1.0 - confidence_level
+    t = np.arange(1, n + 1)
+    mu = (0.5 + np.cumsum(u)) / (t + 1)
+    s2 = (0.25 + np.cumsum((u - mu) ** 2)) / (t + 1)
+    s2_before = np.concatenate([[0.25], s2[:-1]])          # predictable: from the values before i only
+    bet = np.sqrt(2.0 * np.log(2.0 / a) / (n * s2_before))
+    m = np.linspace(0.0, 1.0, grid)[:, None]
+    with np.errstate(divide="ignore"):
+        up = np.minimum(bet, cap / m)
+        down = np.minimum(bet, cap / (1.0 - m))
+    log_up = np.log1p(up * (u - m)).sum(axis=1)
+    log_down = np.log1p(-down * (u - m)).sum(axis=1)
+    rejected = np.maximum(log_up, log_down) + np.log(0.5) >= np.log(1.0 / a)
+    kept = np.flatnonzero(~rejected)
+    if kept.size == 0:                       # narrower than a grid step: around the least wealth
+        best = int(np.argmin(np.maximum(log_up, log_down)))
+        kept = np.array([best])
+    lo, hi = max(int(kept[0]) - 1, 0), min(int(kept[-1]) + 1, grid - 1)
+    return low + span * float(m[lo, 0]), low + span * float(m[hi, 0])
+
+
 def median_ranks(n, confidence_level):
     """1-based ranks (l, u) of the order statistics bounding the median, or None.
 

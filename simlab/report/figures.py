@@ -18,12 +18,12 @@ from typing import Any, ClassVar
 import pandas as pd
 
 from .cells import fmt_pct, number, unit_label, unit_words
-from .files import PAIRWISE, PLACEMENT, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
+from .files import HARM, PAIRWISE, PLACEMENT, SUMMARY, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
 
 # Where the page shows figures: after the budget table, after the first-passage table, after
-# the pairwise table, after the table of where trials land, at the end of the results, and in
-# the sweep's own section.
-SECTIONS = ("results", "first_passage", "pairwise", "placement", "snapshot", "sweep")
+# the pairwise table, after the table of where trials land, after the harmful trials (with a
+# floor), at the end of the results, and in the sweep's own section.
+SECTIONS = ("results", "first_passage", "pairwise", "placement", "harm", "snapshot", "sweep")
 
 
 @dataclass(frozen=True)
@@ -214,6 +214,27 @@ class PlacementFigure(Figure):
                                       space=space if space.kinds else None)
 
 
+class HarmFigure(Figure):
+    stem, section = "harm", "harm"
+    alt = "Median final regret against harmful trials per campaign, one point per policy"
+
+    def applies(self, study, tables):
+        return HARM in tables
+
+    def caption(self, study, success):
+        return (f"Each policy after {study.campaign.horizon} trials: the mean number of harmful trials per "
+                f"campaign (true value worse than the floor of {number(study.floor)} {unit_words(study)}, the "
+                "shared initial design included) against the median regret of what it recommends, with the 95 % "
+                f"intervals of both (<code>{HARM}</code>, <code>{SUMMARY}</code>). Cautious rules sit to the "
+                "left, bold ones lower down; the dashed line is the target.")
+
+    def draw(self, given):
+        from . import plots
+        s = given.study
+        return plots.harm_figure(given.tables[HARM], given.tables[SUMMARY], budget=s.campaign.horizon,
+                                 target=s.target, floor=s.floor, colors=given.colors, units=unit_label(s))
+
+
 class SnapshotFigure(Figure):
     stem, section, alt = "snapshot", "snapshot", "Campaign snapshot of one replicate"
 
@@ -260,7 +281,7 @@ class SweepFigure(Figure):
 
 FIGURES: dict[str, Figure] = {f.stem: f for f in (
     RegretFigure(), RoundsFigure(), FailureFigure(), FinalRegretFigure(),
-    FirstPassageFigure(), WinRateFigure(), PlacementFigure(), SnapshotFigure(), SweepFigure(),
+    FirstPassageFigure(), WinRateFigure(), PlacementFigure(), HarmFigure(), SnapshotFigure(), SweepFigure(),
     # simlab 0.4 drew the within-target share as a figure of its own: the miss-risk figure is its complement
     RetiredFigure("within_target"),
 )}

@@ -10,11 +10,12 @@ from pathlib import Path
 import pandas as pd
 
 from ..evidence import choice, compare, frame, metrics, reach
+from ..evidence.harm import harm_per_campaign, harm_table
 from ..evidence.placement import box_view, placement_table
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
 from .figures import FigureInput
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, PLACEMENT, REPORT, SUMMARY, SWEEP_RANKING,
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, REPORT, SUMMARY, SWEEP_RANKING,
                     SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
 from .page import render
 
@@ -34,11 +35,12 @@ class ReportFiles:
     figures: tuple[Path, ...] = field(default=())
     within_target: Path | None = None   # within_target.csv (always written; a default keeps old callers working)
     placement: Path | None = None       # placement.csv (always written; a default keeps old callers working)
+    harm: Path | None = None            # harm.csv (only with [target] floor)
 
     def paths(self) -> tuple[Path, ...]:
         """Every file written, CSVs first, then figures, then the report."""
         tables = (self.summary, self.within_target, self.trials_to_target, self.trials_to_target_summary,
-                  self.budget_plan, self.pairwise, self.choice, self.placement)
+                  self.budget_plan, self.pairwise, self.choice, self.placement, self.harm)
         return tuple(p for p in tables if p is not None) + self.figures + (self.report,)
 
 
@@ -82,7 +84,8 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         tables ``trials_to_target.csv`` (`reach_curves`) and ``trials_to_target_summary.csv``
         (`trials_to_target_summary`, median and the success level),
         ``pairwise.csv`` (at the largest budget) and ``choice.csv`` (both only with two
-        or more policies), the figures and ``report.html``.
+        or more policies), ``harm.csv`` (`simlab.evidence.harm.harm_table`, only with
+        ``[target] floor``), the figures and ``report.html``.
 
     Notes
     -----
@@ -119,12 +122,20 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     tables[BUDGET_PLAN] = reach.budget_plan(traces, target=target, success=success)
     paths[BUDGET_PLAN] = _write_csv(tables[BUDGET_PLAN], BUDGET_PLAN)
     step(1)
+    harm = None
+    if study.floor is not None:   # harmful trials (no step of its own: it is quick)
+        reference = _reference(folder)
+        tables[HARM] = harm_table(traces, floor=study.floor, sign=study.sign, budgets=budgets,
+                                  initial=study.campaign.initial, reference=reference)
+        paths[HARM] = _write_csv(tables[HARM], HARM)
+        harm = harm_per_campaign(traces, floor=study.floor, sign=study.sign, budget=horizon, reference=reference)
     if several:
         tables[PAIRWISE] = compare.pairwise(traces, budget=horizon, target=target)
         paths[PAIRWISE] = _write_csv(tables[PAIRWISE], PAIRWISE)
         step(1)
         tables[CHOICE] = choice.choice_table(traces, budget=horizon, target=target, success=success, seed=seed,
-                                              difference=study.lead_difference, units=study.units or None)
+                                              difference=study.lead_difference, units=study.units or None,
+                                              harm=harm)
         paths[CHOICE] = _write_csv(tables[CHOICE], CHOICE)
         step(1)
     else:
@@ -162,8 +173,18 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
         trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
         pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
-        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT],
+        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM),
     )
+
+
+def _reference(folder):
+    """The world's best value per replicate from the folder's worlds.csv, or None (harm.py then reads
+    it back from the traces)."""
+    path = Path(folder) / WORLDS
+    if not path.is_file():
+        return None
+    worlds = pd.read_csv(path)
+    return worlds.set_index("replicate")["reference"] if "reference" in worlds.columns else None
 
 
 def _levels(success):

@@ -10,15 +10,18 @@ import re
 import numpy as np
 
 from ..evidence import choice
+from ..evidence.harm import HARM_DIFFERENCE
 from .answer import MISS_RISK_WORDS, answer_section
 from .cells import Cells, escape, fmt_pct, is_missing, number, unit_words
 from .describe import _assumptions, _cautions, _limits, _question
 from .figures import FIGURES as FIGURE_REGISTRY
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, PAIRWISE, PLACEMENT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
                     TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
+from .harmful import harm_section
 from .landing import placement_section
 
 _ATTITUDE_REGRET, _ATTITUDE_FAILURE, _ATTITUDE_TRIALS = choice.ATTITUDES
+_ATTITUDE_HARM = choice.HARM_ATTITUDE
 
 
 # ---------------------------------------------------------------------------
@@ -90,6 +93,7 @@ def render(study, tables, images, *, success):
     choice = Cells(CHOICE, tables[CHOICE]) if CHOICE in tables else None
     sweep = Cells(SWEEP_RANKING, tables[SWEEP_RANKING]) if SWEEP_RANKING in tables else None
     placement = Cells(PLACEMENT, tables[PLACEMENT]) if PLACEMENT in tables else None
+    harm = Cells(HARM, tables[HARM]) if HARM in tables else None
     title = f"Choosing a policy and a trial budget: {study.name}"
     parts = [
         "<!DOCTYPE html>",
@@ -104,13 +108,13 @@ def render(study, tables, images, *, success):
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
         _optimum_warning(study, tables.get(WORLDS)),
-        _results(study, summary, reach, pairs, images, success, placement),
+        _results(study, summary, reach, pairs, images, success, placement, harm=harm, choice=choice),
         _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
         _limits(study),
         _cautions(),
         _question(study, success),     # the appendix: the question as asked, the assumptions and method
         _assumptions(study, __version__),
-        _files_section(pairs is not None, bool(images), sweep is not None, placement is not None),
+        _files_section(pairs is not None, bool(images), sweep is not None, placement is not None, harm is not None),
         (f"<footer>Written by simlab {escape(__version__)} from the stored traces of study "
          f"“{escape(study.name)}”. Rebuilding it from the same traces and seed gives the same numbers.</footer>"),
         "</body></html>",
@@ -300,7 +304,7 @@ def _pairwise_table(study, pairs):
     )
 
 
-def _results(study, summary, reach, pairs, images, success, placement=None):
+def _results(study, summary, reach, pairs, images, success, placement=None, *, harm=None, choice=None):
     horizon = study.campaign.horizon
     parts = [
         '<section id="results"><h2>3. Results and risks</h2>',
@@ -343,6 +347,7 @@ def _results(study, summary, reach, pairs, images, success, placement=None):
         ]
     if placement is not None:
         parts.append(placement_section(study, placement, _figures_in("placement", study, images, success)))
+    parts.append(harm_section(study, harm, _figures_in("harm", study, images, success), choice, _ATTITUDE_HARM))
     parts.append(_figures_in("snapshot", study, images, success))
     parts.append("</section>")
     return "".join(parts)
@@ -409,21 +414,32 @@ def _choice_section(study, summary, choice, success):
             s = (f"<b>If trials are what is scarce</b> (fewest trials for {fmt_pct(success)} % of campaigns "
                  f"to end within the target): {leader} needs {_choice_trials(choice, i, 'leader', horizon)}; "
                  f"{runner} needs {_choice_trials(choice, i, 'runner_up', horizon)}.")
+        elif attitude == _ATTITUDE_HARM:
+            s = (f"<b>If every trial that fails specification is costly</b> (fewest harmful trials, true value "
+                 f"{'below' if study.goal == 'maximize' else 'above'} the floor of {number(study.floor)} "
+                 f"{unit_words(study, study.floor)}): {leader} runs "
+                 f"{choice.sig(i, 'leader_value', 'leader_low', 'leader_high')} harmful trials per campaign in "
+                 f"{horizon} trials; {runner} "
+                 f"{choice.sig(i, 'runner_up_value', 'runner_up_low', 'runner_up_high')}.")
         else:
             s = f"<b>{escape(attitude)}</b> ({choice.text(i, 'criterion')}): {leader}; runner-up {runner}."
         sentences.append(f"<li>{s}{_lead_sentence(choice, i)}</li>")
     parts.append(f'<ul class="choice">{"".join(sentences)}</ul>')
-    parts.append(_clear_rule(study, success))
+    parts.append(_clear_rule(study, success, attitudes=len(choice.frame)))
     parts.append("</section>")
     return "".join(parts)
 
 
-def _clear_rule(study, success):
-    """What "clear" means in the choice table, with the study's own thresholds."""
-    level = 0.05 / len(choice.ATTITUDES)
+def _clear_rule(study, success, attitudes=len(choice.ATTITUDES)):
+    """What "clear" means in the choice table, with the study's own thresholds (`attitudes`: rows of choice.csv)."""
+    level = 0.05 / attitudes
+    count = {3: "three", 4: "four"}.get(attitudes, str(attitudes))
+    harm = ("; for harmful trials the 95 % interval of the mean paired difference in harmful trials per campaign "
+            f"must lie beyond {number(HARM_DIFFERENCE)} (a tenth of a harmful trial per campaign)"
+            if attitudes > len(choice.ATTITUDES) else "")
     return (
         "<p>“Clear” needs the leader to beat every other policy on the paired replicates, by a margin that "
-        "matters. The three attitudes read the same campaigns, so they share one 5 % error budget "
+        f"matters. The {count} attitudes read the same campaigns, so they share one 5 % error budget "
         f"(Bonferroni): each needs a Holm-adjusted p below {level:.2g}, and the budget plan's bands are "
         f"widened to {100 * (1 - level):.1f} % for the trials attitude. With policies that are really equally "
         "good, some “clear” lead then appears in at most about 5 % of studies. On top of that, for the typical "
@@ -431,7 +447,7 @@ def _clear_rule(study, success):
         f"<b>{number(study.lead_difference)}</b> {unit_words(study, study.lead_difference)} (<code>[target] difference</code>), and for "
         "miss risk the 95 % interval of the paired difference in failure shares must lie beyond "
         f"{number(100 * (1 - success) / 10)} percentage points (a tenth of the {fmt_pct(1 - success)} % failure "
-        "risk accepted); for trials the ranges must be apart, i.e. by at least one whole trial. Otherwise the "
+        f"risk accepted); for trials the ranges must be apart, i.e. by at least one whole trial{harm}. Otherwise the "
         "report says “tie” and gives the reason: more replicates may separate the policies, the difference may "
         "be too small to act on, or they may be equally good.</p>"
     )
@@ -492,7 +508,7 @@ def _plan_section(study, plan, success):
     )
 
 
-def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False):
+def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False, has_harm=False):
     files = [
         (SUMMARY, "regret, within-target share, failure risk and CVaR-90 per policy and budget"),
         (WITHIN_TARGET, "share of campaigns within target after each trial, with its interval: budgets are "
@@ -509,6 +525,9 @@ def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False)
                   (CHOICE, "the leading policy under each attitude to risk")]
     if has_placement:
         files.append((PLACEMENT, "share of each policy's own trials on the boundary of the box and in its corners"))
+    if has_harm:
+        files.append((HARM, "harmful trials per campaign (worse than [target] floor), campaigns with any, and the "
+                            "trials' own shortfall, per policy and budget"))
     if has_sweep:
         files += [(SWEEP_SUMMARY, "failure risk and median regret per policy, budget and cell of the sweep"),
                   (SWEEP_RANKING, "policies ranked by their worst shortfall against each cell's best policy "

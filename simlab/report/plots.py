@@ -11,6 +11,7 @@ __all__ = [
     "win_rate_figure",
     "sweep_figure",
     "placement_figure",
+    "harm_figure",
     "save_figure",
 ]
 
@@ -544,4 +545,63 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
     fig.suptitle("Where each policy's own trials land" + ("" if space is not None and space.library is not None else
                  f" (dark bars: within {100 * band:g} % of a bound)"),
                  fontsize=10, x=0.01, ha="left")
+    return fig
+
+
+def harm_figure(harm, summary, *, budget, target, floor, colors=None, ax=None, units="objective units"):
+    """Final regret against harmful trials per campaign: one point per policy, 95 % intervals both ways.
+
+    Parameters
+    ----------
+    harm : DataFrame
+        `simlab.evidence.harm.harm_table` output (``policy, budget, harmful_mean, harmful_low,
+        harmful_high``).
+    summary : DataFrame
+        `simlab.evidence.metrics.budget_summary` output (``policy, budget, regret_median,
+        median_low, median_high``).
+    budget : int
+        The budget both are read at (the largest).
+    target : float
+        Regret tolerance, drawn as a dashed horizontal line.
+    floor : float
+        ``[target] floor``, for the axis label.
+    colors : dict, optional
+        `policy_colors` mapping.
+    ax : matplotlib Axes, optional
+    units : str
+        The objective's unit.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    check_columns(harm, "harm", ("policy", "budget", "harmful_mean", "harmful_low", "harmful_high"))
+    check_columns(summary, "summary", ("policy", "budget", "regret_median", "median_low", "median_high"))
+    h = harm[harm["budget"] == budget].assign(policy=lambda f: f["policy"].astype(str)).set_index("policy")
+    r = summary[summary["budget"] == budget].assign(policy=lambda f: f["policy"].astype(str)).set_index("policy")
+    labels = [p for p in policies_in(harm) if p in r.index]
+    colors = colors_for(labels, colors)
+    marks = markers(labels)
+    fig, ax = new_axes(ax, (KIND_WIDTH, 4.2))
+    values = r.loc[labels, ["regret_median", "median_low", "median_high"]].to_numpy(dtype=float)
+    lowest = regret_floor(values[np.isfinite(values)], target)
+    for label in labels:
+        x, x_lo, x_hi = (float(h.at[label, c]) for c in ("harmful_mean", "harmful_low", "harmful_high"))
+        y, y_lo, y_hi = (max(float(r.at[label, c]), lowest) if np.isfinite(float(r.at[label, c])) else np.nan
+                         for c in ("regret_median", "median_low", "median_high"))
+        xerr = [[x - x_lo], [x_hi - x]] if np.isfinite(x_lo) else None
+        yerr = [[y - y_lo], [y_hi - y]] if np.isfinite(y_lo) else None
+        ax.errorbar([x], [y], xerr=xerr, yerr=yerr, fmt=marks[label], color=colors[label], ms=7, capsize=3,
+                    elinewidth=1.2, label=display_label(label), zorder=3, gid=f"policy:{label}")
+    ax.set_yscale("log")
+    if target > 0:
+        ax.axhline(target, color="#000000", lw=1.0, ls="--", zorder=1)
+        ax.text(0.0, target, f" target {target:g} {units}", transform=ax.get_yaxis_transform(), fontsize=8,
+                va="bottom", ha="left")
+    ax.set_xlim(left=0.0)
+    ax.set_xlabel(f"harmful trials per campaign (true value worse than {floor:g} {units}), mean [95 % interval]")
+    ax.set_ylabel(f"median regret after {budget} trials\n({units}; {floor_note(lowest, values)})", fontsize=9.5)
+    ax.set_title(f"Final regret against harmful trials after {budget} trials (lower left is better)", fontsize=10,
+                 loc="left")
+    legend_outside(ax)
     return fig

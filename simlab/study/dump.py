@@ -62,6 +62,8 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
     lines += [f"initial = {c.initial}", f"design = {toml_value(c.design)}",
               f"budgets = {toml_value(list(c.budgets))}", f"pool = {c.pool}", f"batch = {c.batch}", "",
               "[target]", f"regret = {study.target!r}", f"difference = {study.lead_difference!r}"]
+    if study.floor is not None:   # written only when set: without it the text (and the results folder's hash) is unchanged
+        lines.append(f"floor = {study.floor!r}")
     if study.history is not None:
         lines += ["", "[history]", f"file = {toml_value(history_file or study.history.file)}",
                   f"response = {toml_value(study.history.response)}"]

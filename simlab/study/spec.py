@@ -56,7 +56,7 @@ def _section_keys() -> dict[str, tuple[str, ...]]:
         "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "level_correlation", "method",
                   *world_options(1), "function", "lengthscale_within", "amplitude_within", *_noise_keys()),
         "campaign": ("initial", "design", "budgets", "pool", "batch"),
-        "target": ("regret", "difference"),
+        "target": ("regret", "difference", "floor"),
         "sweep": ("lengthscale", "amplitude", "replicates"),
         "history": ("file", "response"),
         "candidates": ("file",),
@@ -185,6 +185,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     target = r.number(tt, "target.regret", low=0.0)
     # smallest median paired regret difference that matters for a "clear" lead (choice.choice_table)
     difference = r.number(tt, "target.difference", low=0.0, default=target / 10.0)
+    # a trial whose true value is worse than this (objective units, the study's goal) counts as harmful
+    floor = r.number(tt, "target.floor", default=None)
 
     policies = _read_policies(r, data)
 
@@ -197,7 +199,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     )
     study = Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                   belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
-                  history=history, refit_every=refit_every, difference=difference, units=units, source=source)
+                  history=history, refit_every=refit_every, difference=difference, units=units, floor=floor, source=source)
     if runnable:
         refusal = unsupported(study)
         if refusal is not None:
@@ -856,6 +858,23 @@ def advice(study: Study) -> list[str]:
     if study.target == 0:
         out.append("target.regret: 0 asks for the exact optimum; with noise and continuous inputs almost no "
                    "campaign gets there, so failure risk will be near 100 % (give the tolerance that matters)")
+    out += _floor_advice(study)
     return [f"{study.source}: {line}" for line in out]
+
+
+def _floor_advice(study: Study) -> list[str]:
+    """A floor more than 5 prior amplitudes beyond the prior mean: almost every trial of almost every
+    world is harmful, or none is (a judgement of "clearly meaningless"; 5 sd leaves 3e-7 of the prior)."""
+    prior = study.world.prior
+    if study.floor is None or prior is None:      # a published function has no prior to judge by
+        return []
+    side = (study.floor - prior.mean) / prior.amplitude * (-study.sign)   # > 0: the floor lies on the good side
+    if side > 5:
+        return [f"target.floor: {study.floor:g} lies more than 5 prior amplitudes on the good side of the prior mean "
+                f"{prior.mean:g}: nearly every trial of every world will count as harmful"]
+    if side < -5:
+        return [f"target.floor: {study.floor:g} lies more than 5 prior amplitudes on the bad side of the prior mean "
+                f"{prior.mean:g}: almost no trial will count as harmful"]
+    return []
 
 

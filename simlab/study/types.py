@@ -335,6 +335,7 @@ class Study:
     refit_every: int = 0         # [belief] refit_every: refit the belief by maximum likelihood every k trials
     difference: float | None = None  # [target] difference, objective units; None: target / 10
     units: str = ""              # [study] units: the objective's unit for the report ("" : "objective units")
+    floor: float | None = None   # [target] floor, objective units: a trial worse than it is harmful (None: not counted)
     source: str = field(default="<study>", compare=False)
 
     @property

@@ -62,6 +62,26 @@ def test_dump_round_trip(tmp_path):
     assert again == s
 
 
+def test_floor_dumps_only_when_given(tmp_path):
+    plain = load_study(write(tmp_path, BASE))
+    assert plain.floor is None and "floor" not in dump_study(plain)   # without it the text (and hash) is as before
+    s = load_study(write(tmp_path, BASE.replace("regret = 1.0", "regret = 1.0\nfloor = 76.0"), "floor.toml"))
+    assert s.floor == 76.0 and "floor = 76.0" in dump_study(s)
+    again = load_study(write(tmp_path, dump_study(s), "again.toml"))
+    assert again == s and again != plain
+
+
+def test_floor_far_from_the_prior_is_advised(tmp_path):
+    from simlab.study.spec import advice
+    # prior mean 80, amplitude 4, maximise: a floor 5 amplitudes above the mean makes nearly every trial harmful
+    for floor, words in ((101.0, "nearly every trial"), (59.0, "almost no trial")):
+        s = load_study(write(tmp_path, BASE.replace("regret = 1.0", f"regret = 1.0\nfloor = {floor}")))
+        said = [line for line in advice(s) if "target.floor" in line]
+        assert len(said) == 1 and words in said[0], said
+    s = load_study(write(tmp_path, BASE.replace("regret = 1.0", "regret = 1.0\nfloor = 76.0")))
+    assert not [line for line in advice(s) if "target.floor" in line]
+
+
 def test_single_lengthscale_broadcasts(tmp_path):
     s = load_study(write(tmp_path, BASE.replace("lengthscale = [15.0, 25.0]", "lengthscale = 20")))
     assert s.world.prior.lengthscale == (20.0, 20.0)
@@ -132,6 +152,9 @@ CASES = [
     ("width = 1.5", "width = -1.5", "policy[1].width"),
     ('rule = "lcb"', 'rule = "ei"', "policy[1].width"),  # width is not an EI setting
     ('rule = "lcb"\nwidth = 1.5', 'rule = "lcb"\nlabel = "ei"', "policy[1].label"),
+    ("regret = 1.0", 'regret = 1.0\nfloor = "76 MPa"', "target.floor"),
+    ("regret = 1.0", "regret = 1.0\nfloor = nan", "target.floor"),
+    ("regret = 1.0", "regret = 1.0\nfloor = true", "target.floor"),
     ("[target]", "[targets]", "[targets]"),
     ("[campaign]\n", "", "world.initial: unknown key; it belongs in [campaign]"),  # header missing
 ]
