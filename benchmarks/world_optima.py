@@ -140,6 +140,7 @@ def fill_reference(cache, path, d, kernel, i):
         t0 = time.perf_counter()
         _, v = reference(world, d, np.random.default_rng([SEED + 1, d, i]))
         cache[key] = {"d": d, "kernel": kernel, "i": i, "ref": v, "seconds": time.perf_counter() - t0}
+        path.parent.mkdir(parents=True, exist_ok=True)     # a first run with a new --cache folder
         with path.open("a") as fh:
             fh.write(json.dumps(cache[key]) + "\n")
     return cache[key]["ref"]
