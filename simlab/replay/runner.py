@@ -9,6 +9,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
+from ..columns import STOP_COLUMNS
 from ..policies import POLICIES, Policy
 from ..rng import stream
 from ..study.spec import Study
@@ -68,7 +69,10 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     """
     from .lockstep import fits_lockstep, run_block
 
+    from ..stopping.record import record_plan
+
     belief, observer, history = make_belief(study), make_observer(study), history_arrays(study)
+    plan = record_plan(study)      # None unless a [[stop]] rule reads the posterior: then nothing is recorded
     c = study.campaign
     out: list[list] = [[] for _ in reps]
     for spec in study.policies:
@@ -79,10 +83,12 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
         for b in horizons:
             if together:
                 rngs = [stream(study.seed, rep.index, "policy", spec.label) for rep in reps]
+                stop_rngs = [stream(study.seed, rep.index, "stop", spec.label) for rep in reps] if plan else None
                 traces = run_block(make_policy(spec), belief, reps, observer=observer, budget=b, rngs=rngs,
-                                   history=history, snap=_snap(study), library=study.space.library is not None)
+                                   history=history, snap=_snap(study), library=study.space.library is not None,
+                                   stop_plan=plan, stop_rngs=stop_rngs)
             else:
-                traces = [_alone(study, spec, belief, observer, history, rep, b) for rep in reps]
+                traces = [_alone(study, spec, belief, observer, history, rep, b, plan) for rep in reps]
             for k, trace in enumerate(traces):
                 per[k].append((b, trace))
         for k in range(len(reps)):
@@ -90,7 +96,8 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     return out
 
 
-def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep: Replicate, budget: int) -> Trace:
+def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep: Replicate, budget: int,
+           plan=None) -> Trace:
     """One campaign replayed on its own (the reference path)."""
     def observe(f, t):
         return observer(f, rep.shocks[t], rep.lost[t])
@@ -100,7 +107,8 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
                         observe=observe, budget=budget, pool=rep.pool,
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
                         history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
-                        library=study.space.library is not None, snap=_snap(study))
+                        library=study.space.library is not None, snap=_snap(study), stop_plan=plan,
+                        stop_rng=stream(study.seed, r, "stop", spec.label) if plan else None)
 
 
 def _snap(study: Study):
@@ -133,6 +141,7 @@ def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
                       "lost": ~np.isfinite(cols["y"]), "regret": cols["regret"],
                       "regret_seen": cols["regret_seen"], "rec_trial": cols["rec_trial"],
                       "horizon": cols["horizon"]})
+        frame.update({name: cols[name] for name in STOP_COLUMNS if name in cols})   # only with [[stop]] rules
         frames.append(pd.DataFrame(frame))
     return pd.concat(frames, ignore_index=True)
 
@@ -160,7 +169,7 @@ def _columns(t: Trace, trial: np.ndarray, fstar: float) -> dict[str, np.ndarray]
     best = np.minimum.accumulate(seen)
     best = np.where(np.isfinite(best), best, t.f[t.rec])  # nothing seen yet: the current input
     return {"U": t.U, "y": t.y, "f": t.f, "regret": t.f[t.rec] - fstar, "regret_seen": best - fstar,
-            "rec_trial": trial[t.rec]}
+            "rec_trial": trial[t.rec], **t.stats}
 
 
 def _compose(parts: list[tuple[int, dict]], trial: np.ndarray) -> dict[str, np.ndarray]:
