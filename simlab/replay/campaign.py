@@ -21,8 +21,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                  pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
                  history: tuple[np.ndarray, np.ndarray] | None = None,
                  refit_rng: np.random.Generator | None = None, library: bool = False,
-                 snap: Callable[[np.ndarray], np.ndarray] | None = None, stop_plan=None,
-                 stop_rng: np.random.Generator | None = None) -> Trace:
+                 snap: Callable[[np.ndarray], np.ndarray] | None = None, stop=None) -> Trace:
     """Replay one campaign.
 
     Parameters
@@ -52,9 +51,10 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     snap : callable, optional
         Moves a chosen input to allowed values (``Space.snap``: stepped and categorical inputs)
         before the world, the posterior and any pending-trial rule see it.
-    stop_plan : simlab.stopping.RecordPlan, optional
-        What the study's stopping rules read after each trial, recorded into ``Trace.stats``
-        from the stream ``stop_rng`` (None: nothing recorded).
+    stop : callable, optional
+        ``stop(post, h=, n=)`` starts the record of what the study's stopping rules read after
+        each trial (``simlab.stopping.StopRecorder.begin`` bound to this replicate and policy),
+        kept in ``Trace.stats``; None: nothing recorded.
     """
     d = sequence.shape[1]
     H, yH = past_trials(history, d)
@@ -64,7 +64,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     U, y, f, rec = allocate(n, d)
     rows = {np.ascontiguousarray(r).tobytes() for r in pool} if library else None   # every trial must be a row
     seen: list[int] = []                                   # trace rows the posterior has observed
-    log = stop_plan.begin(post, pool[None], [stop_rng], h=h, n=n) if stop_plan is not None else None
+    log = stop(post, h=h, n=n) if stop is not None else None
     for i in range(h):                                     # past trials, already observed
         U[i], y[i], f[i] = H[i], yH[i], world(H[i : i + 1])[0]
         post.add(H[i], yH[i])

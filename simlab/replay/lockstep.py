@@ -72,7 +72,7 @@ def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float) ->
 
 def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budget: int, rngs,
               history: tuple[np.ndarray, np.ndarray] | None = None, snap=None,
-              library: bool = False, stop_plan=None, stop_rngs=None) -> list[Trace]:
+              library: bool = False, stop=None) -> list[Trace]:
     """Replay one policy on a block of replicates in lockstep.
 
     Parameters
@@ -94,8 +94,9 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     library : bool
         The pools are a [candidates] library's rows (the same in every replicate): rules score every
         row and choose one (``Block.library``), and a trial off the library is refused.
-    stop_plan : simlab.stopping.RecordPlan, optional
-        What stopping rules read after each trial, each replicate from its own stream of ``stop_rngs``.
+    stop : callable, optional
+        ``stop(st, h=, n=)`` starts the record of what stopping rules read after each trial
+        (``simlab.stopping.StopRecorder.begin`` bound to the block's replicates), as in ``run_campaign``.
 
     Returns
     -------
@@ -114,7 +115,7 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     worlds = WorldBlock([r.world for r in reps])
     U, y, f, rec = allocate(n, d, B)
     rows = {np.ascontiguousarray(r).tobytes() for r in reps[0].pool} if library else None
-    log = stop_plan.begin(st, st.pools, stop_rngs, h=h, n=n) if stop_plan is not None else None
+    log = stop(st, h=h, n=n) if stop is not None else None
     try:
         for i in range(h):                                        # past trials, already observed
             U[:, i], y[:, i] = H[i], yH[i]

@@ -69,10 +69,11 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     """
     from .lockstep import fits_lockstep, run_block
 
-    from ..stopping.record import record_plan
+    from ..stopping.record import StopRecorder, record_plan
 
     belief, observer, history = make_belief(study), make_observer(study), history_arrays(study)
     plan = record_plan(study)      # None unless a [[stop]] rule reads the posterior: then nothing is recorded
+    recorder = StopRecorder(plan, study.seed) if plan is not None else None
     c = study.campaign
     out: list[list] = [[] for _ in reps]
     for spec in study.policies:
@@ -83,12 +84,12 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
         for b in horizons:
             if together:
                 rngs = [stream(study.seed, rep.index, "policy", spec.label) for rep in reps]
-                stop_rngs = [stream(study.seed, rep.index, "stop", spec.label) for rep in reps] if plan else None
                 traces = run_block(make_policy(spec), belief, reps, observer=observer, budget=b, rngs=rngs,
                                    history=history, snap=_snap(study), library=study.space.library is not None,
-                                   stop_plan=plan, stop_rngs=stop_rngs)
+                                   stop=_stop_start(recorder, reps, spec.label))
             else:
-                traces = [_alone(study, spec, belief, observer, history, rep, b, plan) for rep in reps]
+                traces = [_alone(study, spec, belief, observer, history, rep, b, _stop_start(recorder, [rep], spec.label))
+                          for rep in reps]
             for k, trace in enumerate(traces):
                 per[k].append((b, trace))
         for k in range(len(reps)):
@@ -96,8 +97,16 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     return out
 
 
+def _stop_start(recorder, reps: list[Replicate], label: str):
+    """What a campaign loop calls to start the stopping rules' record of these replicates (None: none)."""
+    if recorder is None:
+        return None
+    replicates = [rep.index for rep in reps]
+    return lambda st, *, h, n: recorder.begin(st, replicates, label, h=h, n=n)
+
+
 def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep: Replicate, budget: int,
-           plan=None) -> Trace:
+           stop=None) -> Trace:
     """One campaign replayed on its own (the reference path)."""
     def observe(f, t):
         return observer(f, rep.shocks[t], rep.lost[t])
@@ -107,8 +116,7 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
                         observe=observe, budget=budget, pool=rep.pool,
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
                         history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
-                        library=study.space.library is not None, snap=_snap(study), stop_plan=plan,
-                        stop_rng=stream(study.seed, r, "stop", spec.label) if plan else None)
+                        library=study.space.library is not None, snap=_snap(study), stop=stop)
 
 
 def _snap(study: Study):

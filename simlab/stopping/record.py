@@ -1,28 +1,35 @@
 """What stopping rules read, recorded after each trial: the posterior's view of the recommendation.
 
 Both campaign loops call the same three steps, on a :class:`~simlab.model.gp.Stack` (the
-one-campaign loop's `Posterior` is a Stack of one): ``plan.begin`` before the first trial,
+one-campaign loop's `Posterior` is a Stack of one): ``begin(st, h=, n=)`` before the first
+trial (the runner binds :meth:`StopRecorder.begin` to the block's replicates and policy),
 ``log.after(st, i)`` after each update, ``log.columns(b)`` at the end. Every quantity is
 computed replicate by replicate from per-slice operations (elementwise ufuncs, stacked
-products, reductions over a last axis) and each replicate draws from its own keyed stream
-(``rng.stream(seed, replicate, "stop", policy)``), so a campaign's record has the same bits
+products, reductions over a last axis) and each replicate draws from its own keyed streams
+(``rng.stream(seed, replicate, "stop"[, policy])``), so a campaign's record has the same bits
 alone or in a lockstep block (tests/unit/test_stopping.py).
 
 Nothing is recorded, and nothing costs, when no ``[[stop]]`` rule of the study needs it:
-:func:`record_plan` is None then, and the traces keep exactly their columns.
+:func:`record_plan` is None then, and the traces keep exactly their columns. Columns hold NaN
+where nothing was computed: before the first trial any rule reading them may stop, and, for
+``stop_chance`` (the costly one: pathwise draws over the pool), after every confident rule has
+stopped the campaign. Where an exact pairwise bound already shows the chance below every
+confident rule's threshold, ``stop_chance`` holds that bound instead of a Monte Carlo estimate.
 """
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass
 
 import numpy as np
 
 from ..lazy import special
+from ..model.gp import matvec, rowdot
 from ..policies.info import PathwiseDraws
 from .rules import STOP_RULES
 
-__all__ = ["RecordPlan", "StopLog", "record_plan"]
+__all__ = ["RecordPlan", "StopRecorder", "StopLog", "record_plan"]
 
 # Pool points whose lower bound mu - 5 sd lies above the lowest upper bound mu + 5 sd are left out
 # of the draws (as policies.info does for its draws): such a point is a draw's minimum only when one
@@ -30,6 +37,8 @@ __all__ = ["RecordPlan", "StopLog", "record_plan"]
 # of 2048, far below the Monte Carlo error of 64 draws (0.04 at a probability of 0.9).
 _SCREEN = 5.0
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
+# Pool points whose exact pairwise probability bounds the chance from above (see `_pair_bound`).
+_PAIRS = 4
 
 
 @dataclass(frozen=True)
@@ -41,6 +50,9 @@ class RecordPlan:
 
     target: float                      # [target] regret, objective units (the same in both orientations)
     chance_from: int | None = None
+    lowest_chance: float = 0.0         # the smallest `chance` of the confident rules: below it none stops
+    highest_chance: float = 1.0        # the largest: at or above it, from `settled_from` on, every one has stopped
+    settled_from: int = 1              # the largest `min_trials` of the confident rules
     draws: int = 64
     features: int = 64
     gain_from: int | None = None
@@ -52,14 +64,6 @@ class RecordPlan:
         return tuple(name for name, start in (("stop_chance", self.chance_from), ("stop_gain", self.gain_from),
                                               ("stop_gap", self.gap_from)) if start is not None)
 
-    def begin(self, st, pools, rngs, *, h: int, n: int) -> "StopLog":
-        """The record of a block of campaigns (``st``: its belief, before the first new trial).
-
-        pools : ndarray of shape (B, m, d); rngs : each replicate's "stop" stream; h past trials,
-        n rows in all.
-        """
-        return StopLog(self, st, pools, rngs, h=h, n=n)
-
 
 def record_plan(study) -> RecordPlan | None:
     """The record a study's ``[[stop]]`` rules need, or None when none reads the posterior.
@@ -69,6 +73,7 @@ def record_plan(study) -> RecordPlan | None:
     """
     starts: dict[str, int] = {}
     settings: dict[str, object] = {}
+    confident = [spec.options for spec in getattr(study, "stops", ()) if STOP_RULES[spec.rule].statistic == "stop_chance"]
     for spec in getattr(study, "stops", ()):
         cls = STOP_RULES[spec.rule]
         if cls.statistic is None:
@@ -80,20 +85,57 @@ def record_plan(study) -> RecordPlan | None:
         return None
     return RecordPlan(target=float(study.target), chance_from=starts.get("stop_chance"),
                       gain_from=starts.get("stop_gain"), gap_from=starts.get("stop_gap"),
+                      lowest_chance=min((o["chance"] for o in confident), default=0.0),
+                      highest_chance=max((o["chance"] for o in confident), default=1.0),
+                      settled_from=max((o["min_trials"] for o in confident), default=1),
                       **{k: settings[k] for k in ("draws", "features", "width") if k in settings})
+
+
+class StopRecorder:
+    """Starts the record of each block of campaigns of a chunk of replicates (one per chunk).
+
+    The draws' spectral frequencies, and their basis over the pool (the costly part to build:
+    m x F cosines), belong to the replicate, not to the policy: they come from the stream
+    ``stream(seed, replicate, "stop")`` and are built once, when a campaign of the replicate first
+    needs them, then shared by every policy's campaigns on it (the pool and the belief are the
+    same for all). The weights and noise of each trial's draws come from the policy's own stream
+    ``stream(seed, replicate, "stop", policy)``. Which campaign builds first does not change the
+    bits, so the record is the same alone, in any block and in any policy order.
+    """
+
+    def __init__(self, plan: RecordPlan, seed: int):
+        self.plan, self.seed = plan, int(seed)
+        self._draws: dict[int, PathwiseDraws] = {}
+
+    def begin(self, st, replicates, label: str, *, h: int, n: int) -> "StopLog":
+        """The record of the campaigns of policy ``label`` on ``replicates`` (the rows of ``st``),
+        before their first new trial; h past trials, n rows in all."""
+        from ..rng import stream
+
+        rngs = [stream(self.seed, r, "stop", label) for r in replicates]
+        return StopLog(self, st, list(replicates), rngs, h=h, n=n)
+
+    def draws(self, st, b: int, replicate: int) -> PathwiseDraws:
+        """Replicate's shared frequencies and pool basis (a copy: a refit rebuilds its own)."""
+        from ..rng import stream
+
+        shared = self._draws.get(replicate)
+        if shared is None:
+            shared = PathwiseDraws(st, st.pools[b], stream(self.seed, replicate, "stop"), self.plan.features)
+            self._draws[replicate] = shared
+        return copy.copy(shared)
 
 
 class StopLog:
     """The per-trial record of a block of campaigns: one (B, n) array per column, NaN where not computed."""
 
-    def __init__(self, plan: RecordPlan, st, pools, rngs, *, h: int, n: int):
-        self.plan, self.h = plan, h
-        self.rngs = list(rngs)
+    def __init__(self, recorder: StopRecorder, st, replicates, rngs, *, h: int, n: int):
+        self.recorder, self.plan, self.h = recorder, recorder.plan, h
+        self.replicates, self.rngs = replicates, rngs
         B = st.size
-        self.values = {name: np.full((B, n), np.nan) for name in plan.columns}
-        # one set of frequencies per campaign, drawn first from its stream (as pbest does)
-        self.draws = ([PathwiseDraws(st, pools[b], self.rngs[b], plan.features) for b in range(B)]
-                      if plan.chance_from is not None else [])
+        self.values = {name: np.full((B, n), np.nan) for name in self.plan.columns}
+        self.draws: dict[int, PathwiseDraws] = {}   # built when a campaign first needs them
+        self.settled = np.zeros(B, dtype=bool)      # every confident rule has stopped this campaign
 
     def after(self, st, i: int) -> None:
         """Record row i (0-based) of every campaign of the block, after the belief has seen it."""
@@ -116,14 +158,27 @@ class StopLog:
             mud, sdd = st.stacked_moments(st._X[:, : st.n])              # (B, n) at the evaluated inputs
             lowest = np.minimum(np.min(mu - w * sd, axis=-1), np.min(mud - w * sdd, axis=-1))
             self.values["stop_gap"][:, i] = mud[at, r] + w * sdd[at, r] - lowest
-        if want["stop_chance"]:
-            for b in range(B):
-                self.values["stop_chance"][b, i] = self._chance(st, b, int(r[b]), mu[b], sd[b])
+        if want["stop_chance"] and not self.settled.all():
+            chance = self.values["stop_chance"][:, i]
+            bound = _pair_bound(st, r, md[at, r], mu, sd, p.target)
+            for b in np.flatnonzero(~self.settled):
+                # an exact bound already below every rule's chance: no rule stops here, and the bound
+                # is recorded instead of a Monte Carlo estimate that could only cross it by noise
+                chance[b] = (bound[b] if bound[b] < p.lowest_chance else
+                             self._chance(st, b, int(r[b]), mu[b], sd[b]))
+            # once every confident rule has stopped a campaign nothing later can change a stopping
+            # time: the rest of its column stays NaN and costs nothing
+            if t >= p.settled_from:
+                self.settled |= chance >= p.highest_chance
 
     def _chance(self, st, b: int, r: int, mu: np.ndarray, sd: np.ndarray) -> float:
         """Share of posterior draws in which the recommendation (row r) is within the target of the
         draw's minimum over the pool and the evaluated inputs (Wilson 2024, estimated by Monte Carlo)."""
         rows = np.flatnonzero(mu - _SCREEN * sd <= np.min(mu + _SCREEN * sd))
+        if 2 * len(rows) >= len(mu):      # most of the pool: every row costs less than copying the kept ones
+            rows = np.arange(len(mu))
+        if b not in self.draws:
+            self.draws[b] = self.recorder.draws(st, b, self.replicates[b])
         G, GX = self.draws[b].draw_in(st, b, self.rngs[b], self.plan.draws, rows)   # (rows, S), (n, S)
         lowest = np.minimum(G.min(axis=0), GX.min(axis=0))
         return float(np.mean(GX[r] - lowest <= self.plan.target))
@@ -131,6 +186,41 @@ class StopLog:
     def columns(self, b: int) -> dict[str, np.ndarray]:
         """Campaign b's record: column name -> (n,) array."""
         return {name: v[b] for name, v in self.values.items()}
+
+
+def _pair_bound(st, r, mu_rec, mu, sd, target) -> np.ndarray:
+    """An exact upper bound on the chance, per replicate (B,): ``min_x P(f(rec) - f(x) <= target)``.
+
+    The recommendation is within the target of the minimum only if it is within the target of
+    every single point, so each pool point x bounds the chance by a normal probability of the
+    posterior difference ``f(rec) - f(x)``: mean ``mu_rec - mu_x``, variance ``var_rec + var_x - 2
+    cov``, with ``cov = k(rec, x) - v_rec . v_x`` read from the kept cross term ``V = L^-1 K(X, pool)``.
+    The `_PAIRS` points most likely to beat the recommendation by the target (scored without the
+    covariance) are tried. O(n m) per replicate, against O(m F S) for the draws.
+    """
+    n, B = st.n, st.size
+    at = np.arange(B)
+    X, Li = st._X[:, :n], st._Li[:, :n, :n]
+    xr = X[at, r][:, None, :]                                               # (B, 1, d)
+    v = matvec(Li, st.kernel.stacked(X, xr)[:, :, 0])                       # L^-1 k(X, rec), (B, n)
+    var_rec = np.maximum(st.kernel.variance - rowdot(v, v), 0.0)            # (B,)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = (mu_rec[:, None] - target - mu) / np.sqrt(var_rec[:, None] + sd * sd)
+    z = np.where(np.isfinite(z), z, -np.inf)
+    k = min(_PAIRS, mu.shape[1])
+    idx = np.argpartition(-z, k - 1, axis=-1)[:, :k]                       # (B, k)
+    Vx = np.take_along_axis(st._V[:, :n], idx[:, None, :], axis=2)          # (B, n, k)
+    px = np.take_along_axis(st.pools, idx[:, :, None], axis=1)              # (B, k, d)
+    cov = st.kernel.stacked(xr, px)[:, 0, :] - np.matmul(v[:, None, :], Vx)[:, 0, :]
+    sdx = np.take_along_axis(sd, idx, axis=1)
+    var = var_rec[:, None] + sdx * sdx - 2.0 * cov
+    gap = mu_rec[:, None] - np.take_along_axis(mu, idx, axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = special.ndtr((target - gap) / np.sqrt(var))
+    # a difference the belief knows (almost) exactly: the bound is 1 or 0 by the sign, which rounding
+    # in var can flip; such pairs bound nothing
+    p = np.where(var > 1e-12 * st.kernel.variance, p, 1.0)
+    return np.min(p, axis=-1)
 
 
 def _largest_ei(mu: np.ndarray, sd: np.ndarray, incumbent: np.ndarray) -> np.ndarray:
