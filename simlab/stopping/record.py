@@ -13,8 +13,9 @@ Nothing is recorded, and nothing costs, when no ``[[stop]]`` rule of the study n
 :func:`record_plan` is None then, and the traces keep exactly their columns. Columns hold NaN
 where nothing was computed: before the first trial any rule reading them may stop, and, for
 ``stop_chance`` (the costly one: pathwise draws over the pool), after every confident rule has
-stopped the campaign. Where an exact pairwise bound already shows the chance below every
-confident rule's threshold, ``stop_chance`` holds that bound instead of a Monte Carlo estimate.
+stopped the campaign. ``stop_chance`` is a 95 % lower confidence bound on the belief's chance
+from the Monte Carlo count (:meth:`StopLog._chance`); where an exact pairwise bound already shows
+the chance below every confident rule's threshold, it holds that bound instead.
 """
 
 from __future__ import annotations
@@ -50,14 +51,24 @@ class RecordPlan:
 
     target: float                      # [target] regret, objective units (the same in both orientations)
     chance_from: int | None = None
-    lowest_chance: float = 0.0         # the smallest `chance` of the confident rules: below it none stops
-    highest_chance: float = 1.0        # the largest: at or above it, from `settled_from` on, every one has stopped
+    chances: tuple[float, ...] = ()    # the confident rules' `chance` settings
     settled_from: int = 1              # the largest `min_trials` of the confident rules
+    rounds: int = 4                    # most batches of `draws` per trial (see StopLog._chance)
     draws: int = 64
     features: int = 64
     gain_from: int | None = None
     gap_from: int | None = None
     width: float = 2.0
+
+    @property
+    def lowest_chance(self) -> float:
+        """Below it no confident rule stops."""
+        return min(self.chances, default=0.0)
+
+    @property
+    def highest_chance(self) -> float:
+        """At or above it (from `settled_from` on) every confident rule has stopped."""
+        return max(self.chances, default=1.0)
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -85,8 +96,7 @@ def record_plan(study) -> RecordPlan | None:
         return None
     return RecordPlan(target=float(study.target), chance_from=starts.get("stop_chance"),
                       gain_from=starts.get("stop_gain"), gap_from=starts.get("stop_gap"),
-                      lowest_chance=min((o["chance"] for o in confident), default=0.0),
-                      highest_chance=max((o["chance"] for o in confident), default=1.0),
+                      chances=tuple(sorted({o["chance"] for o in confident})),
                       settled_from=max((o["min_trials"] for o in confident), default=1),
                       **{k: settings[k] for k in ("draws", "features", "width") if k in settings})
 
@@ -172,8 +182,32 @@ class StopLog:
                 self.settled |= chance >= p.highest_chance
 
     def _chance(self, st, b: int, r: int, mu: np.ndarray, sd: np.ndarray) -> float:
-        """Share of posterior draws in which the recommendation (row r) is within the target of the
-        draw's minimum over the pool and the evaluated inputs (Wilson 2024, estimated by Monte Carlo)."""
+        """A one-sided 95 % lower confidence bound on the belief's chance that the recommendation (row r)
+        is within the target of the minimum over the pool and the evaluated inputs.
+
+        Notes
+        -----
+        Each batch of ``draws`` pathwise posterior draws counts the draws in which the recommendation
+        lies within the target of the draw's minimum (:meth:`_within`); the bound is the Clopper-Pearson
+        lower end for that count (``Beta(0.05; k, S - k + 1)``). Batches are added, up to ``rounds``,
+        while some confident rule's ``chance`` lies inside the two-sided 90 % interval, i.e. while the
+        draws cannot yet tell whether that rule should stop. Comparing the point estimate with
+        ``chance`` instead would stop at the first trial where Monte Carlo noise lifts it across,
+        and the stopped campaigns would then be within target less often than ``chance`` (Wilson 2024
+        controls the same error with a test on the Monte Carlo estimate).
+        """
+        k = S = 0
+        for _ in range(self.plan.rounds):
+            k += self._within(st, b, r, mu, sd)
+            S += self.plan.draws
+            low, high = _clopper_pearson(k, S)
+            if not any(low < c <= high for c in self.plan.chances):
+                break
+        return low
+
+    def _within(self, st, b: int, r: int, mu: np.ndarray, sd: np.ndarray) -> int:
+        """Of ``draws`` posterior draws, how many put the recommendation (row r) within the target of the
+        draw's minimum over the pool and the evaluated inputs (Wilson 2024, by Monte Carlo)."""
         rows = np.flatnonzero(mu - _SCREEN * sd <= np.min(mu + _SCREEN * sd))
         if 2 * len(rows) >= len(mu):      # most of the pool: every row costs less than copying the kept ones
             rows = np.arange(len(mu))
@@ -181,11 +215,20 @@ class StopLog:
             self.draws[b] = self.recorder.draws(st, b, self.replicates[b])
         G, GX = self.draws[b].draw_in(st, b, self.rngs[b], self.plan.draws, rows)   # (rows, S), (n, S)
         lowest = np.minimum(G.min(axis=0), GX.min(axis=0))
-        return float(np.mean(GX[r] - lowest <= self.plan.target))
+        return int(np.sum(GX[r] - lowest <= self.plan.target))
 
     def columns(self, b: int) -> dict[str, np.ndarray]:
         """Campaign b's record: column name -> (n,) array."""
         return {name: v[b] for name, v in self.values.items()}
+
+
+def _clopper_pearson(k: int, n: int) -> tuple[float, float]:
+    """One-sided 95 % bounds (the two-sided 90 % interval) of k successes in n: Clopper & Pearson (1934),
+    ``Beta(0.05; k, n - k + 1)`` and ``Beta(0.95; k + 1, n - k)``, 0 and 1 at the ends (as
+    simlab.evidence.intervals.share_interval, for one pair, without importing scipy.stats)."""
+    low = float(special.betaincinv(k, n - k + 1, 0.05)) if k > 0 else 0.0
+    high = float(special.betaincinv(k + 1, n - k, 0.95)) if k < n else 1.0
+    return low, high
 
 
 def _pair_bound(st, r, mu_rec, mu, sd, target) -> np.ndarray:

@@ -77,13 +77,14 @@ class Confident(StopRule):
 
     Notes
     -----
-    After each trial the recorder estimates ``P(f(rec) - min f <= target | data)`` (``stop_chance``):
-    the share of ``draws`` pathwise posterior draws over the pool and the evaluated inputs in which
-    the recommendation's value lies within the study's target (``[target] regret``) of the draw's
-    minimum. The rule stops once that share reaches ``chance``. With a belief that matches the
-    worlds, the campaigns it stops are then within target with probability about ``chance``
-    (Bayesian calibration); the estimate's own Monte Carlo error (sd ``sqrt(p (1 - p) / draws)``)
-    and stopping at the first trial where it crosses make the realised share a little lower.
+    After each trial the recorder bounds ``P(f(rec) - min f <= target | data)`` from below
+    (``stop_chance``): it counts the pathwise posterior draws over the pool and the evaluated inputs
+    in which the recommendation's value lies within the study's target (``[target] regret``) of the
+    draw's minimum, in batches of ``draws`` (more batches, up to 4, while the count cannot yet tell a
+    rule's ``chance`` apart), and takes the one-sided 95 % Clopper-Pearson lower bound of the share.
+    The rule stops once that bound reaches ``chance``. With a belief that matches the worlds, the
+    campaigns it stops are then within target at least about ``chance`` of the time (Bayesian
+    calibration: tests/unit/test_stopping.py); a wrong belief breaks this.
 
     References
     ----------
