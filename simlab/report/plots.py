@@ -551,7 +551,7 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
 # ---------------------------------------------------------------------------
 # when to stop
 # ---------------------------------------------------------------------------
-_RULE_MARKERS = ("o", "s", "^", "D", "v", "P", "X", "*")
+_RULE_MARKERS = ("D", "s", "^", "v", "P", "X", "*", "h")   # "o" is the full budget's (hollow)
 
 
 def stopping_figure(table, *, success=0.9, target=None, units="objective units", colors=None, ax=None):

@@ -30,7 +30,7 @@ def _adopted(stop, policy, success):
 def _points(stop, i):
     """``+3 points [−1 to +6]``: the paired difference in miss risk, in percentage points."""
     def pts(col):
-        return stop.span(i, col, "pct")
+        return stop.span(i, col, "points")
     return f"{pts('failure_difference')} points [{pts('difference_low')} to {pts('difference_high')}]"
 
 
@@ -38,10 +38,10 @@ def _sentence(study, stop, choice, success):
     policy, _ = _leader(study, choice)
     i, kept = _adopted(stop, policy, success)
     h = study.campaign.horizon
-    saving = (f"it stops a median of {stop.span(i, 'saved_median', 'sig')} trials early (95 % interval "
-              f"{stop.span(i, 'saved_low', 'sig')}–{stop.span(i, 'saved_high', 'sig')}; "
-              f"{stop.span(i, 'saved_mean', 'sig')} on average), using {stop.span(i, 'trials_median', 'sig')} "
-              f"(middle half {stop.span(i, 'trials_q25', 'sig')}–{stop.span(i, 'trials_q75', 'sig')})")
+    saving = (f"it stops a median of {stop.span(i, 'saved_median', 'count')} trials early (95 % interval "
+              f"{stop.span(i, 'saved_low', 'count')}–{stop.span(i, 'saved_high', 'count')}; "
+              f"{stop.span(i, 'saved_mean', 'sig')} on average), using {stop.span(i, 'trials_median', 'count')} "
+              f"(middle half {stop.span(i, 'trials_q25', 'count')}–{stop.span(i, 'trials_q75', 'count')})")
     cost = (f"its miss risk at the stop is {stop.pct(i, 'failure_risk', 'failure_low', 'failure_high')} against "
             f"{stop.pct(i, 'failure_full', 'full_low', 'full_high')} for the full budget on the same worlds "
             f"(paired difference {_points(stop, i)})")
@@ -63,15 +63,16 @@ def _table(study, stop):
                   stop.pct(i, "stopped_within", "stopped_within_low", "stopped_within_high", stacked=True))
         rows.append(
             f"<tr><td>{stop.text(i, 'policy')}</td><td>{stop.text(i, 'rule')}</td>"
-            f"<td class='n'>{stop.span(i, 'trials_median', 'sig')}<span class='ci'>{stop.span(i, 'trials_q25', 'sig')}–"
-            f"{stop.span(i, 'trials_q75', 'sig')}</span></td>"
-            f"<td class='n'>{stop.sig(i, 'saved_median', 'saved_low', 'saved_high', stacked=True)}</td>"
+            f"<td class='n'>{stop.span(i, 'trials_median', 'count')}<span class='ci'>{stop.span(i, 'trials_q25', 'count')}–"
+            f"{stop.span(i, 'trials_q75', 'count')}</span></td>"
+            f"<td class='n'>{stop.span(i, 'saved_median', 'count')}<span class='ci'>[{stop.span(i, 'saved_low', 'count')}–"
+            f"{stop.span(i, 'saved_high', 'count')}]</span></td>"
             f"<td class='n'>{stop.span(i, 'stopped_share', 'pct')} %</td>"
             f"<td class='n'>{stop.sig(i, 'regret_median', 'median_low', 'median_high', stacked=True)}</td>"
             f"<td class='n'>{stop.pct(i, 'failure_risk', 'failure_low', 'failure_high', stacked=True)}</td>"
             f"<td class='n'>{stop.pct(i, 'failure_full', 'full_low', 'full_high', stacked=True)}</td>"
-            f"<td class='n'>{stop.span(i, 'failure_difference', 'pct')}<span class='ci'>[{stop.span(i, 'difference_low', 'pct')} to "
-            f"{stop.span(i, 'difference_high', 'pct')}]</span></td>"
+            f"<td class='n'>{stop.span(i, 'failure_difference', 'points')}<span class='ci'>[{stop.span(i, 'difference_low', 'points')} to "
+            f"{stop.span(i, 'difference_high', 'points')}]</span></td>"
             f"<td class='n'>{within}</td></tr>")
     return ("<table><thead><tr><th>policy</th><th>stop rule</th>"
             "<th class='n'>trials used<span class='ci'>median; middle half</span></th>"
