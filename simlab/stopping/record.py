@@ -213,7 +213,7 @@ class StopLog:
             rows = np.arange(len(mu))
         if b not in self.draws:
             self.draws[b] = self.recorder.draws(st, b, self.replicates[b])
-        G, GX = self.draws[b].draw_in(st, b, self.rngs[b], self.plan.draws, rows)   # (rows, S), (n, S)
+        G, GX = self.draws[b].draw_in(st, b, self.rngs[b], self.plan.draws, rows, single=True)  # (rows, S), (n, S)
         lowest = np.minimum(G.min(axis=0), GX.min(axis=0))
         return int(np.sum(GX[r] - lowest <= self.plan.target))
 
