@@ -5,6 +5,8 @@ from __future__ import annotations
 
 __all__ = ["stopping_section"]
 
+import re
+
 import numpy as np
 
 from ..stopping.rules import make_rule
@@ -46,13 +48,22 @@ def _sentence(study, stop, choice, success):
             f"{stop.pct(i, 'failure_full', 'full_low', 'full_high')} for the full budget on the same worlds "
             f"(paired difference {_points(stop, i)})")
     rule = stop.text(i, "rule")
+    rows = [int(j) for j in np.flatnonzero(stop.frame["policy"].astype(str).to_numpy() == policy)]
+    most = max(rows, key=lambda j: (stop.value(j, "saved_median"), stop.value(j, "saved_mean"), -j))
+    if most != i and stop.value(most, "saved_median") > stop.value(i, "saved_median"):
+        fewest = (f" The rule that wastes the fewest trials, {stop.text(most, 'rule')}, stops a median of "
+                  f"{stop.span(most, 'saved_median', 'count')} trials early, but its miss risk at the stop is "
+                  f"{stop.pct(most, 'failure_risk', 'failure_low', 'failure_high')} (paired difference "
+                  f"{_points(stop, most)}).")
+    else:
+        fewest = " It is also the rule that wastes the fewest trials."
     if kept:
         return (f"<p><b>A team using {escape(policy)} could book {h} trials and stop with {rule}</b>, the rule that "
                 f"saves the most trials of those whose miss risk at the stop stays within the {fmt_pct(1 - success)} % "
-                f"the budget plan accepts (at the upper end of its 95 % interval): {saving}; {cost}.</p>")
+                f"the budget plan accepts (at the upper end of its 95 % interval): {saving}; {cost}.{fewest}</p>")
     return (f"<p><b>No stopping rule keeps {escape(policy)}'s miss risk at the stop within the {fmt_pct(1 - success)} % "
             f"the budget plan accepts</b> (at the upper end of its 95 % interval); the closest, {rule}, would save "
-            f"trials at a price: {saving}; {cost}. Book the full budget, or simulate a stricter rule.</p>")
+            f"trials at a price: {saving}; {cost}.{fewest} Book the full budget, or simulate a stricter rule.</p>")
 
 
 def _table(study, stop):
@@ -86,13 +97,20 @@ def _table(study, stop):
             f"</tr></thead><tbody>{''.join(rows)}</tbody></table>")
 
 
+def _rule_words(study, spec):
+    """``label: confident (chance 0.9) from trial 7 on: stops when ...`` with setting names as code."""
+    rule = make_rule(spec)
+    name = "" if spec.label == spec.rule else f"<code>{escape(spec.label)}</code>: "
+    what = re.sub(r"`([^`]+)`", r"<code>\1</code>", escape(rule.description))
+    return f"{name}{escape(rule.words(study))}, from trial {spec.options['min_trials']} on: {what}"
+
+
 def stopping_section(study, tables, choice, figures, success):
     """The section (HTML), or "" for a study without [[stop]] rules. `figures`: the section's figures."""
     if STOPPING not in tables:
         return ""
     stop = Cells(STOPPING, tables[STOPPING])
-    rules = "".join(f"<li><code>{escape(s.label)}</code>: {escape(make_rule(s).words(study))}, from trial "
-                    f"{s.options['min_trials']} on — {escape(make_rule(s).description)}</li>" for s in study.stops)
+    rules = "".join(f"<li>{_rule_words(study, s)}</li>" for s in study.stops)
     return (
         '<section id="stopping"><h2>6. When to stop</h2>'
         + _sentence(study, stop, choice, success)
