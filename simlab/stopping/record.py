@@ -40,6 +40,8 @@ _SCREEN = 5.0
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
 # Pool points whose exact pairwise probability bounds the chance from above (see `_pair_bound`).
 _PAIRS = 4
+# The first batch of draws; later batches double the count (16, 16, 32, 64, ...) up to `draws`.
+_FIRST_BATCH = 16
 
 
 @dataclass(frozen=True)
@@ -53,8 +55,7 @@ class RecordPlan:
     chance_from: int | None = None
     chances: tuple[float, ...] = ()    # the confident rules' `chance` settings
     settled_from: int = 1              # the largest `min_trials` of the confident rules
-    rounds: int = 4                    # most batches of `draws` per trial (see StopLog._chance)
-    draws: int = 64
+    draws: int = 128                   # most posterior draws per trial, in doubling batches (StopLog._chance)
     features: int = 64
     gain_from: int | None = None
     gap_from: int | None = None
@@ -187,25 +188,27 @@ class StopLog:
 
         Notes
         -----
-        Each batch of ``draws`` pathwise posterior draws counts the draws in which the recommendation
-        lies within the target of the draw's minimum (:meth:`_within`); the bound is the Clopper-Pearson
-        lower end for that count (``Beta(0.05; k, S - k + 1)``). Batches are added, up to ``rounds``,
-        while some confident rule's ``chance`` lies inside the two-sided 90 % interval, i.e. while the
-        draws cannot yet tell whether that rule should stop. Comparing the point estimate with
-        ``chance`` instead would stop at the first trial where Monte Carlo noise lifts it across,
-        and the stopped campaigns would then be within target less often than ``chance`` (Wilson 2024
-        controls the same error with a test on the Monte Carlo estimate).
+        Pathwise posterior draws are counted in batches that double the count (16, 16, 32, 64, ...
+        up to ``draws``): the draws in which the recommendation lies within the target of the draw's
+        minimum (:meth:`_within`). Drawing stops as soon as no confident rule's ``chance`` lies
+        inside the two-sided 90 % Clopper-Pearson interval of the share, i.e. once the draws can
+        tell every rule whether to stop; far from every threshold (most trials) 16 or 32 draws do.
+        The bound returned is the interval's lower end, ``Beta(0.05; k, S - k + 1)``. Comparing the
+        point estimate with ``chance`` instead would stop at the first trial where Monte Carlo noise
+        lifts it across, and the stopped campaigns would then be within target less often than
+        ``chance`` (Wilson 2024 controls the same error with a test on the Monte Carlo estimate).
         """
         k = S = 0
-        for _ in range(self.plan.rounds):
-            k += self._within(st, b, r, mu, sd)
-            S += self.plan.draws
+        batch = min(_FIRST_BATCH, self.plan.draws)
+        while True:
+            k += self._within(st, b, r, mu, sd, batch)
+            S += batch
             low, high = _clopper_pearson(k, S)
-            if not any(low < c <= high for c in self.plan.chances):
-                break
-        return low
+            if S >= self.plan.draws or not any(low < c <= high for c in self.plan.chances):
+                return low
+            batch = min(S, self.plan.draws - S)
 
-    def _within(self, st, b: int, r: int, mu: np.ndarray, sd: np.ndarray) -> int:
+    def _within(self, st, b: int, r: int, mu: np.ndarray, sd: np.ndarray, draws: int) -> int:
         """Of ``draws`` posterior draws, how many put the recommendation (row r) within the target of the
         draw's minimum over the pool and the evaluated inputs (Wilson 2024, by Monte Carlo)."""
         rows = np.flatnonzero(mu - _SCREEN * sd <= np.min(mu + _SCREEN * sd))
@@ -213,7 +216,7 @@ class StopLog:
             rows = np.arange(len(mu))
         if b not in self.draws:
             self.draws[b] = self.recorder.draws(st, b, self.replicates[b])
-        G, GX = self.draws[b].draw_in(st, b, self.rngs[b], self.plan.draws, rows, single=True)  # (rows, S), (n, S)
+        G, GX = self.draws[b].draw_in(st, b, self.rngs[b], draws, rows, single=True)   # (rows, S), (n, S)
         lowest = np.minimum(G.min(axis=0), GX.min(axis=0))
         return int(np.sum(GX[r] - lowest <= self.plan.target))
 

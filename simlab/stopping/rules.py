@@ -80,8 +80,9 @@ class Confident(StopRule):
     After each trial the recorder bounds ``P(f(rec) - min f <= target | data)`` from below
     (``stop_chance``): it counts the pathwise posterior draws over the pool and the evaluated inputs
     in which the recommendation's value lies within the study's target (``[target] regret``) of the
-    draw's minimum, in batches of ``draws`` (more batches, up to 4, while the count cannot yet tell a
-    rule's ``chance`` apart), and takes the one-sided 95 % Clopper-Pearson lower bound of the share.
+    draw's minimum, in batches that double the count from 16 up to ``draws`` while the count cannot
+    yet tell a rule's ``chance`` apart, and takes the one-sided 95 % Clopper-Pearson lower bound of
+    the share.
     The rule stops once that bound reaches ``chance``. With a belief that matches the worlds, the
     campaigns it stops are then within target at least about ``chance`` of the time (Bayesian
     calibration: tests/unit/test_stopping.py); a wrong belief breaks this.
@@ -100,7 +101,8 @@ class Confident(StopRule):
     options = {
         "chance": Option(0.9, float, 0.0, 1.0, "belief's probability that the recommendation is within the target",
                          low_open=True, high_open=True),
-        "draws": Option(64, int, 8, 4096, "posterior draws per trial for the probability"),
+        "draws": Option(128, int, 16, 4096, "most posterior draws per trial for the probability (drawn in "
+                        "doubling batches from 16 until every rule's decision is clear)"),
         "features": Option(64, int, 16, 4096, "spectral frequencies of the draws (drawn once per campaign)"),
     }
 

@@ -121,6 +121,12 @@ def test_report_has_the_section_and_its_numbers_are_stopping_csv_cells(run):
     assert (run / "figures" / "stopping.png").is_file() and (run / "figures" / "stopping.svg").is_file()
 
 
+def test_rebuilding_the_report_gives_the_same_stopping_files(run):
+    before = {name: (run / name).read_bytes() for name in ("stopping.csv", "stopping_curves.csv")}
+    assert simlab("report", run, "--quiet", cwd=run.parent).returncode == 0
+    assert {name: (run / name).read_bytes() for name in before} == before
+
+
 def test_every_stopping_file_is_known_to_fresh(run):
     from simlab.replay.store import foreign_entries
     assert foreign_entries(run, manifest=True) == []

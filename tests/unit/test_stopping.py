@@ -79,7 +79,7 @@ def test_chance_matches_exact_joint_draws_on_a_grid(target):
     mu, sd = post.pool_moments()
     exact, F, rec = _exact_chance(post, target, 40_000, seed=1)
     log = _log(post, target=target, draws=8192)
-    share = log._within(post, 0, post.recommend(), mu, sd) / 8192
+    share = log._within(post, 0, post.recommend(), mu, sd, 8192) / 8192
     assert 0.05 < exact < 0.95                                     # an informative probability
     assert share == pytest.approx(exact, abs=0.025)
     # negative control: draws that ignore the correlations between points (independent marginals)
@@ -230,7 +230,7 @@ def test_stop_tables_read_dump_and_read_back():
     s = study()
     again = parse_study(__import__("tomllib").loads(dump_study(s)), source="again")
     assert again == s and len(s.stops) == 5
-    assert s.stops[0].options == {"min_trials": 5, "chance": 0.8, "draws": 64, "features": 64}
+    assert s.stops[0].options == {"min_trials": 5, "chance": 0.8, "draws": 128, "features": 64}
     assert "[[stop]]" not in dump_study(study(stop=[]))      # other studies dump (and hash) as before
 
 
@@ -250,8 +250,8 @@ def test_bad_stop_tables_are_one_line_errors(stop, field, words):
 
 
 def test_rules_sharing_a_record_must_agree_on_its_settings():
-    with pytest.raises(StudyError, match=r"stop\[1\].draws: must equal stop\[0\].draws = 64"):
-        study(stop=[{"rule": "confident"}, {"rule": "confident", "label": "b", "draws": 128}])
+    with pytest.raises(StudyError, match=r"stop\[1\].draws: must equal stop\[0\].draws = 128"):
+        study(stop=[{"rule": "confident"}, {"rule": "confident", "label": "b", "draws": 64}])
     with pytest.raises(StudyError, match=r"stop\[1\].label: \"confident\" is already used by stop\[0\]"):
         study(stop=[{"rule": "confident"}, {"rule": "confident", "chance": 0.5}])
 
