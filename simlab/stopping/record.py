@@ -13,9 +13,11 @@ Nothing is recorded, and nothing costs, when no ``[[stop]]`` rule of the study n
 :func:`record_plan` is None then, and the traces keep exactly their columns. Columns hold NaN
 where nothing was computed: before the first trial any rule reading them may stop, and, for
 ``stop_chance`` (the costly one: pathwise draws over the pool), after every confident rule has
-stopped the campaign. ``stop_chance`` is a 95 % lower confidence bound on the belief's chance
-from the Monte Carlo count (:meth:`StopLog._chance`); where an exact pairwise bound already shows
-the chance below every confident rule's threshold, it holds that bound instead.
+stopped the campaign. ``stop_chance`` is a lower bound on the belief's chance: the larger of an
+exact one from pairs (Boole's inequality, :func:`_pair_bounds`) and the 95 % confidence bound from
+the Monte Carlo count (:meth:`StopLog._chance`). Where the exact pairwise bounds already decide
+every confident rule (the chance provably below each threshold, or above each), no draws are made
+and ``stop_chance`` holds that bound (the upper one when below).
 """
 
 from __future__ import annotations
@@ -26,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..lazy import special
-from ..model.gp import matvec, rowdot
+from ..model.gp import matvec, rowdot, vecmat
 from ..policies.info import PathwiseDraws
 from .rules import STOP_RULES
 
@@ -38,8 +40,6 @@ __all__ = ["RecordPlan", "StopRecorder", "StopLog", "record_plan"]
 # of 2048, far below the Monte Carlo error of 64 draws (0.04 at a probability of 0.9).
 _SCREEN = 5.0
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
-# Pool points whose exact pairwise probability bounds the chance from above (see `_pair_bound`).
-_PAIRS = 4
 # The first batch of draws; later batches double the count (16, 16, 32, 64, ...) up to `draws`.
 _FIRST_BATCH = 16
 
@@ -171,12 +171,14 @@ class StopLog:
             self.values["stop_gap"][:, i] = mud[at, r] + w * sdd[at, r] - lowest
         if want["stop_chance"] and not self.settled.all():
             chance = self.values["stop_chance"][:, i]
-            bound = _pair_bound(st, r, md[at, r], mu, sd, p.target)
+            lower, upper = _pair_bounds(st, r, md, mu, sd, p.target)
             for b in np.flatnonzero(~self.settled):
-                # an exact bound already below every rule's chance: no rule stops here, and the bound
-                # is recorded instead of a Monte Carlo estimate that could only cross it by noise
-                chance[b] = (bound[b] if bound[b] < p.lowest_chance else
-                             self._chance(st, b, int(r[b]), mu[b], sd[b]))
+                if upper[b] < p.lowest_chance:       # below every rule's chance: none stops, no draws needed
+                    chance[b] = upper[b]
+                elif lower[b] >= p.highest_chance:   # above every rule's chance: all stop, no draws needed
+                    chance[b] = lower[b]
+                else:                                # undecided: the draws' lower bound, or the exact one
+                    chance[b] = max(lower[b], self._chance(st, b, int(r[b]), mu[b], sd[b]))
             # once every confident rule has stopped a campaign nothing later can change a stopping
             # time: the rest of its column stays NaN and costs nothing
             if t >= p.settled_from:
@@ -234,39 +236,45 @@ def _clopper_pearson(k: int, n: int) -> tuple[float, float]:
     return low, high
 
 
-def _pair_bound(st, r, mu_rec, mu, sd, target) -> np.ndarray:
-    """An exact upper bound on the chance, per replicate (B,): ``min_x P(f(rec) - f(x) <= target)``.
+def _pair_bounds(st, r, md, mu, sd, target) -> tuple[np.ndarray, np.ndarray]:
+    """Exact bounds on the chance from pairs, per replicate: ``(lower, upper)``, each (B,).
 
-    The recommendation is within the target of the minimum only if it is within the target of
-    every single point, so each pool point x bounds the chance by a normal probability of the
-    posterior difference ``f(rec) - f(x)``: mean ``mu_rec - mu_x``, variance ``var_rec + var_x - 2
-    cov``, with ``cov = k(rec, x) - v_rec . v_x`` read from the kept cross term ``V = L^-1 K(X, pool)``.
-    The `_PAIRS` points most likely to beat the recommendation by the target (scored without the
-    covariance) are tried. O(n m) per replicate, against O(m F S) for the draws.
+    With ``q_x = P(f(x) < f(rec) - target)`` for every pool point and evaluated input x (a normal
+    probability of the posterior difference ``f(rec) - f(x)``: mean ``mu_rec - mu_x``, variance
+    ``var_rec + var_x - 2 cov``), the chance lies between ``1 - sum_x q_x`` (Boole's inequality:
+    the recommendation misses only if some x beats it by the target) and ``1 - max_x q_x`` (it
+    misses whenever that x does). The covariances come from the kept factors: ``cov = k(rec, x) -
+    v_rec . v_x`` with ``v_x`` a column of ``V = L^-1 K(X, pool)`` for the pool, and of ``L^-1 K(X, X)
+    = L^T - s2 L^-1`` for the evaluated inputs. O(n m) per replicate, against O(m F S) for draws.
     """
     n, B = st.n, st.size
     at = np.arange(B)
-    X, Li = st._X[:, :n], st._Li[:, :n, :n]
+    X, L, Li = st._X[:, :n], st._L[:, :n, :n], st._Li[:, :n, :n]
+    kvar = st.kernel.variance
     xr = X[at, r][:, None, :]                                               # (B, 1, d)
     v = matvec(Li, st.kernel.stacked(X, xr)[:, :, 0])                       # L^-1 k(X, rec), (B, n)
-    var_rec = np.maximum(st.kernel.variance - rowdot(v, v), 0.0)            # (B,)
+    var_rec = np.maximum(kvar - rowdot(v, v), 0.0)[:, None]                 # (B, 1)
+    mu_rec = md[at, r][:, None]
+    # the pool
+    cov = st.kernel.stacked(xr, st.pools)[:, 0, :] - vecmat(v, st._V[:, :n])       # (B, m)
+    q_pool = _beaten(mu_rec - target - mu, var_rec + sd * sd - 2.0 * cov, kvar)
+    # the evaluated inputs: columns of L^-1 K(X, X), as rows of a contiguous array (last-axis sums)
+    Vd = np.ascontiguousarray((L - st._s2()[:, None, None] * Li.transpose(0, 2, 1)))  # rows: (L^-1 K)^T
+    cov_d = st.kernel.stacked(xr, X)[:, 0, :] - matvec(Vd, v)                        # (B, n)
+    var_d = np.maximum(kvar - (Vd * Vd).sum(-1), 0.0)
+    q_data = _beaten(mu_rec - target - md, var_rec + var_d - 2.0 * cov_d, kvar)
+    lower = 1.0 - (q_pool.sum(-1) + q_data.sum(-1))
+    upper = 1.0 - np.maximum(q_pool.max(-1), q_data.max(-1))
+    return np.maximum(lower, 0.0), upper
+
+
+def _beaten(margin, var, kvar) -> np.ndarray:
+    """``P(D > 0)`` for ``D ~ N(margin, var)``, elementwise; a difference the belief knows (almost)
+    exactly (var below 1e-12 of the prior variance, where rounding decides its sign) counts as beaten
+    only when its margin is positive."""
     with np.errstate(divide="ignore", invalid="ignore"):
-        z = (mu_rec[:, None] - target - mu) / np.sqrt(var_rec[:, None] + sd * sd)
-    z = np.where(np.isfinite(z), z, -np.inf)
-    k = min(_PAIRS, mu.shape[1])
-    idx = np.argpartition(-z, k - 1, axis=-1)[:, :k]                       # (B, k)
-    Vx = np.take_along_axis(st._V[:, :n], idx[:, None, :], axis=2)          # (B, n, k)
-    px = np.take_along_axis(st.pools, idx[:, :, None], axis=1)              # (B, k, d)
-    cov = st.kernel.stacked(xr, px)[:, 0, :] - np.matmul(v[:, None, :], Vx)[:, 0, :]
-    sdx = np.take_along_axis(sd, idx, axis=1)
-    var = var_rec[:, None] + sdx * sdx - 2.0 * cov
-    gap = mu_rec[:, None] - np.take_along_axis(mu, idx, axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p = special.ndtr((target - gap) / np.sqrt(var))
-    # a difference the belief knows (almost) exactly: the bound is 1 or 0 by the sign, which rounding
-    # in var can flip; such pairs bound nothing
-    p = np.where(var > 1e-12 * st.kernel.variance, p, 1.0)
-    return np.min(p, axis=-1)
+        q = special.ndtr(margin / np.sqrt(np.maximum(var, 0.0)))
+    return np.where(var > 1e-12 * kvar, q, (margin > 0).astype(float))
 
 
 def _largest_ei(mu: np.ndarray, sd: np.ndarray, incumbent: np.ndarray) -> np.ndarray:

@@ -12,7 +12,7 @@ from simlab.evidence.stopping import stopping_curves, stopping_table, stopping_t
 from simlab.model.gp import Posterior, Stack
 from simlab.model.kernels import Matern52
 from simlab.replay.runner import replay
-from simlab.stopping.record import RecordPlan, StopRecorder, _largest_ei, _pair_bound, record_plan
+from simlab.stopping.record import RecordPlan, StopRecorder, _largest_ei, _pair_bounds, record_plan
 from simlab.study.dump import dump_study
 from simlab.study.spec import StudyError, parse_study
 from studies import study_with
@@ -88,17 +88,24 @@ def test_chance_matches_exact_joint_draws_on_a_grid(target):
     assert abs(independent - exact) > 0.05
 
 
-def test_pairwise_bound_lies_above_the_exact_chance():
-    """The exact pairwise bound min_x P(f(rec) - f(x) <= target) is >= the brute-force chance
-    (minus its Monte Carlo error: 3 sd of 40000 draws = 0.0075), and <= 1."""
+def test_pairwise_bounds_bracket_the_exact_chance():
+    """Boole's lower bound 1 - sum_x q_x and the pair bound 1 - max_x q_x bracket the brute-force
+    chance (within its Monte Carlo error: 3 sd of 40000 draws = 0.0075); and on a posterior that has
+    converged the lower bound is close (negative control: it is not trivially 0)."""
     for seed in range(4):
         post = _posterior_1d(seed=seed)
         mu, sd = post.pool_moments()
         r = post.recommend()
         for target in (0.05, 0.2):
             exact, _, _ = _exact_chance(post, target, 40_000, seed=seed)
-            bound = _pair_bound(post, np.array([r]), post.mean_at_data()[[r]], mu[None], sd[None], target)[0]
-            assert exact - 0.0075 <= bound <= 1.0
+            lower, upper = _pair_bounds(post, np.array([r]), post.mean_at_data()[None], mu[None], sd[None], target)
+            assert lower[0] - 0.0075 <= exact <= upper[0] + 0.0075
+    post = _posterior_1d(n=40, noise=0.01)
+    mu, sd = post.pool_moments()
+    exact, _, _ = _exact_chance(post, 0.2, 40_000, seed=9)
+    lower, upper = _pair_bounds(post, np.array([post.recommend()]), post.mean_at_data()[None], mu[None],
+                                sd[None], 0.2)
+    assert exact > 0.9 and lower[0] > 0.8 and lower[0] - 0.0075 <= exact <= upper[0] + 0.0075
 
 
 def test_small_gain_is_closed_form_expected_improvement():
