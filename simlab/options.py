@@ -15,7 +15,8 @@ __all__ = ["Option"]
 
 @dataclass(frozen=True)
 class Option:
-    """A setting's default, type and allowed range (``low < x`` when ``low_open``)."""
+    """A setting's default, type and allowed range (``low < x`` when ``low_open``, ``x < high`` when
+    ``high_open``). A default of None means "resolved from the study when it is read" (the reader says how)."""
 
     default: Any
     kind: type = float
@@ -24,3 +25,4 @@ class Option:
     help: str = ""
     choices: tuple[str, ...] = ()   # for kind=str: the allowed words
     low_open: bool = False
+    high_open: bool = False

@@ -21,6 +21,7 @@ PURPOSES = {
     "refit": 7,      # starting points of a campaign's belief refits (per policy)
     "optimum_check": 8,   # a second, independent search for the world's optimum (optimum_gap)
     "library": 9,    # the order a [candidates] library's rows are visited in (design, sobol policy)
+    "stop": 10,      # posterior draws of the stopping rules' record (per policy), simlab.stopping.record
 }
 
 

@@ -73,54 +73,74 @@ def _km_by_policy(frame, target, confidence_level, method):
     risk set; an approximation under censoring).
     """
     reach = _first_reach(frame, target)
-    tail = (1.0 - confidence_level) / 2.0
     curves = {}
     for policy in frame["policy"].cat.categories:
         rows = reach[reach["policy"] == policy]
-        times = rows["trials"].to_numpy(dtype=float)
-        hit = rows["reached"].to_numpy()
-        data = stats.CensoredData(uncensored=times[hit], right=times[~hit])
-        result = stats.ecdf(data)
         trials = np.arange(
             frame.loc[frame["policy"] == policy, "trial"].min(),
             frame.loc[frame["policy"] == policy, "trial"].max() + 1,
         )
-        share = result.cdf.evaluate(trials)
-        with warnings.catch_warnings():
-            # The log-log band is undefined where the share is exactly 0 or 1; scipy
-            # warns and returns NaN there. Such points are filled below.
-            warnings.simplefilter("ignore", RuntimeWarning)
-            band = result.cdf.confidence_interval(confidence_level, method=method)
-            low = band.low.evaluate(trials)
-            high = band.high.evaluate(trials)
-        events = np.array([np.sum(hit & (times <= t)) for t in trials])
-        at_risk = np.array([np.sum(times >= t) for t in trials])
-        censored_before = np.array([np.sum(~hit & (times < t)) for t in trials])
-        n = len(rows)
-        # Censoring before t: the Greenwood band, with exact one-sided ends at 0 and 1.
-        none_yet = share <= 0.0
-        all_met = share >= 1.0
-        low = np.where(none_yet, 0.0, low)
-        high = np.where(none_yet, 1.0 - tail ** (1.0 / np.maximum(at_risk, 1)), high)
-        low = np.where(all_met, tail ** (1.0 / np.maximum(events, 1)), low)
-        high = np.where(all_met, 1.0, high)
-        # No censoring before t: the exact binomial interval.
-        exact_low, exact_high = share_interval(events, n, confidence_level)
-        plain = censored_before == 0
-        low = np.clip(np.where(plain, exact_low, low), 0.0, 1.0)
-        high = np.clip(np.where(plain, exact_high, high), 0.0, 1.0)
+        km = km_curve(rows["trials"].to_numpy(dtype=float), rows["reached"].to_numpy(), trials,
+                      confidence_level=confidence_level, method=method)
         curves[policy] = pd.DataFrame(
             {
                 "policy": policy,
                 "trial": trials,
-                "replicates": n,
-                "campaigns_reached": events,
-                "reached": share,
-                "reached_low": low,
-                "reached_high": high,
+                "replicates": len(rows),
+                "campaigns_reached": km["events"],
+                "reached": km["share"],
+                "reached_low": km["low"],
+                "reached_high": km["high"],
             }
         )
     return curves
+
+
+def km_curve(times, hit, trials, *, confidence_level=0.95, method="log-log"):
+    """Kaplan-Meier share with an event by each of `trials`, and its band (scipy.stats.ecdf).
+
+    Parameters
+    ----------
+    times : ndarray of float
+        Each campaign's event time, or its censoring time where ``hit`` is False.
+    hit : ndarray of bool
+    trials : ndarray of int
+        Where the curve is read.
+
+    Returns
+    -------
+    dict of ndarray
+        ``share``, ``low``, ``high`` and ``events`` (campaigns with an event by each trial).
+        The band is built as `_km_by_policy` says (exact binomial before any censoring).
+    """
+    tail = (1.0 - confidence_level) / 2.0
+    data = stats.CensoredData(uncensored=times[hit], right=times[~hit])
+    result = stats.ecdf(data)
+    share = result.cdf.evaluate(trials)
+    with warnings.catch_warnings():
+        # The log-log band is undefined where the share is exactly 0 or 1; scipy
+        # warns and returns NaN there. Such points are filled below.
+        warnings.simplefilter("ignore", RuntimeWarning)
+        band = result.cdf.confidence_interval(confidence_level, method=method)
+        low = band.low.evaluate(trials)
+        high = band.high.evaluate(trials)
+    events = np.array([np.sum(hit & (times <= t)) for t in trials])
+    at_risk = np.array([np.sum(times >= t) for t in trials])
+    censored_before = np.array([np.sum(~hit & (times < t)) for t in trials])
+    n = len(times)
+    # Censoring before t: the Greenwood band, with exact one-sided ends at 0 and 1.
+    none_yet = share <= 0.0
+    all_met = share >= 1.0
+    low = np.where(none_yet, 0.0, low)
+    high = np.where(none_yet, 1.0 - tail ** (1.0 / np.maximum(at_risk, 1)), high)
+    low = np.where(all_met, tail ** (1.0 / np.maximum(events, 1)), low)
+    high = np.where(all_met, 1.0, high)
+    # No censoring before t: the exact binomial interval.
+    exact_low, exact_high = share_interval(events, n, confidence_level)
+    plain = censored_before == 0
+    low = np.clip(np.where(plain, exact_low, low), 0.0, 1.0)
+    high = np.clip(np.where(plain, exact_high, high), 0.0, 1.0)
+    return {"share": share, "low": low, "high": high, "events": events}
 
 
 def reach_curves(traces, *, target, confidence_level=0.95, method="log-log"):

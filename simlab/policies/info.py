@@ -113,13 +113,17 @@ class PathwiseDraws:
             return G
         return G, fX + post.kernel(post.X) @ post.solve(R)
 
-    def draw_in(self, st, b: int, rng, n_samples: int, rows):
+    def draw_in(self, st, b: int, rng, n_samples: int, rows, *, single: bool = False):
         """:meth:`draw` for replicate b of a stack (its pool, data and factors), with the
         draws at the evaluated inputs too: ``(G, GX)``.
 
         Solves go through the stack's kept inverse factor (``L^-T L^-1``) rather than a
         Cholesky solve, so replicate b gets the same bits whether the stack holds it alone
-        or beside others (every product is on b's own slices).
+        or beside others (every product is on b's own slices). ``single``: the correction is
+        rounded to float32 before it is added to the float32 prior draws (adding float64 to
+        float32 in place costs as much as the product itself; the values differ by float32
+        rounding, about 1e-7 of the prior sd). The stopping record uses it; MES keeps the
+        float64 addition, so its traces are unchanged.
         """
         if st.version != self._version:          # the belief was refitted: new kernel, new features
             self._build(st, rng)
@@ -137,9 +141,10 @@ class PathwiseDraws:
         w = Li @ R                                                             # L^-1 R
         if 2 * len(rows) >= len(self.pool):
             V = st._V[b, :n]
-            G += V.T @ w if all_rows else V[:, rows].T @ w                     # cached cross term, O(n m S)
+            corr = V.T @ w if all_rows else V[:, rows].T @ w                   # cached cross term, O(n m S)
         else:
-            G += st.kernel(self.pool[rows], X) @ (Li.T @ w)                    # few rows: O(n |rows| S)
+            corr = st.kernel(self.pool[rows], X) @ (Li.T @ w)                  # few rows: O(n |rows| S)
+        G += corr.astype(np.float32) if single else corr
         return G, fX + st.kernel(X) @ (Li.T @ w)
 
     def path(self, post, s: int):

@@ -21,7 +21,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                  pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
                  history: tuple[np.ndarray, np.ndarray] | None = None,
                  refit_rng: np.random.Generator | None = None, library: bool = False,
-                 snap: Callable[[np.ndarray], np.ndarray] | None = None) -> Trace:
+                 snap: Callable[[np.ndarray], np.ndarray] | None = None, stop=None) -> Trace:
     """Replay one campaign.
 
     Parameters
@@ -51,6 +51,10 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     snap : callable, optional
         Moves a chosen input to allowed values (``Space.snap``: stepped and categorical inputs)
         before the world, the posterior and any pending-trial rule see it.
+    stop : callable, optional
+        ``stop(post, h=, n=)`` starts the record of what the study's stopping rules read after
+        each trial (``simlab.stopping.StopRecorder.begin`` bound to this replicate and policy),
+        kept in ``Trace.stats``; None: nothing recorded.
     """
     d = sequence.shape[1]
     H, yH = past_trials(history, d)
@@ -60,6 +64,7 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
     U, y, f, rec = allocate(n, d)
     rows = {np.ascontiguousarray(r).tobytes() for r in pool} if library else None   # every trial must be a row
     seen: list[int] = []                                   # trace rows the posterior has observed
+    log = stop(post, h=h, n=n) if stop is not None else None
     for i in range(h):                                     # past trials, already observed
         U[i], y[i], f[i] = H[i], yH[i], world(H[i : i + 1])[0]
         post.add(H[i], yH[i])
@@ -78,10 +83,12 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                 post.add(u, y[i])
                 seen.append(i)
             rec[i] = seen[post.recommend()] if seen else i  # record
+            if log is not None:
+                log.after(post, i)                         # what stopping rules read
         k = belief.refit_every
         if k and (ts.stop // k > ts.start // k):           # a multiple of k trials is complete
             _refit(post, refit_rng)
-    return Trace(U=U, y=y, f=f, rec=rec)
+    return Trace(U=U, y=y, f=f, rec=rec, stats=log.columns(0) if log is not None else {})
 
 
 def _refit(post: Posterior, rng: np.random.Generator) -> None:

@@ -8,6 +8,7 @@ The one-screen loop, for a block of B replicates sharing a policy and a budget::
         observe  y  (B,)     the replicate's shared noise draw for trial t
         update   stack.add(xs, y)      one row of every factor, one product per block
         record   argmin of the posterior mean at the data, per replicate
+                 (and what the study's stopping rules read, when it has some: simlab.stopping.record)
 
 Python's overhead (a few hundred function calls per trial) is paid once per block rather
 than once per campaign. Every operation works slice by slice (``simlab.model.gp.matvec`` and
@@ -71,7 +72,7 @@ def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float) ->
 
 def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budget: int, rngs,
               history: tuple[np.ndarray, np.ndarray] | None = None, snap=None,
-              library: bool = False) -> list[Trace]:
+              library: bool = False, stop=None) -> list[Trace]:
     """Replay one policy on a block of replicates in lockstep.
 
     Parameters
@@ -93,6 +94,9 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     library : bool
         The pools are a [candidates] library's rows (the same in every replicate): rules score every
         row and choose one (``Block.library``), and a trial off the library is refused.
+    stop : callable, optional
+        ``stop(st, h=, n=)`` starts the record of what stopping rules read after each trial
+        (``simlab.stopping.StopRecorder.begin`` bound to the block's replicates), as in ``run_campaign``.
 
     Returns
     -------
@@ -111,6 +115,7 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     worlds = WorldBlock([r.world for r in reps])
     U, y, f, rec = allocate(n, d, B)
     rows = {np.ascontiguousarray(r).tobytes() for r in reps[0].pool} if library else None
+    log = stop(st, h=h, n=n) if stop is not None else None
     try:
         for i in range(h):                                        # past trials, already observed
             U[:, i], y[:, i] = H[i], yH[i]
@@ -128,6 +133,9 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
             y[:, i] = observer.many(f[:, i], shocks[:, t], lost[:, t])                            # observe
             st.add(U[:, i], y[:, i])                                                               # update
             rec[:, i] = np.argmin(st.means_at_data(), axis=-1)                                     # record
+            if log is not None:
+                log.after(st, i)
     finally:
         st.release()
-    return [Trace(U=U[b], y=y[b], f=f[b], rec=rec[b]) for b in range(B)]
+    return [Trace(U=U[b], y=y[b], f=f[b], rec=rec[b], stats=log.columns(b) if log is not None else {})
+            for b in range(B)]

@@ -9,6 +9,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
+from ..columns import STOP_COLUMNS
 from ..policies import POLICIES, Policy
 from ..rng import stream
 from ..study.spec import Study
@@ -68,7 +69,11 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     """
     from .lockstep import fits_lockstep, run_block
 
+    from ..stopping.record import StopRecorder, record_plan
+
     belief, observer, history = make_belief(study), make_observer(study), history_arrays(study)
+    plan = record_plan(study)      # None unless a [[stop]] rule reads the posterior: then nothing is recorded
+    recorder = StopRecorder(plan, study.seed) if plan is not None else None
     c = study.campaign
     out: list[list] = [[] for _ in reps]
     for spec in study.policies:
@@ -80,9 +85,11 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
             if together:
                 rngs = [stream(study.seed, rep.index, "policy", spec.label) for rep in reps]
                 traces = run_block(make_policy(spec), belief, reps, observer=observer, budget=b, rngs=rngs,
-                                   history=history, snap=_snap(study), library=study.space.library is not None)
+                                   history=history, snap=_snap(study), library=study.space.library is not None,
+                                   stop=_stop_start(recorder, reps, spec.label))
             else:
-                traces = [_alone(study, spec, belief, observer, history, rep, b) for rep in reps]
+                traces = [_alone(study, spec, belief, observer, history, rep, b, _stop_start(recorder, [rep], spec.label))
+                          for rep in reps]
             for k, trace in enumerate(traces):
                 per[k].append((b, trace))
         for k in range(len(reps)):
@@ -90,7 +97,16 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     return out
 
 
-def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep: Replicate, budget: int) -> Trace:
+def _stop_start(recorder, reps: list[Replicate], label: str):
+    """What a campaign loop calls to start the stopping rules' record of these replicates (None: none)."""
+    if recorder is None:
+        return None
+    replicates = [rep.index for rep in reps]
+    return lambda st, *, h, n: recorder.begin(st, replicates, label, h=h, n=n)
+
+
+def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep: Replicate, budget: int,
+           stop=None) -> Trace:
     """One campaign replayed on its own (the reference path)."""
     def observe(f, t):
         return observer(f, rep.shocks[t], rep.lost[t])
@@ -100,7 +116,7 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
                         observe=observe, budget=budget, pool=rep.pool,
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
                         history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
-                        library=study.space.library is not None, snap=_snap(study))
+                        library=study.space.library is not None, snap=_snap(study), stop=stop)
 
 
 def _snap(study: Study):
@@ -133,6 +149,7 @@ def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
                       "lost": ~np.isfinite(cols["y"]), "regret": cols["regret"],
                       "regret_seen": cols["regret_seen"], "rec_trial": cols["rec_trial"],
                       "horizon": cols["horizon"]})
+        frame.update({name: cols[name] for name in STOP_COLUMNS if name in cols})   # only with [[stop]] rules
         frames.append(pd.DataFrame(frame))
     return pd.concat(frames, ignore_index=True)
 
@@ -160,7 +177,7 @@ def _columns(t: Trace, trial: np.ndarray, fstar: float) -> dict[str, np.ndarray]
     best = np.minimum.accumulate(seen)
     best = np.where(np.isfinite(best), best, t.f[t.rec])  # nothing seen yet: the current input
     return {"U": t.U, "y": t.y, "f": t.f, "regret": t.f[t.rec] - fstar, "regret_seen": best - fstar,
-            "rec_trial": trial[t.rec]}
+            "rec_trial": trial[t.rec], **t.stats}
 
 
 def _compose(parts: list[tuple[int, dict]], trial: np.ndarray) -> dict[str, np.ndarray]:

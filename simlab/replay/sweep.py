@@ -26,7 +26,9 @@ def sweep_cells(study: Study) -> list[tuple[float, float, Study]]:
         for af in sw.amplitude:
             belief = dataclasses.replace(b, lengthscale=tuple(v * lf for v in b.lengthscale),
                                          amplitude=b.amplitude * af)
-            cells.append((lf, af, dataclasses.replace(study, belief=belief, replicates=sw.replicates)))
+            # stopping rules are not part of the sweep's question (it reads regret at the budgets only),
+            # so nothing is recorded for them in its cells
+            cells.append((lf, af, dataclasses.replace(study, belief=belief, replicates=sw.replicates, stops=())))
     return cells
 
 

@@ -8,7 +8,7 @@ lockstep). The runner turns traces into the traces table (runner._columns).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -29,12 +29,16 @@ class Trace:
         0-based row index (into these arrays) of the recommendation after each row: the
         observed input with the lowest posterior mean (the row itself while nothing has
         been observed yet). ``y`` is NaN for lost trials.
+    stats : dict of str to ndarray of shape (h + budget,)
+        What the study's stopping rules read after each row (``simlab.stopping.record``; columns
+        ``stop_*``, NaN where not computed); empty when no rule needs the posterior.
     """
 
     U: np.ndarray
     y: np.ndarray
     f: np.ndarray
     rec: np.ndarray
+    stats: dict = field(default_factory=dict)
 
 
 def past_trials(history, d: int) -> tuple[np.ndarray, np.ndarray]:

@@ -50,7 +50,24 @@ def fmt_miss(value):
     return fmt_pct(1.0 - float(value))
 
 
-FORMATS = {"sig": fmt_sig, "pct": fmt_pct, "int": fmt_int, "p": fmt_p, "miss": fmt_miss}
+def fmt_count(value):
+    """A count of trials that may be a half (a median of an even number of campaigns): 18 or 18.5."""
+    v = float(value)
+    return fmt_int(v) if v == round(v) else f"{v:.1f}"
+
+
+def fmt_points(value):
+    """A difference of two shares in percentage points: whole points, one decimal below 1, a true
+    minus sign, and 0 rather than "-0"."""
+    v = 100.0 * float(value)
+    text = f"{v:.1f}" if abs(v) < 1.0 else f"{v:.0f}"
+    if float(text) == 0.0:
+        return "0"
+    return "\u2212" + text[1:] if text.startswith("-") else text
+
+
+FORMATS = {"sig": fmt_sig, "pct": fmt_pct, "int": fmt_int, "p": fmt_p, "miss": fmt_miss, "count": fmt_count,
+           "points": fmt_points}
 
 
 class Cells:
@@ -75,7 +92,7 @@ class Cells:
     def span(self, row, column, kind, *, missing="—"):
         """The cell as ``<span class="v" data-src data-row data-col [data-unit]>text</span>``."""
         value = self.frame.at[row, column]
-        unit = ' data-unit="%"' if kind in ("pct", "miss") else ""
+        unit = ' data-unit="%"' if kind in ("pct", "miss", "points") else ""
         if kind == "miss":
             unit += ' data-fmt="complement"'   # shown as 1 - the cell
         text = html.escape(missing) if is_missing(value) else html.escape(FORMATS[kind](value))

@@ -18,12 +18,12 @@ from typing import Any, ClassVar
 import pandas as pd
 
 from .cells import fmt_pct, number, unit_label, unit_words
-from .files import HARM, PAIRWISE, PLACEMENT, SUMMARY, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
+from .files import HARM, PAIRWISE, PLACEMENT, STOPPING, SUMMARY, SWEEP_SUMMARY, TRIALS_TO_TARGET, WITHIN_TARGET
 
 # Where the page shows figures: after the budget table, after the first-passage table, after
 # the pairwise table, after the table of where trials land, after the harmful trials (with a
-# floor), at the end of the results, and in the sweep's own section.
-SECTIONS = ("results", "first_passage", "pairwise", "placement", "harm", "snapshot", "sweep")
+# floor), at the end of the results, in the sweep's own section, and in "When to stop".
+SECTIONS = ("results", "first_passage", "pairwise", "placement", "harm", "snapshot", "sweep", "stopping")
 
 
 @dataclass(frozen=True)
@@ -279,9 +279,31 @@ class SweepFigure(Figure):
                                   units=unit_label(s), colors=given.colors)
 
 
+class StoppingFigure(Figure):
+    stem, section, alt = "stopping", "stopping", "Trials saved against miss risk at the stop, per policy and stopping rule"
+
+    def applies(self, study, tables):
+        return STOPPING in tables
+
+    def caption(self, study, success):
+        return ("Each filled point is one policy stopped by one rule (marker), on the same worlds: across, the "
+                "median number of trials it saves against the full budget of "
+                f"{study.campaign.horizon} (order-statistic 95 % interval); up, the miss risk of the recommendation "
+                "held when it stops (Clopper–Pearson 95 % interval). The hollow point at 0 is the same policy run to "
+                "the full budget; the dashed line is the largest miss risk the budget plan accepts "
+                f"({fmt_pct(1 - success)} %). Points far right and low are rules that save trials cheaply "
+                "(<code>stopping.csv</code>).")
+
+    def draw(self, given):
+        from . import plots
+        s = given.study
+        return plots.stopping_figure(given.tables[STOPPING], success=given.success, target=s.target,
+                                     units=unit_label(s), colors=given.colors)
+
+
 FIGURES: dict[str, Figure] = {f.stem: f for f in (
     RegretFigure(), RoundsFigure(), FailureFigure(), FinalRegretFigure(),
-    FirstPassageFigure(), WinRateFigure(), PlacementFigure(), HarmFigure(), SnapshotFigure(), SweepFigure(),
+    FirstPassageFigure(), WinRateFigure(), PlacementFigure(), HarmFigure(), SnapshotFigure(), SweepFigure(), StoppingFigure(),
     # simlab 0.4 drew the within-target share as a figure of its own: the miss-risk figure is its complement
     RetiredFigure("within_target"),
 )}

@@ -14,6 +14,8 @@ CHOICE = "choice.csv"
 BUDGET_PLAN = "budget_plan.csv"
 PLACEMENT = "placement.csv"
 HARM = "harm.csv"               # only with [target] floor
+STOPPING = "stopping.csv"
+STOPPING_CURVES = "stopping_curves.csv"
 REPORT = "report.html"
 SWEEP_SUMMARY = "sweep/sweep.csv"
 SWEEP_RANKING = "sweep/ranking.csv"
@@ -22,5 +24,5 @@ FIGURES = "figures"
 
 # what a report writes at the top of the folder (worlds.csv and the sweep's files are the runner's)
 TABLES = (SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, PAIRWISE, CHOICE, BUDGET_PLAN, WITHIN_TARGET, PLACEMENT,
-          REPORT, HARM)
+          STOPPING, STOPPING_CURVES, REPORT, HARM)
 FIGURE_FORMATS = ("png", "svg")

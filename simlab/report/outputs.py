@@ -15,8 +15,9 @@ from ..evidence.placement import box_view, placement_table
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
 from .figures import FigureInput
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, REPORT, SUMMARY, SWEEP_RANKING,
-                    SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, REPORT, STOPPING, STOPPING_CURVES,
+                    SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET,
+                    WORLDS)
 from .page import render
 
 
@@ -36,17 +37,20 @@ class ReportFiles:
     within_target: Path | None = None   # within_target.csv (always written; a default keeps old callers working)
     placement: Path | None = None       # placement.csv (always written; a default keeps old callers working)
     harm: Path | None = None            # harm.csv (only with [target] floor)
+    stopping: Path | None = None        # stopping.csv, only for a study with [[stop]] rules
+    stopping_curves: Path | None = None  # stopping_curves.csv, likewise
 
     def paths(self) -> tuple[Path, ...]:
         """Every file written, CSVs first, then figures, then the report."""
         tables = (self.summary, self.within_target, self.trials_to_target, self.trials_to_target_summary,
-                  self.budget_plan, self.pairwise, self.choice, self.placement, self.harm)
+                  self.budget_plan, self.pairwise, self.choice, self.placement, self.harm, self.stopping,
+                  self.stopping_curves)
         return tuple(p for p in tables if p is not None) + self.figures + (self.report,)
 
 
 def report_steps(*, figures=True):
     """Number of times :func:`write_outputs` calls its `progress` callback."""
-    return 8 + (len(FIGURE_REGISTRY) if figures else 0) + 1
+    return 9 + (len(FIGURE_REGISTRY) if figures else 0) + 1
 
 
 # ---------------------------------------------------------------------------
@@ -145,6 +149,15 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     tables[PLACEMENT] = placement_table(view, names=names, low=low, high=high)
     paths[PLACEMENT] = _write_csv(tables[PLACEMENT], PLACEMENT)
     step(1)
+    if study.stops:
+        from ..evidence import stopping
+
+        times = stopping.stopping_times(traces, study)
+        tables[STOPPING] = stopping.stopping_table(times, horizon=horizon)
+        tables[STOPPING_CURVES] = stopping.stopping_curves(times, horizon=horizon)
+        paths[STOPPING] = _write_csv(tables[STOPPING], STOPPING)
+        paths[STOPPING_CURVES] = _write_csv(tables[STOPPING_CURVES], STOPPING_CURVES)
+    step(1)
 
     if (folder / SWEEP_RANKING).is_file() and (folder / SWEEP_SUMMARY).is_file():
         # a misspecification sweep of this study was run (simlab sweep): report it too
@@ -174,6 +187,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
         pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
         within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM),
+        stopping=paths.get(STOPPING), stopping_curves=paths.get(STOPPING_CURVES),
     )
 
 

@@ -15,10 +15,11 @@ from .answer import MISS_RISK_WORDS, answer_section
 from .cells import Cells, escape, fmt_pct, is_missing, number, unit_words
 from .describe import _assumptions, _cautions, _limits, _question
 from .figures import FIGURES as FIGURE_REGISTRY
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY,
-                    TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, STOPPING, STOPPING_CURVES, SUMMARY,
+                    SWEEP_RANKING, SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
 from .harmful import harm_section
 from .landing import placement_section
+from .stop_section import stopping_section
 
 _ATTITUDE_REGRET, _ATTITUDE_FAILURE, _ATTITUDE_TRIALS = choice.ATTITUDES
 _ATTITUDE_HARM = choice.HARM_ATTITUDE
@@ -107,6 +108,7 @@ def render(study, tables, images, *, success):
         answer_section(study, tables, summary, plan, choice, sweep, success),
         _choice_section(study, summary, choice, success),
         _plan_section(study, plan, success),
+        stopping_section(study, tables, choice, _figures_in("stopping", study, images, success), success),
         _optimum_warning(study, tables.get(WORLDS)),
         _results(study, summary, reach, pairs, images, success, placement, harm=harm, choice=choice),
         _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
@@ -114,7 +116,8 @@ def render(study, tables, images, *, success):
         _cautions(),
         _question(study, success),     # the appendix: the question as asked, the assumptions and method
         _assumptions(study, __version__),
-        _files_section(pairs is not None, bool(images), sweep is not None, placement is not None, harm is not None),
+        _files_section(pairs is not None, bool(images), sweep is not None, placement is not None, harm is not None,
+                       bool(study.stops)),
         (f"<footer>Written by simlab {escape(__version__)} from the stored traces of study "
          f"“{escape(study.name)}”. Rebuilding it from the same traces and seed gives the same numbers.</footer>"),
         "</body></html>",
@@ -508,7 +511,7 @@ def _plan_section(study, plan, success):
     )
 
 
-def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False, has_harm=False):
+def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False, has_harm=False, has_stops=False):
     files = [
         (SUMMARY, "regret, within-target share, failure risk and CVaR-90 per policy and budget"),
         (WITHIN_TARGET, "share of campaigns within target after each trial, with its interval: budgets are "
@@ -528,6 +531,11 @@ def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False,
     if has_harm:
         files.append((HARM, "harmful trials per campaign (worse than [target] floor), campaigns with any, and the "
                             "trials' own shortfall, per policy and budget"))
+    if has_stops:
+        files += [(STOPPING, "per policy and stopping rule: trials used and saved, regret and miss risk at the stop, "
+                             "the paired difference against the full budget"),
+                  (STOPPING_CURVES, "Kaplan–Meier share of campaigns each rule has stopped by each trial (censored "
+                                    "at the full budget)")]
     if has_sweep:
         files += [(SWEEP_SUMMARY, "failure risk and median regret per policy, budget and cell of the sweep"),
                   (SWEEP_RANKING, "policies ranked by their worst shortfall against each cell's best policy "

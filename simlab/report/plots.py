@@ -12,6 +12,7 @@ __all__ = [
     "sweep_figure",
     "placement_figure",
     "harm_figure",
+    "stopping_figure",
     "save_figure",
 ]
 
@@ -604,4 +605,71 @@ def harm_figure(harm, summary, *, budget, target, floor, colors=None, ax=None, u
     ax.set_title(f"Final regret against harmful trials after {budget} trials (lower left is better)", fontsize=10,
                  loc="left")
     legend_outside(ax)
+    return fig
+
+
+# ---------------------------------------------------------------------------
+# when to stop
+# ---------------------------------------------------------------------------
+_RULE_MARKERS = ("D", "s", "^", "v", "P", "X", "*", "h")   # "o" is the full budget's (hollow)
+
+
+def stopping_figure(table, *, success=0.9, target=None, units="objective units", colors=None, ax=None):
+    """Trials saved against miss risk at the stop: one point per policy and stopping rule.
+
+    Parameters
+    ----------
+    table : DataFrame
+        `simlab.evidence.stopping.stopping_table` output (``policy, rule, saved_median, saved_low,
+        saved_high, failure_risk, failure_low, failure_high, failure_full, full_low, full_high``).
+    success : float, default 0.9
+        The budget plan's success level; ``1 - success`` is drawn as a dashed line.
+    colors : dict, optional
+        `policy_colors` mapping; the marker tells the rules apart (the legend names them).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Notes
+    -----
+    Each point has its two 95 % intervals: across, the order-statistic interval of the median
+    trials saved; up and down, the Clopper–Pearson interval of the miss risk. A hollow point
+    at 0 trials saved is the same policy run to the full budget, so the drop from it to a rule's
+    point is what stopping early costs on the same worlds.
+    """
+    check_columns(table, "table", ("policy", "rule", "saved_median", "saved_low", "saved_high", "failure_risk",
+                                   "failure_low", "failure_high", "failure_full", "full_low", "full_high"))
+    labels = policies_in(table)
+    colors = colors_for(labels, colors)
+    rules = list(dict.fromkeys(table["rule"].astype(str)))
+    shape = {rule: _RULE_MARKERS[k % len(_RULE_MARKERS)] for k, rule in enumerate(rules)}
+    fig, ax = new_axes(ax, (KIND_WIDTH, 3.8))
+    from matplotlib.lines import Line2D
+
+    for policy in labels:
+        rows = table[table["policy"].astype(str) == policy]
+        c = colors[policy]
+        full = rows.iloc[0]
+        ax.errorbar([0.0], [full["failure_full"]], yerr=[[full["failure_full"] - full["full_low"]],
+                                                        [full["full_high"] - full["failure_full"]]],
+                    fmt="o", mfc="white", mec=c, ecolor=c, ms=6, lw=0.9, capsize=2, zorder=3)
+        for _, row in rows.iterrows():
+            x, y = float(row["saved_median"]), float(row["failure_risk"])
+            xerr = [[x - float(row["saved_low"])], [float(row["saved_high"]) - x]] if np.isfinite(row["saved_low"]) else None
+            ax.errorbar([x], [y], xerr=xerr, yerr=[[y - float(row["failure_low"])], [float(row["failure_high"]) - y]],
+                        fmt=shape[str(row["rule"])], color=c, ms=6, lw=0.9, capsize=2, zorder=4)
+    ax.axhline(1.0 - success, color="#000000", lw=1.0, ls="--")
+    handles = [Line2D([], [], color=colors[p], marker="o", ls="", label=display_label(p)) for p in labels]
+    handles += [Line2D([], [], color=GREY, marker="o", mfc="white", ls="", label="full budget (no stop)")]
+    handles += [Line2D([], [], color=GREY, marker=shape[r], ls="", label=f"stop: {r}") for r in rules]
+    handles += [Line2D([], [], color="#000000", ls="--", label=f"plan's limit ({1 - success:.0%})")]
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, fontsize=8.5)
+    percent_axis(ax.yaxis)
+    ax.set_ylim(bottom=0.0)
+    ax.set_xlim(left=-0.5)
+    words = f"more than {target:g} {units} short" if target is not None else "outside the target"
+    ax.set_xlabel("trials saved against the full budget (median, 95 % interval)", fontsize=9.5)
+    ax.set_ylabel(f"miss risk at the stop: share\nof campaigns {words}", fontsize=9.5)
+    ax.set_title("What stopping early saves and what it costs, with 95 % intervals both ways", fontsize=10, loc="left")
     return fig

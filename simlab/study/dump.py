@@ -73,6 +73,9 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
     for p in study.policies:
         lines += ["", "[[policy]]", f"rule = {toml_value(p.rule)}", f"label = {toml_value(p.label)}"]
         lines += [f"{k} = {toml_value(v)}" for k, v in p.settings]
+    for stop in study.stops:   # written only when the study has some: other studies dump (and hash) as before
+        lines += ["", "[[stop]]", f"rule = {toml_value(stop.rule)}", f"label = {toml_value(stop.label)}"]
+        lines += [f"{k} = {toml_value(v)}" for k, v in stop.settings]
     return "\n".join(lines) + "\n"
 
 

@@ -11,24 +11,25 @@ from typing import Any
 
 import numpy as np
 
-from ..columns import TRACE_COLUMNS, WORLD_COLUMNS
+from ..columns import STOP_COLUMNS, TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
+from ..stopping.rules import STOP_RULES
 from ..worlds.kinds import WORLD_KINDS, world_options
 from ..worlds.mixed import MAX_ENUMERATED, MAX_SEARCHED, discrete_combinations, needs_mixed
 from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
 from .types import (CATEGORICAL, CONTINUOUS, DESIGNS, GOALS, LOG, MAX_REPLICATES, NAME_LENGTH, STEPPED, UNITS_LENGTH,
-                    CampaignSpec, HistorySpec, Library, PolicySpec, Prior, Space, Study, StudyError, SweepSpec,
-                    WorldSpec)
+                    CampaignSpec, HistorySpec, Library, PolicySpec, Prior, Space, StopSpec, Study, StudyError,
+                    SweepSpec, WorldSpec)
 
 __all__ = ["load_study", "parse_study", "advice", "RESERVED",
            # the types a study is made of (types.py), imported here because reading makes them
-           "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec",
+           "StudyError", "Space", "Prior", "WorldSpec", "CampaignSpec", "PolicySpec", "SweepSpec", "HistorySpec", "StopSpec",
            "Study", "Library", "MAX_REPLICATES", "NAME_LENGTH", "GOALS", "DESIGNS", "unsupported", "MAX_LEVELS"]
 
 # Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
-RESERVED = TRACE_COLUMNS + WORLD_COLUMNS[1:]
+RESERVED = TRACE_COLUMNS + STOP_COLUMNS + WORLD_COLUMNS[1:]
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
 # Most levels a categorical input may have, and most rows a library may hold: beyond these an
 # exchangeable correlation (one number for all pairs) or a scored-in-full library is not what was meant.
@@ -105,7 +106,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     base_dir = Path(base_dir) if base_dir is not None else None
     r = _Reader(source)
     r.keys(data, "", ("study", "space", "world", "belief", "campaign", "target", "policy", "sweep",
-                          "history", "candidates"))
+                          "history", "candidates", "stop"))
 
     st = r.table(data, "study", required=False)
     r.keys(st, "study", _section_keys()["study"])
@@ -189,6 +190,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     floor = r.number(tt, "target.floor", default=None)
 
     policies = _read_policies(r, data)
+    stops = _read_stops(r, data, campaign)
 
     sw = r.table(data, "sweep", required=False)
     r.keys(sw, "sweep", _section_keys()["sweep"])
@@ -199,7 +201,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     )
     study = Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                   belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
-                  history=history, refit_every=refit_every, difference=difference, units=units, floor=floor, source=source)
+                  history=history, refit_every=refit_every, difference=difference, units=units, floor=floor,
+                  stops=stops, source=source)
     if runnable:
         refusal = unsupported(study)
         if refusal is not None:
@@ -642,6 +645,49 @@ def _read_policies(r: "_Reader", data: dict) -> tuple[PolicySpec, ...]:
     return tuple(out)
 
 
+def _read_stops(r: "_Reader", data: dict, campaign: CampaignSpec) -> tuple[StopSpec, ...]:
+    """``[[stop]]`` tables (none is fine): a rule of STOP_RULES, a label of its own, its settings.
+
+    ``min_trials`` left out becomes the initial design + 2 and may not pass the largest budget (the
+    rule could never stop a campaign). Rules that read the same recorded column must agree on the
+    settings that shape it (``StopRule.shared``): the column is recorded once per trial.
+    """
+    if "stop" not in data:
+        return ()
+    tables = data["stop"]
+    if not isinstance(tables, list) or not all(isinstance(t, dict) for t in tables):
+        r.fail("stop", "must be written as [[stop]] tables, e.g. [[stop]] rule = \"confident\"")
+    out, seen, shaped = [], {}, {}
+    for i, t in enumerate(tables):
+        where = f"stop[{i}]"
+        if "rule" not in t:
+            r.fail(f"{where}.rule", f"is required; one of {', '.join(STOP_RULES)}")
+        rule = r.choice(t, f"{where}.rule", tuple(STOP_RULES))
+        cls = STOP_RULES[rule]
+        r.keys(t, where, ("rule", "label", *cls.options))
+        label = r.string(t, f"{where}.label", default=rule)
+        if not label.strip() or len(label) > 60:
+            r.fail(f"{where}.label", "must be 1 to 60 characters")
+        if label in seen:
+            r.fail(f"{where}.label", f"\"{label}\" is already used by stop[{seen[label]}]; give each stop rule "
+                   "its own label")
+        seen[label] = i
+        settings = dict(r.options(t, where, cls.options))
+        if settings["min_trials"] is None:
+            settings["min_trials"] = campaign.initial + 2
+        if settings["min_trials"] > campaign.horizon:
+            r.fail(f"{where}.min_trials", f"must be at most the largest budget, {campaign.horizon} (the rule could "
+                   f"never stop a campaign); got {settings['min_trials']}"
+                   + (" (the default: the initial design + 2)" if "min_trials" not in t else ""))
+        for key in cls.shared:
+            first = shaped.setdefault((cls.statistic, key), (i, settings[key]))
+            if first[1] != settings[key]:
+                r.fail(f"{where}.{key}", f"must equal stop[{first[0]}].{key} = {first[1]!r}: every {rule} rule of a "
+                       f"study reads one record, made once per trial; got {settings[key]!r}")
+        out.append(StopSpec(rule=rule, label=label, settings=tuple(settings.items())))
+    return tuple(out)
+
+
 class _Reader:
     """Typed getters that raise :class:`StudyError` naming the file and field."""
 
@@ -687,17 +733,20 @@ class _Reader:
             self.fail(field, f"must be a finite number; got {value}")
         return value
 
-    def number(self, t: dict, field: str, *, low=None, high=None, low_open=False, default=...) -> float:
+    def number(self, t: dict, field: str, *, low=None, high=None, low_open=False, high_open=False,
+               default=...) -> float:
         key = field.rsplit(".", 1)[-1]
         if key not in t:
             if default is ...:
                 self.fail(field, "is required (a number)")
             return default
         v = self.as_number(t[key], field)
+        if high_open and low_open and not low < v < high:     # an open interval, e.g. a probability
+            self.fail(field, f"must lie strictly between {low:g} and {high:g}; got {v:g}")
         if low is not None and (v < low or (low_open and v == low)):
             self.fail(field, f"must be {'>' if low_open else '>='} {low:g}; got {v:g}")
-        if high is not None and v > high:
-            self.fail(field, f"must be <= {high:g}; got {v:g}")
+        if high is not None and (v > high or (high_open and v == high)):
+            self.fail(field, f"must be {'<' if high_open else '<='} {high:g}; got {v:g}")
         return v
 
     def integer(self, t: dict, field: str, *, low=None, high=None, default=..., why: str = "") -> int:
@@ -767,7 +816,8 @@ class _Reader:
             elif opt.kind is str:
                 settings.append((key, self.choice(t, fld, opt.choices)))
             else:
-                settings.append((key, self.number(t, fld, low=opt.low, high=opt.high, low_open=opt.low_open)))
+                settings.append((key, self.number(t, fld, low=opt.low, high=opt.high, low_open=opt.low_open,
+                                                  high_open=opt.high_open)))
         return tuple(settings)
 
     def choice(self, t: dict, field: str, allowed: tuple[str, ...], *, default=...) -> str:

@@ -319,6 +319,20 @@ class PolicySpec:
 
 
 @dataclass(frozen=True)
+class StopSpec:
+    """A ``[[stop]]`` table: a stopping rule (a key of simlab.stopping.STOP_RULES), its label and settings
+    (every option resolved, ``min_trials`` included)."""
+
+    rule: str
+    label: str
+    settings: tuple[tuple[str, Any], ...] = ()
+
+    @property
+    def options(self) -> dict[str, Any]:
+        return dict(self.settings)
+
+
+@dataclass(frozen=True)
 class Study:
     name: str
     goal: str
@@ -336,6 +350,7 @@ class Study:
     difference: float | None = None  # [target] difference, objective units; None: target / 10
     units: str = ""              # [study] units: the objective's unit for the report ("" : "objective units")
     floor: float | None = None   # [target] floor, objective units: a trial worse than it is harmful (None: not counted)
+    stops: tuple[StopSpec, ...] = ()  # [[stop]] rules, evaluated on the same campaigns (none: nothing recorded)
     source: str = field(default="<study>", compare=False)
 
     @property
