@@ -98,10 +98,16 @@ def _table(study, stop):
 
 
 def _rule_words(study, spec):
-    """``label: confident (chance 0.9) from trial 7 on: stops when ...`` with setting names as code."""
+    """``label: confident (chance 0.9) from trial 7 on: stops when ...``, the settings in the words as their values."""
     rule = make_rule(spec)
     name = "" if spec.label == spec.rule else f"<code>{escape(spec.label)}</code>: "
-    what = re.sub(r"`([^`]+)`", r"<code>\1</code>", escape(rule.description))
+    settings = spec.options
+
+    def value(m):        # a setting named in the description reads as its value (``chance`` -> 0.9)
+        key = m.group(1)
+        return f"{settings[key]:g}" if isinstance(settings.get(key), (int, float)) else f"<code>{key}</code>"
+
+    what = re.sub(r"`([^`]+)`", value, escape(rule.description))
     return f"{name}{escape(rule.words(study))}, from trial {spec.options['min_trials']} on: {what}"
 
 
