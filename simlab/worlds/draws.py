@@ -130,9 +130,14 @@ def search_plan(dim: int, lengthscale=None, nu: float = np.inf) -> SearchPlan:
     ls = np.full(dim, 0.25) if lengthscale is None else np.minimum(np.asarray(lengthscale, dtype=float), 1.0)
     cells = float(np.prod(1.0 / ls))
     if nu > 1.5 or (nu == 1.5 and dim <= 2):
-        n_search = 2 ** int(np.ceil(np.log2(np.clip(_SMOOTH_PER_CELL * cells, _SMOOTH_MIN, _SMOOTH_MAX))))
+        # Matern 3/2 is the roughest kernel on this path: twice the points and starts (2-D, 30 worlds,
+        # benchmarks/world_optima.py, 2026-12-03: one search alone missed 2 of 60 searches by 0.015-0.034
+        # with the plan of the smoother kernels, 1 of 60 with this one, at ~8 -> ~16 ms a world; the
+        # better of the runner's two searches missed none). The one left is a minimum on the boundary.
+        more = 2 if nu == 1.5 else 1
+        n_search = 2 ** int(np.ceil(np.log2(np.clip(more * _SMOOTH_PER_CELL * cells, _SMOOTH_MIN, _SMOOTH_MAX))))
         return SearchPlan(n_search=n_search, n_polish=2 + dim // 2, zoom=0, zoom_points=0, half=0.5 * ls,
-                          separation=0.5 * ls, n_starts=8 + 8 * dim, climb=40, polish_steps=100)
+                          separation=0.5 * ls, n_starts=more * (8 + 8 * dim), climb=40, polish_steps=100)
     rough = _ROUGH.get(float(nu), 1.0)
     want = _POINTS_PER_CELL * rough * cells
     n_search = 2 ** int(np.ceil(np.log2(np.clip(want, _MIN_SEARCH, _MAX_SEARCH))))
