@@ -105,7 +105,7 @@ class FailureBelief:
     log-concave, so full steps are the rule, but halving guards large amplitudes. Predictions
     follow Algorithm 3.2: latent mean ``m + k*' (y - pi_hat)``, variance
     ``k(x*, x*) - v'v`` with ``v = L \\ (W^1/2 k*)``, then :func:`logistic_gaussian_mean`.
-    A constant prior mean ``m`` enters as R&W section 2.7 describes: the iteration runs on
+    A constant prior mean ``m`` enters as in R&W section 2.7 (from memory): the iteration runs on
     ``f - m``.
 
     References
