@@ -22,6 +22,7 @@ PURPOSES = {
     "optimum_check": 8,   # a second, independent search for the world's optimum (optimum_gap)
     "library": 9,    # the order a [candidates] library's rows are visited in (design, sobol policy)
     "stop": 10,      # posterior draws of the stopping rules' record (per policy), simlab.stopping.record
+    "optimum_extra": 11,  # further searches for the optimum while two disagree (keyed by their number, as text)
 }
 
 

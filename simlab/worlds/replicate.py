@@ -94,21 +94,39 @@ class Replicate:
     optimum_gap: float = 0.0   # |first search - second search| >= 0, objective units
 
 
-def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float, float]:
-    """The world's optimum from two independent searches: location, the better value, and the gap.
+# When the searches disagree by more than this share of the prior amplitude, search again, up to
+# EXTRA_SEARCHES more times, until the best two agree (a missed optimum makes regret too small: when
+# in doubt, search harder). Measured (benchmarks/world_optima.py, 2026-12-03, 30 worlds per cell): one
+# search alone missed 4-D Matern 1/2 worlds by up to 0.24 x amplitude, the better of two by 0.0035 on
+# one of 30.
+AGREE = 1e-3
+EXTRA_SEARCHES = 4
 
-    The searches use their own keyed streams ("optimum" and "optimum_check"), so their
-    Sobol' points and zoom points differ. Regret uses the better of the two (a missed
-    optimum makes regret too small, so never the worse one); ``gap`` = how far they
-    disagreed, >= 0, in objective units: a lower bound on how far the better one may
-    still be from the true optimum.
+
+def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float, float]:
+    """The world's optimum from independent searches: location, the best value, and the gap.
+
+    The searches use their own keyed streams ("optimum", "optimum_check", then "optimum_extra" k), so
+    their Sobol' points and zoom points differ. Two always run; while the best two values found
+    differ by more than ``AGREE`` x the prior amplitude, another runs, up to ``EXTRA_SEARCHES``
+    more. Regret uses the best (a missed optimum makes regret too small, so never a worse one);
+    ``gap`` = second best - best, >= 0, in objective units: a lower bound on how far the best may
+    still be from the true optimum (0 when two searches found the same value).
     """
     u1, v1 = world.optimum(stream(study.seed, r, "optimum"))
     if isinstance(world, FunctionWorld):
         return u1, v1, 0.0        # the published optimum: nothing to search
-    u2, v2 = world.optimum(stream(study.seed, r, "optimum_check"))
-    u, v = (u1, v1) if v1 <= v2 else (u2, v2)
-    return u, v, abs(v1 - v2)
+    found = [(v1, u1), world.optimum(stream(study.seed, r, "optimum_check"))[::-1]]
+    prior = study.world.prior
+    tol = AGREE * (prior.amplitude if prior is not None else 1.0)
+    for k in range(EXTRA_SEARCHES):
+        found.sort(key=lambda t: t[0])
+        if found[1][0] - found[0][0] <= tol:
+            break
+        found.append(world.optimum(stream(study.seed, r, "optimum_extra", str(k)))[::-1])
+    found.sort(key=lambda t: t[0])
+    (v, u), (v_next, _) = found[0], found[1]
+    return u, v, v_next - v
 
 
 def make_observer(study: Study) -> Observer:
