@@ -13,7 +13,7 @@ import numpy as np
 
 from ..evidence import choice as choice_rules
 from .cells import Cells, escape, fmt_pct, is_missing, number, unit_words
-from .files import WITHIN_TARGET
+from .files import STOPPING, WITHIN_TARGET
 
 _, _ATTITUDE_FAILURE, _ = choice_rules.ATTITUDES
 
@@ -99,6 +99,8 @@ def answer_section(study, tables, summary, plan, choice, sweep, success):
             f"of simulated campaigns (95 % interval), a residual <i>miss risk</i> ({MISS_RISK_WORDS}) of "
             f"{summary.pct(r, 'failure_risk', 'failure_low', 'failure_high')}. To defend a number, simulate larger "
             "budgets (<code>[campaign] budgets</code>) or more replicates. ")
+    if STOPPING in tables:
+        parts.append(_stopping_words(tables[STOPPING], policy, success))
     if sweep is not None:
         parts.append(
             "<b>The assumption most likely to change this is the prior</b> (how rough and how large the real "
@@ -121,6 +123,25 @@ def answer_section(study, tables, summary, plan, choice, sweep, success):
     return ('<section id="answer"><h2>0. The answer</h2><div class="box answer">' + "".join(parts)
             + f"<p>The budgets asked about ({asked} trials), for {escape(policy)}:</p>"
             + f'<ul class="budgets">{"".join(lines)}</ul></div></section>')
+
+
+def _stopping_words(frame, policy, success):
+    """One sentence on stopping early for the recommended policy (the section "When to stop" has the rest)."""
+    from .stop_section import _adopted
+
+    stop = Cells(STOPPING, frame)
+    rows = np.flatnonzero(frame["policy"].astype(str).to_numpy() == policy)
+    if not rows.size:
+        return ""
+    i, kept = _adopted(stop, policy, success)
+    accepted = fmt_pct(1 - success)
+    saved = f"a median of {stop.span(i, 'saved_median', 'count')} trials"
+    if kept:
+        return (f"<b>Stopping early</b> with {stop.text(i, 'rule')} saves {saved} while its miss risk at the stop "
+                f"stays within the accepted {accepted} % (section “When to stop”). ")
+    return (f"<b>No stopping rule</b> keeps its miss risk at the stop within the accepted {accepted} %: the closest, "
+            f"{stop.text(i, 'rule')}, saves {saved} at a miss risk of "
+            f"{stop.pct(i, 'failure_risk', 'failure_low', 'failure_high')} (section “When to stop”). ")
 
 
 def _study_file(study) -> str:

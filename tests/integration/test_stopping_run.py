@@ -121,6 +121,27 @@ def test_report_has_the_section_and_its_numbers_are_stopping_csv_cells(run):
     assert (run / "figures" / "stopping.png").is_file() and (run / "figures" / "stopping.svg").is_file()
 
 
+def test_the_answer_says_in_one_sentence_whether_to_stop_early(run):
+    # the opening answer names the stopping rule closest to the plan's accepted miss risk, its numbers
+    # stopping.csv cells; the same row the section's first sentence uses
+    page = (run / "report.html").read_text()
+    answer = page[page.index('id="answer"'):page.index("</section>", page.index('id="answer"'))]
+    plain = html.unescape(re.sub(r"<[^>]+>", "", answer))
+    assert "(section “When to stop”)" in plain
+    assert ("Stopping early with" in plain) != ("No stopping rule keeps its miss risk" in plain)
+    parser = _Spans()
+    parser.feed(answer)
+    table = pd.read_csv(run / "stopping.csv")
+    cells = [(a, t) for a, t in parser.spans if a.get("data-src") == "stopping.csv"]
+    assert cells
+    for attrs, text in cells:
+        cell = table.at[int(attrs["data-row"]), attrs["data-col"]]
+        if "t" in attrs.get("class", "").split():
+            assert text.strip() == str(cell)
+        elif attrs.get("data-unit") != "%":
+            assert float(text.strip().replace("\u2212", "-")) == pytest.approx(float(cell), abs=0.5)
+
+
 def test_rebuilding_the_report_gives_the_same_stopping_files(run):
     before = {name: (run / name).read_bytes() for name in ("stopping.csv", "stopping_curves.csv")}
     assert simlab("report", run, "--quiet", cwd=run.parent).returncode == 0
