@@ -11,6 +11,8 @@ _EPILOG_RUN = """\
 examples:
   simlab run configs/demo.toml
   simlab run configs/demo.toml --jobs 2 --replicates 50 --out /tmp/demo-small
+  simlab run configs/crystallisation.toml --jobs 2     # categorical, stepped and log-scaled inputs
+  simlab run configs/coating-library.toml --jobs 2     # every trial one of 400 listed formulations
 """
 
 
