@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-__all__ = ["Option"]
+__all__ = ["Option", "WithOptions"]
 
 
 @dataclass(frozen=True)
@@ -26,3 +26,27 @@ class Option:
     choices: tuple[str, ...] = ()   # for kind=str: the allowed words
     low_open: bool = False
     high_open: bool = False
+
+
+class WithOptions:
+    """A class with study-file settings: ``options`` declared on a class are merged with those of its
+    bases (so a subclass lists only its own), and :meth:`_set_options` stores each as an attribute,
+    the default where it is not given. Policies and stopping rules share it."""
+
+    options: dict[str, Option] = {}
+    option_owner = "rule"          # the words naming this kind of class in an error
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        merged: dict[str, Option] = {}
+        for base in reversed(cls.__mro__[1:]):
+            merged.update(base.__dict__.get("options", {}))
+        merged.update(cls.__dict__.get("options", {}))
+        cls.options = merged
+
+    def _set_options(self, settings: dict) -> None:
+        for key, opt in self.options.items():
+            setattr(self, key, settings.pop(key, opt.default))
+        if settings:
+            raise ValueError(f"unknown setting(s) for {self.option_owner} {self.rule!r}: {', '.join(settings)}; "
+                             f"allowed: {', '.join(self.options) or 'none'}")

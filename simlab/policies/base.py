@@ -11,7 +11,7 @@ from ..lazy import special
 
 from ..model.gp import Posterior, Stack
 from ..model.optimize import distinct_best, polish, polish_block
-from ..options import Option
+from ..options import Option, WithOptions
 
 __all__ = ["Option", "Context", "Block", "Policy", "Acquisition", "best_row"]
 
@@ -57,7 +57,7 @@ class Block:
         return seen
 
 
-class Policy:
+class Policy(WithOptions):
     """Chooses the next trial. Subclasses set ``rule`` and implement :meth:`choose`.
 
     ``options`` declared on a class are merged with those of its bases, so a rule lists
@@ -71,21 +71,9 @@ class Policy:
     options: ClassVar[dict[str, Option]] = {}
     lockstep: ClassVar[bool] = False
 
-    def __init_subclass__(cls, **kwargs):
-        super().__init_subclass__(**kwargs)
-        merged: dict[str, Option] = {}
-        for base in reversed(cls.__mro__[1:]):
-            merged.update(base.__dict__.get("options", {}))
-        merged.update(cls.__dict__.get("options", {}))
-        cls.options = merged
-
     def __init__(self, label: str | None = None, **settings):
         self.label = label or self.rule
-        for key, opt in self.options.items():
-            setattr(self, key, settings.pop(key, opt.default))
-        if settings:
-            raise ValueError(f"unknown setting(s) for rule {self.rule!r}: {', '.join(settings)}; "
-                             f"allowed: {', '.join(self.options) or 'none'}")
+        self._set_options(settings)
         self.ctx: Context | None = None
 
     def start(self, ctx: Context) -> None:

@@ -336,13 +336,23 @@ class ThompsonSampling(Acquisition):
         for b in range(B):
             rows = np.flatnonzero(plausible[b])
             values[b, rows] = -(self._prior32(b, rows, amp[b], phase[b]) * scale[b, 0] + cross[b, rows])
-        X, n = st._X[:, : st.n], st.n
-
-        def fg(U):
+        def prior(U):
             P = np.matmul(U, omega.transpose(0, 2, 1))            # (B, q, F)
             P -= phase[:, None, :]
             g = st.mean + scale * matvec(np.cos(P), amp)
             dg = np.matmul(-scale[..., None] * amp[:, None, :] * np.sin(P), omega)
+            return g, dg
+
+        return self._finish(st, block, values, prior, beta)
+
+    def _finish(self, st, block, values, prior, beta):
+        """The choice from the ranked pool ``values``: a library's best row, or the best of the polished
+        starts of the posterior sample ``prior(U) + K(U, X) beta`` (``prior(U) -> (g, dg)``). Keeps
+        ``beta`` and ``values`` for score() and the tests."""
+        X, n = st._X[:, : st.n], st.n
+
+        def fg(U):
+            g, dg = prior(U)
             if n:
                 Kq, dK = st.kernel.stacked_grad(U, X)
                 g = g + matvec(Kq, beta)
@@ -351,7 +361,7 @@ class ThompsonSampling(Acquisition):
 
         chosen = (best_row(st, block, values) if block.library is not None else
                   _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations))
-        self._beta, self._ranked = beta, values      # kept for score() and the tests
+        self._beta, self._ranked = beta, values
         return chosen
 
     def _plausible(self, st) -> np.ndarray:
@@ -365,9 +375,9 @@ class ThompsonSampling(Acquisition):
         return mu - self.screen * sd <= np.partition(upper, keep - 1, axis=-1)[:, keep - 1 : keep]
 
     def _choose_mixed(self, st, block):
-        """Over stepped or categorical inputs: the same sample and polish with the mixed features
-        (:class:`simlab.worlds.mixed.MixedFeatureSample`), replicate by replicate, without the
-        float32 ranking and the pool screen (the whole pool is scored in float64)."""
+        """Over stepped or categorical inputs: the same sample, screen and polish with the mixed features
+        (:class:`simlab.worlds.mixed.MixedFeatureSample`), replicate by replicate: the plausible pool
+        points ranked with ``values32`` (float32, like the box path's phase table), the polish in float64."""
         n, B = st.n, st.size
         X, s2 = st._X[:, :n], st._s2()
         R = np.zeros((B, n))
@@ -383,19 +393,11 @@ class ThompsonSampling(Acquisition):
             rows = np.flatnonzero(plausible[b])
             values[b, rows] = -(sample.values32(st.pools[b, rows]) + cross[b, rows])   # ranked in float32
 
-        def fg(U):
-            g = np.stack([sample(U[b]) for b, sample in enumerate(self._samples)])
-            dg = np.stack([sample.grad(U[b]) for b, sample in enumerate(self._samples)])
-            if n:
-                Kq, dK = st.kernel.stacked_grad(U, X)
-                g = g + matvec(Kq, beta)
-                dg = dg + np.stack([matvec(dj, beta) for dj in dK], axis=-1)
-            return g, dg
+        def prior(U):
+            return (np.stack([sample(U[b]) for b, sample in enumerate(self._samples)]),
+                    np.stack([sample.grad(U[b]) for b, sample in enumerate(self._samples)]))
 
-        chosen = (best_row(st, block, values) if block.library is not None else
-                  _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations))
-        self._beta, self._ranked = beta, values
-        return chosen
+        return self._finish(st, block, values, prior, beta)
 
     def _prior32(self, b, rows, amp, phase) -> np.ndarray:
         """Replicate b's prior draw over pool rows, in float32 arithmetic, without scale or mean

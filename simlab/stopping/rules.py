@@ -21,12 +21,12 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ..options import Option
+from ..options import Option, WithOptions
 
 __all__ = ["StopRule", "Confident", "SmallGain", "NoProgress", "BoundGap", "STOP_RULES", "make_rule"]
 
 
-class StopRule:
+class StopRule(WithOptions):
     """Decides after which trials a campaign may stop. Subclasses set the class attributes and :meth:`holds`."""
 
     rule: ClassVar[str] = ""
@@ -42,21 +42,11 @@ class StopRule:
                              "(default: the initial design + 2)"),
     }
 
-    def __init_subclass__(cls, **kwargs):
-        super().__init_subclass__(**kwargs)
-        merged: dict[str, Option] = {}
-        for base in reversed(cls.__mro__[1:]):
-            merged.update(base.__dict__.get("options", {}))
-        merged.update(cls.__dict__.get("options", {}))
-        cls.options = merged
+    option_owner = "stop rule"
 
     def __init__(self, label: str | None = None, **settings: Any):
         self.label = label or self.rule
-        for key, opt in self.options.items():
-            setattr(self, key, settings.pop(key, opt.default))
-        if settings:
-            raise ValueError(f"unknown setting(s) for stop rule {self.rule!r}: {', '.join(settings)}; "
-                             f"allowed: {', '.join(self.options)}")
+        self._set_options(settings)
 
     def holds(self, frame, study) -> np.ndarray:
         """Whether the rule's condition holds after each row of ``frame`` (bool, one per row).

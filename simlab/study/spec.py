@@ -627,22 +627,28 @@ def _read_policies(r: "_Reader", data: dict) -> tuple[PolicySpec, ...]:
         r.fail("policy", "at least one [[policy]] table is required")
     out, seen = [], {}
     for i, t in enumerate(tables):
-        where = f"policy[{i}]"
-        if "rule" not in t:
-            r.fail(f"{where}.rule", f"is required; one of {', '.join(POLICIES)}")
-        rule = r.choice(t, f"{where}.rule", tuple(POLICIES))
-        cls = POLICIES[rule]
-        r.keys(t, where, ("rule", "label", *cls.options))
-        label = r.string(t, f"{where}.label", default=rule)
-        if not label.strip() or len(label) > 60:
-            r.fail(f"{where}.label", "must be 1 to 60 characters")
-        if label in seen:
-            r.fail(f"{where}.label", f"\"{label}\" is already used by policy[{seen[label]}]; "
-                   "give each policy its own label")
-        seen[label] = i
-        settings = r.options(t, where, cls.options)
+        rule, _, label, settings = _read_rule_table(r, t, "policy", i, POLICIES, seen, "policy")
         out.append(PolicySpec(rule=rule, label=label, settings=settings))
     return tuple(out)
+
+
+def _read_rule_table(r: "_Reader", t: dict, section: str, i: int, registry: dict, seen: dict, noun: str):
+    """One ``[[policy]]`` or ``[[stop]]`` table: (rule, its class, label, settings). ``seen`` maps the
+    labels read so far to their table index (updated here); labels are unique within the section."""
+    where = f"{section}[{i}]"
+    if "rule" not in t:
+        r.fail(f"{where}.rule", f"is required; one of {', '.join(registry)}")
+    rule = r.choice(t, f"{where}.rule", tuple(registry))
+    cls = registry[rule]
+    r.keys(t, where, ("rule", "label", *cls.options))
+    label = r.string(t, f"{where}.label", default=rule)
+    if not label.strip() or len(label) > 60:
+        r.fail(f"{where}.label", "must be 1 to 60 characters")
+    if label in seen:
+        r.fail(f"{where}.label", f"\"{label}\" is already used by {section}[{seen[label]}]; give each {noun} its "
+               "own label")
+    seen[label] = i
+    return rule, cls, label, r.options(t, where, cls.options)
 
 
 def _read_stops(r: "_Reader", data: dict, campaign: CampaignSpec) -> tuple[StopSpec, ...]:
@@ -660,19 +666,8 @@ def _read_stops(r: "_Reader", data: dict, campaign: CampaignSpec) -> tuple[StopS
     out, seen, shaped = [], {}, {}
     for i, t in enumerate(tables):
         where = f"stop[{i}]"
-        if "rule" not in t:
-            r.fail(f"{where}.rule", f"is required; one of {', '.join(STOP_RULES)}")
-        rule = r.choice(t, f"{where}.rule", tuple(STOP_RULES))
-        cls = STOP_RULES[rule]
-        r.keys(t, where, ("rule", "label", *cls.options))
-        label = r.string(t, f"{where}.label", default=rule)
-        if not label.strip() or len(label) > 60:
-            r.fail(f"{where}.label", "must be 1 to 60 characters")
-        if label in seen:
-            r.fail(f"{where}.label", f"\"{label}\" is already used by stop[{seen[label]}]; give each stop rule "
-                   "its own label")
-        seen[label] = i
-        settings = dict(r.options(t, where, cls.options))
+        rule, cls, label, settings = _read_rule_table(r, t, "stop", i, STOP_RULES, seen, "stop rule")
+        settings = dict(settings)
         if settings["min_trials"] is None:
             settings["min_trials"] = campaign.initial + 2
         if settings["min_trials"] > campaign.horizon:

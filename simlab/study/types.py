@@ -309,6 +309,8 @@ class CampaignSpec:
 
 @dataclass(frozen=True)
 class PolicySpec:
+    """A ``[[policy]]`` table: a rule (a key of simlab.policies.POLICIES), its label and settings."""
+
     rule: str
     label: str
     settings: tuple[tuple[str, Any], ...] = ()
@@ -319,17 +321,9 @@ class PolicySpec:
 
 
 @dataclass(frozen=True)
-class StopSpec:
+class StopSpec(PolicySpec):
     """A ``[[stop]]`` table: a stopping rule (a key of simlab.stopping.STOP_RULES), its label and settings
-    (every option resolved, ``min_trials`` included)."""
-
-    rule: str
-    label: str
-    settings: tuple[tuple[str, Any], ...] = ()
-
-    @property
-    def options(self) -> dict[str, Any]:
-        return dict(self.settings)
+    (every option resolved, ``min_trials`` included); the same fields as a policy's table."""
 
 
 @dataclass(frozen=True)
