@@ -38,6 +38,14 @@ def simlab(*args, cwd, timeout=300):
                           text=True, timeout=timeout)
 
 
+def run_study(folder, text, out="r"):
+    """Write ``text`` as ``folder/s.toml`` and run it into ``folder/out`` (quiet); the run must succeed."""
+    (folder / "s.toml").write_text(text)
+    done = simlab("run", "s.toml", "--out", out, "--quiet", cwd=folder)
+    assert done.returncode == 0, done.stderr
+    return folder / out
+
+
 def one_line(out, code=2):
     """The run ended with ``code`` and exactly one line on standard error, no traceback."""
     lines = [line for line in out.stderr.splitlines() if line.strip()]

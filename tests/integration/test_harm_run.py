@@ -6,7 +6,7 @@ import re
 import numpy as np
 import pandas as pd
 import pytest
-from command_line import SMALL, one_line, simlab
+from command_line import SMALL, one_line, run_study, simlab
 
 # SMALL minimises a world of mean 0 and amplitude 1: a trial above 0.5 is harmful.
 FLOORED = (SMALL.replace("replicates = 2\n", "replicates = 12\n", 1)
@@ -16,9 +16,7 @@ FLOORED = (SMALL.replace("replicates = 2\n", "replicates = 12\n", 1)
 @pytest.fixture(scope="module")
 def run(tmp_path_factory):
     folder = tmp_path_factory.mktemp("harm")
-    (folder / "s.toml").write_text(FLOORED)
-    out = simlab("run", "s.toml", "--out", "r", "--quiet", cwd=folder)
-    assert out.returncode == 0, out.stderr
+    run_study(folder, FLOORED)
     return folder
 
 

@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from command_line import SMALL, one_line, simlab
+from command_line import SMALL, one_line, run_study, simlab
 
 STOPS = """
 [[stop]]
@@ -28,11 +28,7 @@ STUDY = SMALL.replace("replicates = 2\nseed", "replicates = 12\nseed").replace("
 
 @pytest.fixture(scope="module")
 def run(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("stops")
-    (folder / "s.toml").write_text(STUDY)
-    out = simlab("run", "s.toml", "--out", "r", "--quiet", cwd=folder)
-    assert out.returncode == 0, out.stderr
-    return folder / "r"
+    return run_study(tmp_path_factory.mktemp("stops"), STUDY)
 
 
 def _recompute(traces, rule, setting, min_trials, horizon, target):
