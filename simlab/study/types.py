@@ -268,6 +268,45 @@ class WorldSpec:
     noise_settings: tuple[tuple[str, Any], ...] = ()   # that shape's settings, defaults filled in
     noise_growth: float = 0.0        # sd = noise * exp(growth * (f - mean) / amplitude)
     lost: float = 0.0                # probability that a trial is lost
+    fails_where: "FailSpec | None" = None   # hidden failures: where a latent world is in its top share
+
+
+@dataclass(frozen=True)
+class FailSpec:
+    """``[world] fails_where``: a trial fails (spends the budget, returns nothing) where a latent world,
+    drawn from a Matérn 5/2 prior of unit amplitude with these lengthscales, is in its top ``share``
+    of the space's volume."""
+
+    share: float                       # 0 < share < 1: the failing share of the space
+    lengthscale: tuple[float, ...]     # one per numeric input, in its units (like [world] lengthscale)
+    kernel: str = "matern52"
+
+
+@dataclass(frozen=True)
+class LimitSpec:
+    """One ``[[limit]]``: a quantity measured with each trial that must stay below or above a bound.
+
+    Worlds draw it from its own prior (independent of the objective); the belief models it with its
+    own Gaussian process of the same prior. Exactly one of ``below`` and ``above`` is set."""
+
+    name: str
+    prior: Prior                       # kernel, lengthscale, amplitude, mean (user units), noise
+    below: float | None = None
+    above: float | None = None
+
+    @property
+    def bound(self) -> float:
+        return self.below if self.below is not None else self.above
+
+    @property
+    def sign(self) -> float:
+        """+1 for ``below``, -1 for ``above``: the limit holds where sign * (value - bound) <= 0."""
+        return 1.0 if self.below is not None else -1.0
+
+    def words(self, units: str = "") -> str:
+        """The limit in words, e.g. "viscosity below 40"."""
+        side = "below" if self.below is not None else "above"
+        return f"{self.name} {side} {self.bound:g}" + (f" {units}" if units else "")
 
 
 @dataclass(frozen=True)
@@ -345,12 +384,19 @@ class Study:
     units: str = ""              # [study] units: the objective's unit for the report ("" : "objective units")
     floor: float | None = None   # [target] floor, objective units: a trial worse than it is harmful (None: not counted)
     stops: tuple[StopSpec, ...] = ()  # [[stop]] rules, evaluated on the same campaigns (none: nothing recorded)
+    limits: tuple[LimitSpec, ...] = ()  # [[limit]] tables: measured quantities with a bound
+    feasible_chance: float = 0.95  # [target] feasible_chance: the recommendation must be believed feasible this surely
     source: str = field(default="<study>", compare=False)
 
     @property
     def lead_difference(self) -> float:
         """Smallest median paired regret difference that matters (``[target] difference``)."""
         return self.target / 10.0 if self.difference is None else self.difference
+
+    @property
+    def constrained(self) -> bool:
+        """The study has [[limit]]s or hidden failures: trials can break limits or fail."""
+        return bool(self.limits) or self.world.fails_where is not None
 
     @property
     def sign(self) -> float:
