@@ -26,6 +26,13 @@ class Option:
     choices: tuple[str, ...] = ()   # for kind=str: the allowed words
     low_open: bool = False
     high_open: bool = False
+    # False: the study dump leaves the setting out while it has its default, so studies written before
+    # the setting existed dump (and hash) as they did (e.g. a policy's ``feasible``)
+    always_written: bool = True
+
+    def written(self, value) -> bool:
+        """Whether a study dump writes this setting with ``value``."""
+        return self.always_written or value != self.default
 
 
 class WithOptions:

@@ -27,7 +27,7 @@ class ModeNotFound(RuntimeError):
     """Newton's iteration for the posterior mode did not converge within its iteration cap."""
 
 
-def logistic_gaussian_mean(mean, var) -> np.ndarray:
+def logistic_gaussian_mean(mean, var, *, grad: bool = False):
     """Approximate ``E[sigmoid(f)]`` for ``f ~ N(mean, var)``, elementwise.
 
     Parameters
@@ -35,10 +35,14 @@ def logistic_gaussian_mean(mean, var) -> np.ndarray:
     mean, var : array_like, broadcastable
         Mean and variance (>= 0) of the latent value.
 
+    grad : bool
+        Also return the partial derivatives with respect to ``mean`` and ``var`` (of the sum, before
+        clipping).
+
     Returns
     -------
     ndarray
-        The averaged logistic, clipped to [0, 1].
+        The averaged logistic, clipped to [0, 1]; with ``grad``, (value, d/dmean, d/dvar).
 
     Notes
     -----
@@ -61,9 +65,16 @@ def logistic_gaussian_mean(mean, var) -> np.ndarray:
     mean, var = np.broadcast_arrays(np.asarray(mean, dtype=float), np.asarray(var, dtype=float))
     lam = _LAMBDAS.reshape((-1,) + (1,) * mean.ndim)
     coef = _COEFS.reshape(lam.shape)
-    terms = coef * special.erf(lam * mean / np.sqrt(1.0 + 2.0 * lam**2 * var))
+    root = np.sqrt(1.0 + 2.0 * lam**2 * var)
+    a = lam * mean / root
+    terms = coef * special.erf(a)
     # The coefficients are large and of both signs, so rounding can step a hair outside [0, 1].
-    return np.clip(0.5 + 0.5 * terms.sum(axis=0), 0.0, 1.0)
+    value = np.clip(0.5 + 0.5 * terms.sum(axis=0), 0.0, 1.0)
+    if not grad:
+        return value
+    # d erf(a) = 2 / sqrt(pi) exp(-a^2) da, with da/dmean = lam / root and da/dvar = -a lam^2 / root^2
+    bell = coef * np.exp(-a * a) / np.sqrt(np.pi)
+    return value, (bell * lam / root).sum(axis=0), (-bell * a * lam**2 / root**2).sum(axis=0)
 
 
 class FailureBelief:
@@ -143,21 +154,35 @@ class FailureBelief:
             + _log_likelihood(y, self.mode)
             - np.log(np.diag(self._L)).sum())
 
-    def latent(self, U) -> tuple[np.ndarray, np.ndarray]:
-        """Mean and variance of the approximate posterior of ``f`` at U (q, d): two arrays (q,)."""
+    def latent(self, U, *, grad: bool = False):
+        """Mean and variance of the approximate posterior of ``f`` at U (q, d): two arrays (q,); with
+        ``grad`` also their gradients with respect to U, two arrays (q, d)."""
         U = _check_inputs(self.kernel, U, "U")
-        prior_var = self.kernel.diag(U)
+        prior_var = self.kernel.diag(U)                      # stationary: constant, no gradient
         if self._L is None:
-            return np.full(len(U), self.prior_mean), prior_var
+            mean = np.full(len(U), self.prior_mean)
+            return (mean, prior_var) if not grad else (mean, prior_var, np.zeros(U.shape), np.zeros(U.shape))
         Ks = self.kernel(self.X, U)                          # (n, q)
         mean = self.prior_mean + Ks.T @ self._grad           # Algorithm 3.2, line 4
         v = linalg.solve_triangular(self._L, self._w_sqrt[:, None] * Ks, lower=True)   # line 5
         var = prior_var - np.einsum("ij,ij->j", v, v)        # line 6
-        return mean, np.maximum(var, 0.0)
+        if not grad:
+            return mean, np.maximum(var, 0.0)
+        dK = self.kernel.grad(U, self.X)                     # (q, n, d): d k(u, x_i) / du
+        dmean = np.einsum("qnd,n->qd", dK, self._grad)
+        # var = k** - v'v with v = L^-1 W^1/2 k*, so d var = -2 (L^-T v)' W^1/2 dk*
+        back = linalg.solve_triangular(self._L, v, lower=True, trans="T") * self._w_sqrt[:, None]   # (n, q)
+        dvar = -2.0 * np.einsum("nq,qnd->qd", back, dK)
+        return mean, np.maximum(var, 0.0), dmean, np.where((var > 0)[:, None], dvar, 0.0)
 
-    def success_probability(self, U) -> np.ndarray:
-        """Chance that a trial at each row of U (q, d) works, averaged over the latent posterior: (q,)."""
-        return logistic_gaussian_mean(*self.latent(U))
+    def success_probability(self, U, *, grad: bool = False):
+        """Chance that a trial at each row of U (q, d) works, averaged over the latent posterior: (q,);
+        with ``grad`` also its gradient (q, d)."""
+        if not grad:
+            return logistic_gaussian_mean(*self.latent(U))
+        mean, var, dmean, dvar = self.latent(U, grad=True)
+        q, dq_dmean, dq_dvar = logistic_gaussian_mean(mean, var, grad=True)
+        return q, dq_dmean[:, None] * dmean + dq_dvar[:, None] * dvar
 
     def __repr__(self):
         return (f"FailureBelief({self.kernel!r}, n={len(self.worked)}, worked={int(self.worked.sum())}, "

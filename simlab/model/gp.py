@@ -115,6 +115,10 @@ class Stack:
     extra rounding in the variance near 1e-11 relative.
     """
 
+    # A constrained campaign's FeasibleBelief (simlab.model.feasible), set by the one-campaign loop for the
+    # policies to read; None otherwise (lockstep blocks never hold limits).
+    feasible = None
+
     def __init__(self, kernel: Kernel, mean: float, noise: float, *, pools, capacity: int = 64):
         self.kernel = kernel
         self.mean = float(mean)

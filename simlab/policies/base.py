@@ -70,6 +70,9 @@ class Policy(WithOptions):
     description: ClassVar[str] = ""      # one line for the report: what the rule does
     options: ClassVar[dict[str, Option]] = {}
     lockstep: ClassVar[bool] = False
+    # The rule honours ``feasible = "weight"`` ([[limit]]s and hidden failures): its score is weighted by the
+    # belief's chance that an input respects every limit and works (simlab.model.feasible)
+    weights_feasibility: ClassVar[bool] = False
 
     def __init__(self, label: str | None = None, **settings):
         self.label = label or self.rule
@@ -148,7 +151,11 @@ class Acquisition(Policy):
                        choices=("believer", "liar", "penalize", "samples")),
         "lie": Option("min", str, help="constant for fill = \"liar\"", choices=("min", "mean", "max")),
         "exploit_last": Option(0, int, 0, 100_000, "final trials spent on the lowest posterior mean"),
+        "feasible": Option("ignore", str, help="with [[limit]]s or [world] fails_where: ignore them (the baseline), or "
+                           "weight the score by the chance that an input respects every limit and works",
+                           choices=("ignore", "weight"), always_written=False),
     }
+    weights_feasibility = True
     n_starts: ClassVar[int] = 4       # pool points polished by L-BFGS-B (0: take the best pool point)
     polish_iterations: ClassVar[int] = 30
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs
@@ -217,8 +224,13 @@ class Acquisition(Policy):
     # ------------------------------------------------------------------ choosing
     zero_at_evaluated: ClassVar[bool] = False   # with zero noise the score is exactly 0 at an evaluated input
 
+    def weighted(self, post) -> bool:
+        """The score is weighted by the chance of feasibility (``feasible = "weight"`` in a study with limits)."""
+        return self.feasible == "weight" and post.feasible is not None
+
     def choose(self, post, t):
-        if self.lockstep and not self._pending:
+        weighted = self.weighted(post)
+        if self.lockstep and not self._pending and not weighted:
             u = self.choose_block(post, t, self.ctx.block())[0]
             self._keep_state(post)
             return u
@@ -226,7 +238,7 @@ class Acquisition(Policy):
             return _lowest_mean(post, self.ctx.pool, self.n_starts, self.polish_iterations)
         self.prepare(post)
         pool = self.ctx.pool
-        values = self._penalized(post, pool, self.score_pool(post))
+        values = self._penalized(post, pool, self.score_pool(post), on_pool=True)
         if self.n_starts == 0:
             return pool[int(np.argmax(values))].copy()
         starts = pool[distinct_best(pool, -values, self.n_starts)]
@@ -290,8 +302,15 @@ class Acquisition(Policy):
         low = [mu.min()] + ([post.mean_at_data().min()] if post.n else [])
         self._minimum = float(min(low))
 
-    def _penalized(self, post, U, values, grads=None):
-        """Add log local penalizers of the pending trials to the (log-transformed) score.
+    # Set by a rule's prepare() when, weighting by feasibility, no evaluated input is believed feasible:
+    # the score is then the chance of feasibility alone (Gelbart, Snoek & Adams 2014, section 3: search
+    # for a feasible region first), as log P(feasible).
+    _feasible_first = False
+
+    def _penalized(self, post, U, values, grads=None, *, on_pool: bool = False):
+        """Add log local penalizers of the pending trials to the (log-transformed) score, and, weighting
+        by feasibility, log P(feasible) (Gardner et al. 2014, ICML, eq. 4: EI times the chance that
+        the limits hold; the same product for every scoring rule, in logarithms).
 
         Notes
         -----
@@ -301,10 +320,13 @@ class Acquisition(Policy):
         eq. 4, in minimisation form). Scores that are not already logarithms are first
         mapped through ``log(softplus(a))`` as in that paper.
         """
-        if not self._pending:
+        weighted = self.weighted(post)
+        if not self._pending and not weighted:
             return values if grads is None else (values, grads)
         U = np.atleast_2d(U)
-        if self.log_score:
+        if weighted and self._feasible_first:
+            values, grads = np.zeros(len(U)), None if grads is None else np.zeros(U.shape)
+        if self.log_score or (weighted and self._feasible_first):
             total, g = values.copy(), None if grads is None else grads.copy()
         else:
             sp = np.logaddexp(0.0, values)                      # softplus
@@ -321,6 +343,12 @@ class Acquisition(Policy):
                 with np.errstate(invalid="ignore", divide="ignore"):
                     unit = np.where(dist[:, None] > 0, diff / dist[:, None], 0.0)
                 g = g + (ratio * self._lipschitz / sd_j)[:, None] * unit
+        if weighted:
+            if grads is None:
+                total = total + (post.feasible.pool_log_chance() if on_pool else post.feasible.log_chance(U))
+            else:
+                chance, dchance = post.feasible.log_chance(U, grad=True)
+                total, g = total + chance, g + dchance
         return total if grads is None else (total, g)
 
 

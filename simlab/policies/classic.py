@@ -115,6 +115,13 @@ class _Improvement(Acquisition):
 
     def prepare(self, post):
         # before any observation, improvement is measured from the prior mean
+        if self.weighted(post):
+            # weighting by feasibility: the incumbent is the best input believed feasible (the set the
+            # recommendation comes from); with none, the rule seeks feasibility alone (Gelbart et al. 2014)
+            trusted = post.feasible.trusted(post.X) if post.n else np.zeros(0, dtype=bool)
+            self._feasible_first = not trusted.any()
+            self.best = float(np.min(post.mean_at_data()[trusted])) if trusted.any() else post.mean
+            return
         self.best = float(np.min(post.mean_at_data())) if post.n else post.mean
 
     def prepare_block(self, st):
@@ -269,6 +276,7 @@ class ThompsonSampling(Acquisition):
     rule = "thompson"
     description = "Thompson sampling (one posterior sample per trial)"
     lockstep = True
+    weights_feasibility = False   # its own candidates or samples: feasibility weighting not built yet
     options = {
         "features": Option(512, int, 16, 8192, "spectral frequencies per sample"),
         "fill": Option("samples", str, help="how a round of several trials is filled",

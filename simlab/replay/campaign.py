@@ -8,6 +8,7 @@ from typing import Callable
 import numpy as np
 
 from ..model.belief import Belief
+from ..model.feasible import FeasibleBelief
 from ..model.gp import Posterior
 from ..policies import Context, Policy
 from ..worlds.draws import World
@@ -21,7 +22,8 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                  pool: np.ndarray, rng: np.random.Generator, batch: int = 1,
                  history: tuple[np.ndarray, np.ndarray] | None = None,
                  refit_rng: np.random.Generator | None = None, library: bool = False,
-                 snap: Callable[[np.ndarray], np.ndarray] | None = None, stop=None) -> Trace:
+                 snap: Callable[[np.ndarray], np.ndarray] | None = None, stop=None, limits=None,
+                 feasible: Callable[..., FeasibleBelief] | None = None) -> Trace:
     """Replay one campaign.
 
     Parameters
@@ -55,13 +57,22 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
         ``stop(post, h=, n=)`` starts the record of what the study's stopping rules read after
         each trial (``simlab.stopping.StopRecorder.begin`` bound to this replicate and policy),
         kept in ``Trace.stats``; None: nothing recorded.
+    limits : WorldLimits, optional
+        The replicate's [[limit]]s and failing region (``simlab.worlds.limits``): a trial that fails
+        returns nothing (no objective, no limit values), one that works returns its measured limits.
+    feasible : callable, optional
+        ``feasible(pool=, capacity=)`` makes the campaign's :class:`FeasibleBelief` (with ``limits``):
+        the policy reads it as ``post.feasible``, and the recommendation comes from it.
     """
     d = sequence.shape[1]
     H, yH = past_trials(history, d)
     h, n = len(yH), len(yH) + budget
     post = Posterior(belief.kernel, belief.mean, belief.noise, pool=pool, capacity=n + batch)
     policy.start(Context(pool=pool, rng=rng, sequence=sequence, horizon=budget, posterior=post, library=library))
+    feas = feasible(pool=pool, capacity=n + batch) if limits is not None else None
+    post.feasible = feas
     U, y, f, rec = allocate(n, d)
+    failed, breaks, rec_breaks = (np.zeros(n, dtype=bool) for _ in range(3))
     rows = {np.ascontiguousarray(r).tobytes() for r in pool} if library else None   # every trial must be a row
     seen: list[int] = []                                   # trace rows the posterior has observed
     log = stop(post, h=h, n=n) if stop is not None else None
@@ -78,17 +89,29 @@ def run_campaign(policy: Policy, belief: Belief, world: World, *, design: np.nda
                 raise RuntimeError(f"policy {policy.label!r} chose an input that is not a row of the library: {u}")
             i = h + t
             U[i], f[i] = u, world(u[None, :])[0]           # evaluate
-            y[i] = observe(f[i], t)
+            if feas is not None and limits.fails(u)[0]:    # a failed trial returns nothing, and says so
+                failed[i], y[i] = True, np.nan
+                feas.add(u, worked=False)
+            else:
+                y[i] = observe(f[i], t)
+                breaks[i] = feas is not None and limits.breaks(u)[0]   # a lost trial ran: it may still break one
             if np.isfinite(y[i]):                          # update (a lost trial teaches nothing)
                 post.add(u, y[i])
                 seen.append(i)
-            rec[i] = seen[post.recommend()] if seen else i  # record
+                if feas is not None:
+                    feas.add(u, worked=True, values=limits.measure(u, t))
+            if feas is None:                               # record
+                rec[i] = seen[post.recommend()] if seen else i
+            else:                                          # among the trials believed feasible
+                rec[i] = seen[feas.recommend(post)] if seen else i
+                rec_breaks[i] = limits.infeasible(U[rec[i]][None, :])[0]
             if log is not None:
                 log.after(post, i)                         # what stopping rules read
         k = belief.refit_every
         if k and (ts.stop // k > ts.start // k):           # a multiple of k trials is complete
             _refit(post, refit_rng)
-    return Trace(U=U, y=y, f=f, rec=rec, stats=log.columns(0) if log is not None else {})
+    return Trace(U=U, y=y, f=f, rec=rec, stats=log.columns(0) if log is not None else {},
+                 limits={"failed": failed, "breaks": breaks, "rec_breaks": rec_breaks} if feas is not None else {})
 
 
 def _refit(post: Posterior, rng: np.random.Generator) -> None:

@@ -9,11 +9,13 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from ..columns import STOP_COLUMNS
+from ..columns import LIMIT_COLUMNS, STOP_COLUMNS
 from ..policies import POLICIES, Policy
 from ..rng import stream
 from ..study.spec import Study
 from ..model.belief import Belief
+from ..model.feasible import FAIL_AMPLITUDE, FailureModel, FeasibleBelief, LimitModel, success_prior_mean
+from ..model.kernels import make_kernel
 from ..model.levels import mixed_kernel
 from ..worlds.noise import Observer
 # what the worlds stage hands on: each replicate's material (imported here for the replay's use)
@@ -36,6 +38,26 @@ def make_belief(study: Study) -> Belief:
     b, space = study.belief, study.space
     kernel = mixed_kernel(b, space) if space.discrete else unit_kernel(b, study)
     return Belief(kernel=kernel, mean=study.sign * b.mean, noise=b.noise, refit_every=study.refit_every)
+
+
+def make_feasible(study: Study):
+    """What makes a constrained campaign's belief about its limits (None for other studies): each limit's
+    own prior, as the worlds draw it (a matched prior, like the objective's by default), and the
+    classifier of failures with the prior chance of success ``1 - share``."""
+    if not study.constrained:
+        return None
+    limits = [LimitModel(kernel=unit_kernel(lim.prior, study), mean=lim.prior.mean, noise=lim.prior.noise,
+                         bound=lim.bound, sign=lim.sign) for lim in study.limits]
+    fw = study.world.fails_where
+    failure = None
+    if fw is not None:
+        kernel = make_kernel(fw.kernel, np.asarray(fw.lengthscale) / study.space.width, FAIL_AMPLITUDE)
+        failure = FailureModel(kernel=kernel, mean=success_prior_mean(fw.share))
+
+    def feasible(*, pool, capacity):
+        return FeasibleBelief(limits, failure, pool=pool, capacity=capacity, chance=study.feasible_chance)
+
+    return feasible
 
 
 def make_policy(spec) -> Policy:
@@ -79,7 +101,8 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     for spec in study.policies:
         probe = make_policy(spec)
         horizons = c.budgets if probe.horizon_aware else (c.horizon,)
-        together = lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost)
+        together = (lockstep and fits_lockstep(probe, belief, batch=c.batch, lost=study.world.lost)
+                    and not study.constrained)      # limits and failures: one campaign at a time
         per: list[list[tuple[int, Trace]]] = [[] for _ in reps]
         for b in horizons:
             if together:
@@ -116,7 +139,8 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
                         observe=observe, budget=budget, pool=rep.pool,
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
                         history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
-                        library=study.space.library is not None, snap=_snap(study), stop=stop)
+                        library=study.space.library is not None, snap=_snap(study), stop=stop,
+                        limits=rep.limits, feasible=make_feasible(study))
 
 
 def _snap(study: Study):
@@ -130,11 +154,12 @@ def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
     """The traces frame of one replicate from its campaigns ``[(label, [(budget, trace)])]``."""
     c, r = study.campaign, rep.index
     fstar = _fstar(rep, runs)
+    penalty = rep.worst - fstar if rep.limits is not None else None
     h = study.history.size if study.history is not None else 0
     trial = np.arange(1 - h, c.horizon + 1, dtype=np.int32)   # past trials -h+1 .. 0, then 1 .. B
     frames = []
     for label, per in runs:
-        cols = _compose([(b, _columns(t, trial[: h + b], fstar)) for b, t in per], trial)
+        cols = _compose([(b, _columns(t, trial[: h + b], fstar, penalty)) for b, t in per], trial)
         X = study.space.columns(cols.pop("U"))
         frame = {
             "policy": label,
@@ -150,13 +175,22 @@ def _frame(study: Study, rep: Replicate, runs) -> pd.DataFrame:
                       "regret_seen": cols["regret_seen"], "rec_trial": cols["rec_trial"],
                       "horizon": cols["horizon"]})
         frame.update({name: cols[name] for name in STOP_COLUMNS if name in cols})   # only with [[stop]] rules
+        frame.update({name: cols[name] for name in LIMIT_COLUMNS if name in cols})  # only with limits
         frames.append(pd.DataFrame(frame))
     return pd.concat(frames, ignore_index=True)
 
 
 def _fstar(rep: Replicate, runs) -> float:
-    """What regret is measured against: the searched optimum or any input evaluated, whichever is lower."""
-    return min(rep.optimum[1], min(float(t.f.min()) for _, per in runs for _, t in per))
+    """What regret is measured against: the searched optimum or any input evaluated, whichever is lower
+    (with limits: the searched feasible optimum or any feasible input evaluated)."""
+    return min(rep.optimum[1], min(float(_feasible_f(t).min()) for _, per in runs for _, t in per))
+
+
+def _feasible_f(t: Trace) -> np.ndarray:
+    """The true values of a campaign's trials, +inf where the input breaks a limit or fails."""
+    if not t.limits:
+        return t.f
+    return np.where(t.limits["breaks"] | t.limits["failed"], np.inf, t.f)
 
 
 def _world_rows(study: Study, reps: list[Replicate], runs_per_rep) -> pd.DataFrame:
@@ -171,13 +205,23 @@ def _world_rows(study: Study, reps: list[Replicate], runs_per_rep) -> pd.DataFra
     return pd.DataFrame(rows)
 
 
-def _columns(t: Trace, trial: np.ndarray, fstar: float) -> dict[str, np.ndarray]:
-    """Per-row values of one campaign: regret of the recommendation and of the best seen input."""
-    seen = np.where(np.isfinite(t.y), t.f, np.inf)        # lost trials were never seen
+def _columns(t: Trace, trial: np.ndarray, fstar: float, penalty: float | None = None) -> dict[str, np.ndarray]:
+    """Per-row values of one campaign: regret of the recommendation and of the best seen input.
+
+    With limits, a row whose recommendation breaks a limit or lies where trials fail has failed
+    whatever its objective: its regret is ``penalty``, the world's worst feasible regret (the searched
+    worst feasible value - f*), so every regret summary counts it among the worst outcomes and never as
+    a success; ``rec_breaks`` says which rows these are. The best seen input is the best feasible one.
+    """
+    seen = np.where(np.isfinite(t.y), _feasible_f(t), np.inf)   # lost and failed trials were never seen
     best = np.minimum.accumulate(seen)
     best = np.where(np.isfinite(best), best, t.f[t.rec])  # nothing seen yet: the current input
-    return {"U": t.U, "y": t.y, "f": t.f, "regret": t.f[t.rec] - fstar, "regret_seen": best - fstar,
-            "rec_trial": trial[t.rec], **t.stats}
+    regret = t.f[t.rec] - fstar
+    if t.limits:
+        regret = np.where(t.limits["rec_breaks"], max(penalty, 0.0), np.maximum(regret, 0.0))
+        best = np.where(np.isfinite(best), best, fstar + max(penalty, 0.0))
+    return {"U": t.U, "y": t.y, "f": t.f, "regret": regret, "regret_seen": np.maximum(best - fstar, 0.0) if t.limits
+            else best - fstar, "rec_trial": trial[t.rec], **t.stats, **t.limits}
 
 
 def _compose(parts: list[tuple[int, dict]], trial: np.ndarray) -> dict[str, np.ndarray]:

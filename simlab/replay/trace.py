@@ -32,6 +32,9 @@ class Trace:
     stats : dict of str to ndarray of shape (h + budget,)
         What the study's stopping rules read after each row (``simlab.stopping.record``; columns
         ``stop_*``, NaN where not computed); empty when no rule needs the posterior.
+    limits : dict of str to ndarray of shape (h + budget,)
+        With [[limit]]s or fails_where (``simlab.columns.LIMIT_COLUMNS``): ``failed``, ``breaks`` and
+        ``rec_breaks`` per row, bool; empty otherwise.
     """
 
     U: np.ndarray
@@ -39,6 +42,7 @@ class Trace:
     f: np.ndarray
     rec: np.ndarray
     stats: dict = field(default_factory=dict)
+    limits: dict = field(default_factory=dict)
 
 
 def past_trials(history, d: int) -> tuple[np.ndarray, np.ndarray]:

@@ -8,6 +8,7 @@ from typing import Any
 
 import numpy as np
 
+from ..policies import POLICIES
 from .types import CATEGORICAL, LOG, STEPPED, Prior, Space, Study, WorldSpec
 
 
@@ -57,6 +58,10 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
         lines += [f"method = {toml_value(w.method)}", *(f"{k} = {toml_value(v)}" for k, v in w.method_settings),
                   f"lengthscale_within = {w.lengthscale_within!r}", f"amplitude_within = {w.amplitude_within!r}"]
         lines += _noise_lines(w)
+        if w.fails_where is not None:   # written only when set: other studies dump (and hash) as before
+            fw = w.fails_where
+            lines.append(f"fails_where = {{ share = {fw.share!r}, lengthscale = {toml_value(list(fw.lengthscale))}, "
+                         f"kernel = {toml_value(fw.kernel)} }}")
     lines += ["", "[belief]", *_prior_lines(study.belief, study.space), f"refit_every = {study.refit_every}", "", "[campaign]"]
     c = study.campaign
     lines += [f"initial = {c.initial}", f"design = {toml_value(c.design)}",
@@ -64,6 +69,8 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
               "[target]", f"regret = {study.target!r}", f"difference = {study.lead_difference!r}"]
     if study.floor is not None:   # written only when set: without it the text (and the results folder's hash) is unchanged
         lines.append(f"floor = {study.floor!r}")
+    if study.constrained:   # likewise
+        lines.append(f"feasible_chance = {study.feasible_chance!r}")
     if study.history is not None:
         lines += ["", "[history]", f"file = {toml_value(history_file or study.history.file)}",
                   f"response = {toml_value(study.history.response)}"]
@@ -72,7 +79,12 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
               f"amplitude = {toml_value(list(sw.amplitude))}", f"replicates = {sw.replicates}"]
     for p in study.policies:
         lines += ["", "[[policy]]", f"rule = {toml_value(p.rule)}", f"label = {toml_value(p.label)}"]
-        lines += [f"{k} = {toml_value(v)}" for k, v in p.settings]
+        options = POLICIES[p.rule].options
+        lines += [f"{k} = {toml_value(v)}" for k, v in p.settings if k not in options or options[k].written(v)]
+    for limit in study.limits:   # written only when the study has some
+        side = "below" if limit.below is not None else "above"
+        lines += ["", "[[limit]]", f"name = {toml_value(limit.name)}", f"{side} = {limit.bound!r}",
+                  *_prior_lines(limit.prior, study.space)]
     for stop in study.stops:   # written only when the study has some: other studies dump (and hash) as before
         lines += ["", "[[stop]]", f"rule = {toml_value(stop.rule)}", f"label = {toml_value(stop.label)}"]
         lines += [f"{k} = {toml_value(v)}" for k, v in stop.settings]

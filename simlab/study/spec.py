@@ -11,7 +11,7 @@ from typing import Any
 
 import numpy as np
 
-from ..columns import STOP_COLUMNS, TRACE_COLUMNS, WORLD_COLUMNS
+from ..columns import LIMIT_COLUMNS, STOP_COLUMNS, TRACE_COLUMNS, WORLD_COLUMNS
 from ..model.kernels import KERNELS
 from ..policies import POLICIES
 from ..stopping.rules import STOP_RULES
@@ -20,8 +20,8 @@ from ..worlds.mixed import MAX_ENUMERATED, MAX_SEARCHED, discrete_combinations, 
 from ..worlds.noise import NOISE_SHAPES
 from ..worlds import functions
 from .types import (CATEGORICAL, CONTINUOUS, DESIGNS, GOALS, LOG, MAX_REPLICATES, NAME_LENGTH, STEPPED, UNITS_LENGTH,
-                    CampaignSpec, HistorySpec, Library, PolicySpec, Prior, Space, StopSpec, Study, StudyError,
-                    SweepSpec, WorldSpec)
+                    CampaignSpec, FailSpec, HistorySpec, Library, LimitSpec, PolicySpec, Prior, Space, StopSpec, Study,
+                    StudyError, SweepSpec, WorldSpec)
 
 __all__ = ["load_study", "parse_study", "advice", "RESERVED",
            # the types a study is made of (types.py), imported here because reading makes them
@@ -29,12 +29,14 @@ __all__ = ["load_study", "parse_study", "advice", "RESERVED",
            "Study", "Library", "MAX_REPLICATES", "NAME_LENGTH", "GOALS", "DESIGNS", "unsupported", "MAX_LEVELS"]
 
 # Columns of traces.parquet and worlds.csv that an input name must not shadow (defined once, in columns.py).
-RESERVED = TRACE_COLUMNS + STOP_COLUMNS + WORLD_COLUMNS[1:]
+RESERVED = TRACE_COLUMNS + STOP_COLUMNS + LIMIT_COLUMNS + WORLD_COLUMNS[1:]
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.-]*$")
 # Most levels a categorical input may have, and most rows a library may hold: beyond these an
 # exchangeable correlation (one number for all pairs) or a scored-in-full library is not what was meant.
 MAX_LEVELS = 1000
 MAX_LIBRARY = 1_000_000
+# Most [[limit]] tables: each is a world of its own in every replicate and a belief in every campaign.
+MAX_LIMITS = 8
 # Keys of a [space] entry written as a table.
 _INPUT_KEYS = ("low", "high", "step", "scale", "levels")
 _SCALES = ("linear", "log")
@@ -55,9 +57,10 @@ def _section_keys() -> dict[str, tuple[str, ...]]:
     return {
         "study": ("name", "goal", "replicates", "seed", "units"),
         "world": ("kernel", "lengthscale", "amplitude", "mean", "noise", "level_correlation", "method",
-                  *world_options(1), "function", "lengthscale_within", "amplitude_within", *_noise_keys()),
+                  *world_options(1), "function", "lengthscale_within", "amplitude_within", *_noise_keys(),
+                  "fails_where"),
         "campaign": ("initial", "design", "budgets", "pool", "batch"),
-        "target": ("regret", "difference", "floor"),
+        "target": ("regret", "difference", "floor", "feasible_chance"),
         "sweep": ("lengthscale", "amplitude", "replicates"),
         "history": ("file", "response"),
         "candidates": ("file",),
@@ -106,7 +109,7 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     base_dir = Path(base_dir) if base_dir is not None else None
     r = _Reader(source)
     r.keys(data, "", ("study", "space", "world", "belief", "campaign", "target", "policy", "sweep",
-                          "history", "candidates", "stop"))
+                          "history", "candidates", "stop", "limit"))
 
     st = r.table(data, "study", required=False)
     r.keys(st, "study", _section_keys()["study"])
@@ -155,7 +158,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
             _refuse_mixed(r, space, method, within)
         settings = r.options(wt, "world", world_options(space.dim))
         world = WorldSpec(prior=world_prior, function=None, noise=world_prior.noise, method=method,
-                          method_settings=settings, **within, **_read_noise(r, wt))
+                          method_settings=settings, **within, **_read_noise(r, wt),
+                          fails_where=_read_fails_where(r, wt, space))
 
     bt = r.table(data, "belief", required=False)
     r.keys(bt, "belief", ("kernel", "lengthscale", "amplitude", "mean", "noise", "level_correlation", "refit_every"))
@@ -188,6 +192,9 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     difference = r.number(tt, "target.difference", low=0.0, default=target / 10.0)
     # a trial whose true value is worse than this (objective units, the study's goal) counts as harmful
     floor = r.number(tt, "target.floor", default=None)
+    # the recommendation must be believed to respect every limit (and to work) at least this surely
+    feasible_chance = r.number(tt, "target.feasible_chance", low=0.5, high=1.0, high_open=True, default=0.95)
+    limits = _read_limits(r, data, space)
 
     policies = _read_policies(r, data)
     stops = _read_stops(r, data, campaign)
@@ -202,7 +209,8 @@ def parse_study(data: dict, *, source: str = "<study>", default_name: str = "stu
     study = Study(name=name, goal=goal, replicates=replicates, seed=seed, space=space, world=world,
                   belief=belief, campaign=campaign, target=target, policies=policies, sweep=sweep,
                   history=history, refit_every=refit_every, difference=difference, units=units, floor=floor,
-                  stops=stops, source=source)
+                  stops=stops, limits=limits, feasible_chance=feasible_chance, source=source)
+    _check_feasible_settings(r, study)
     if runnable:
         refusal = unsupported(study)
         if refusal is not None:
@@ -221,6 +229,66 @@ def _read_noise(r: "_Reader", wt: dict) -> dict:
     growth = r.number(wt, "world.noise_growth", low=-10.0, high=10.0, default=0.0)
     lost = r.number(wt, "world.lost", low=0.0, high=0.95, default=0.0)
     return {"noise_kind": kind, "noise_settings": settings, "noise_growth": growth, "lost": lost}
+
+
+def _read_fails_where(r: "_Reader", wt: dict, space: Space) -> FailSpec | None:
+    """``[world] fails_where = { share = 0.2, lengthscale = 0.3 }``: hidden failures, or None."""
+    if "fails_where" not in wt:
+        return None
+    t = wt["fails_where"]
+    if not isinstance(t, dict):
+        r.fail("world.fails_where", "must be a table such as { share = 0.2, lengthscale = 0.3 }: the failing share "
+               "of the space and the lengthscale of the failing region, in input units")
+    r.keys(t, "world.fails_where", ("share", "lengthscale", "kernel"))
+    share = r.number(t, "world.fails_where.share", low=0.0, high=1.0, low_open=True, high_open=True)
+    if share > 0.9:
+        r.fail("world.fails_where.share", f"must be at most 0.9 (at least a tenth of the space must work); got {share:g}")
+    if "lengthscale" not in t:
+        r.fail("world.fails_where.lengthscale", "is required: one number for all inputs or one per input, in input "
+               "units (how wide the failing region's features are)")
+    kernel = r.choice(t, "world.fails_where.kernel", tuple(KERNELS), default="matern52")
+    return FailSpec(share=share, lengthscale=r.lengthscale(t, "world.fails_where.lengthscale", space), kernel=kernel)
+
+
+def _read_limits(r: "_Reader", data: dict, space: Space) -> tuple[LimitSpec, ...]:
+    """``[[limit]]`` tables (none is fine): a name, ``below`` or ``above``, and the quantity's own prior."""
+    if "limit" not in data:
+        return ()
+    tables = data["limit"]
+    if not isinstance(tables, list) or not all(isinstance(t, dict) for t in tables):
+        r.fail("limit", "must be written as [[limit]] tables, e.g. [[limit]] name = \"viscosity\" below = 40.0")
+    if len(tables) > MAX_LIMITS:
+        r.fail("limit", f"at most {MAX_LIMITS} [[limit]] tables; got {len(tables)}")
+    reserved = set(space.names) | set(TRACE_COLUMNS) | set(STOP_COLUMNS) | set(LIMIT_COLUMNS)
+    out, seen = [], set()
+    for i, t in enumerate(tables):
+        where = f"limit[{i}]"
+        r.keys(t, where, ("name", "below", "above", "kernel", "lengthscale", "amplitude", "mean", "noise"))
+        name = r.string(t, f"{where}.name")
+        if not _NAME.match(name) or len(name) > NAME_LENGTH:
+            r.fail(f"{where}.name", f"must be a short name of letters, digits, _ . - (it names the limit in the report); got {name!r}")
+        if name in seen or name in reserved:
+            r.fail(f"{where}.name", f"{name!r} is already taken (" + ("by another [[limit]]" if name in seen
+                   else "by an input or a traces column") + "): give each limit a name of its own")
+        seen.add(name)
+        sides = [k for k in ("below", "above") if k in t]
+        if len(sides) != 1:
+            r.fail(f"{where}.below", "give exactly one of below = ... (the value must stay below it) or above = ...; got "
+                   + (" and ".join(sides) if sides else "neither"))
+        bound = r.number(t, f"{where}.{sides[0]}")
+        prior = _read_prior(r, t, where, space, base=None, noise_default=0.0)
+        out.append(LimitSpec(name=name, prior=prior, **{sides[0]: bound}))
+    return tuple(out)
+
+
+def _check_feasible_settings(r: "_Reader", study: Study) -> None:
+    """``feasible = "weight"`` needs something to weight by."""
+    if study.constrained:
+        return
+    for i, p in enumerate(study.policies):
+        if p.options.get("feasible", "ignore") != "ignore":
+            r.fail(f"policy[{i}].feasible", "weights the rule by the chance of respecting the limits, but the study has no "
+                   "[[limit]] tables and no [world] fails_where: leave it out")
 
 
 def _read_history(r: "_Reader", data: dict, space: Space, base_dir: Path | None) -> HistorySpec | None:
@@ -873,6 +941,20 @@ def unsupported(study: Study) -> tuple[str, str] | None:
             if p.rule not in MIXED_RULES:
                 return f"policy[{i}].rule", (f"\"{p.rule}\" does not run over {kinds} inputs yet (issue 15 is landing "
                                              f"in slices); there use {', '.join(MIXED_RULES)}")
+    if study.constrained:
+        what = "[[limit]] tables" if study.limits else "world.fails_where"
+        field = "limit" if study.limits else "world.fails_where"
+        if study.world.function is not None:
+            return field, f"{what} need a prior world (the limits' worlds are drawn beside it), not a published function"
+        if space.discrete or space.library is not None:
+            return field, f"{what} are not supported yet with stepped or categorical inputs or a [candidates] library"
+        if study.history is not None:
+            return field, f"{what} are not supported yet with a [history] (past trials would need their measured limits)"
+        for i, p in enumerate(study.policies):
+            if p.options.get("feasible", "ignore") == "weight" and not POLICIES[p.rule].weights_feasibility:
+                return f"policy[{i}].feasible", (f"\"weight\" is not supported yet by rule \"{p.rule}\"; rules that weight "
+                                                 "by feasibility: " + ", ".join(k for k, c in POLICIES.items()
+                                                                                 if c.weights_feasibility))
     if space.discrete and study.refit_every:
         return "belief.refit_every", ("belief refits are not supported yet with stepped or categorical inputs "
                                       "(the refit searches the lengthscales of a stationary kernel only)")

@@ -17,6 +17,7 @@ from . import functions
 from .draws import ConditionedWorld, FunctionWorld, World
 from .kinds import WORLD_KINDS
 from .mixed import make_mixed_world, needs_mixed
+from .limits import WorldLimits, make_limits
 from .noise import Observer
 
 __all__ = ["Replicate", "make_replicate", "make_world", "world_optimum", "make_observer", "history_arrays",
@@ -92,6 +93,8 @@ class Replicate:
     lost: np.ndarray        # (B,) bool: the trial is lost
     pool: np.ndarray        # (m, d)
     optimum_gap: float = 0.0   # |first search - second search| >= 0, objective units
+    limits: WorldLimits | None = None   # [[limit]]s and the failing region (then `optimum` is the feasible one)
+    worst: float = float("nan")         # with limits: the worst feasible value found (the regret of an infeasible pick)
 
 
 # When the searches disagree by more than this share of the prior amplitude, search again, up to
@@ -127,6 +130,25 @@ def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float
     found.sort(key=lambda t: t[0])
     (v, u), (v_next, _) = found[0], found[1]
     return u, v, v_next - v
+
+
+def feasible_optimum(world: World, limits: WorldLimits, unconstrained, study: Study, r: int):
+    """The best input that respects every limit and works: (location, value, worst feasible value, gap).
+
+    The unconstrained optimum is the answer when it is feasible (it is the global minimum); otherwise
+    two independent searches with the limits applied (streams "feasible_optimum", "feasible_check"),
+    the better kept, the gap between them reported like ``world_optimum``'s."""
+    from .feasible import feasible_minimum
+
+    u, v, gap = unconstrained
+    found = [feasible_minimum(world, limits.slacks, world.dim, stream(study.seed, r, name), unconstrained=(u, v))
+             for name in ("feasible_optimum", "feasible_check")]
+    found.sort(key=lambda o: (not o.found, o.value))
+    best, other = found
+    worst = max(o.worst for o in found)
+    if np.all(limits.slacks_at(u) <= 0):
+        return u, v, max(worst, v), gap
+    return best.u, best.value, max(worst, best.value), max(other.value - best.value, 0.0)
 
 
 def make_observer(study: Study) -> Observer:
@@ -181,6 +203,9 @@ def make_replicate(study: Study, r: int) -> Replicate:
     B = c.horizon
     world = make_world(study, r)
     u_best, v_best, gap = world_optimum(world, study, r)
+    limits, worst = make_limits(study, r), float("nan")
+    if limits is not None:
+        u_best, v_best, worst, gap = feasible_optimum(world, limits, (u_best, v_best, gap), study, r)
     rng = stream(study.seed, r, "design")
     sequence = _sobol(d, B, rng)
     if c.design == "sobol":
@@ -199,4 +224,4 @@ def make_replicate(study: Study, r: int) -> Replicate:
     else:
         pool = _sobol(d, c.pool, stream(study.seed, r, "pool"))
     return Replicate(index=r, world=world, optimum=(u_best, v_best), design=design, sequence=sequence,
-                     shocks=shocks, lost=lost, pool=pool, optimum_gap=gap)
+                     shocks=shocks, lost=lost, pool=pool, optimum_gap=gap, limits=limits, worst=worst)
