@@ -23,6 +23,12 @@ PURPOSES = {
     "library": 9,    # the order a [candidates] library's rows are visited in (design, sobol policy)
     "stop": 10,      # posterior draws of the stopping rules' record (per policy), simlab.stopping.record
     "optimum_extra": 11,  # further searches for the optimum while two disagree (keyed by their number, as text)
+    "limit": 12,     # a [[limit]]'s true quantity (keyed by the limit's name)
+    "limit_noise": 13,    # a limit's measurement shocks, one per trial, shared by all policies (keyed by name)
+    "fails": 14,     # the latent world of [world] fails_where
+    "fails_level": 15,    # the Sobol' points that set the failing region's threshold
+    "feasible_optimum": 16,   # the search for the best feasible input
+    "feasible_check": 17,     # a second, independent search for it
 }
 
 

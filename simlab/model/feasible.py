@@ -111,8 +111,12 @@ class FeasibleBelief:
         self._pool_log = None
 
     # ------------------------------------------------------------------ chances
-    def log_chance(self, U, *, grad: bool = False):
-        """log P(feasible) at inputs U (q, d): (q,); with ``grad`` also its gradient (q, d)."""
+    def log_chance(self, U, *, grad: bool = False, worked: bool = False):
+        """log P(feasible) at inputs U (q, d): (q,); with ``grad`` also its gradient (q, d).
+
+        ``worked``: U are inputs whose trials worked. Failure is a property of the input (a trial that
+        worked there works again), so their chance of success is 1 and only the limits count; the
+        classifier, whose logistic likelihood treats outcomes as noisy, would put it below 1."""
         U = np.atleast_2d(np.asarray(U, dtype=float))
         total = np.zeros(len(U))
         g = np.zeros(U.shape) if grad else None
@@ -130,7 +134,7 @@ class FeasibleBelief:
                 sd_f = np.maximum(sd, _SD_FLOOR * lm.kernel.amplitude)
                 dz = -lm.sign * dmu / sd_f[:, None] - np.where(floored, 0.0, z / sd_f)[:, None] * dsd
                 g += np.where(np.isfinite(ratio), ratio, 0.0)[:, None] * dz
-        if self.classifier is not None:
+        if self.classifier is not None and not worked:
             if grad:
                 q, dq = self.classifier.success_probability(U, grad=True)
             else:
@@ -161,17 +165,19 @@ class FeasibleBelief:
 
     # ------------------------------------------------------------------ what the campaign ships
     def trusted(self, X) -> np.ndarray:
-        """Which inputs X (n, d) are believed feasible at least ``chance`` surely, (n,) bool."""
+        """Which evaluated inputs X (n, d), trials that worked, are believed to respect every limit at
+        least ``chance`` surely, (n,) bool."""
         if len(X) == 0:
             return np.zeros(0, dtype=bool)
-        return self.log_chance(X) >= np.log(self.chance)
+        return self.log_chance(X, worked=True) >= np.log(self.chance)
 
     def recommend(self, post: Posterior) -> int:
-        """Index of the evaluated input to ship: the lowest posterior mean among those believed feasible
-        at least ``chance`` surely; when none is, the one most likely feasible (its chance is then below
+        """Index of the evaluated input to ship: the lowest posterior mean among those believed to respect
+        every limit at least ``chance`` surely (they worked, so they do not fail); when none is, the one
+        most likely feasible (its chance is then below
         the bar, and the campaign may well end infeasible: the traces say so)."""
-        X = post.X
-        log_chance = self.log_chance(X)
+        X = post.X                                   # trials that worked and were observed
+        log_chance = self.log_chance(X, worked=True)
         ok = log_chance >= np.log(self.chance)
         if not ok.any():
             return int(np.argmax(log_chance))

@@ -155,7 +155,6 @@ class Acquisition(Policy):
                            "weight the score by the chance that an input respects every limit and works",
                            choices=("ignore", "weight"), always_written=False),
     }
-    weights_feasibility = True
     n_starts: ClassVar[int] = 4       # pool points polished by L-BFGS-B (0: take the best pool point)
     polish_iterations: ClassVar[int] = 30
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs

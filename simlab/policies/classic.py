@@ -113,6 +113,11 @@ class _Improvement(Acquisition):
     lockstep = True
     zero_at_evaluated = True     # noise-free: no improvement is left at an evaluated input
 
+    # The score is a positive utility (an improvement's expectation or chance), so weighting it by the chance
+    # of feasibility is the published product (Gardner et al. 2014; Schonlau, Welch & Jones 1998 for PI).
+    # A confidence bound or a mean has no zero to weight from (its product would depend on the prior mean).
+    weights_feasibility = True
+
     def prepare(self, post):
         # before any observation, improvement is measured from the prior mean
         if self.weighted(post):
@@ -276,7 +281,6 @@ class ThompsonSampling(Acquisition):
     rule = "thompson"
     description = "Thompson sampling (one posterior sample per trial)"
     lockstep = True
-    weights_feasibility = False   # its own candidates or samples: feasibility weighting not built yet
     options = {
         "features": Option(512, int, 16, 8192, "spectral frequencies per sample"),
         "fill": Option("samples", str, help="how a round of several trials is filled",

@@ -149,7 +149,6 @@ class KnowledgeGradient(Acquisition):
     description = "knowledge gradient"
     scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
     lockstep = True
-    weights_feasibility = False   # its own candidates or samples: feasibility weighting not built yet
     options = {
         "points": Option(64, int, 2, 1024, "pool points in the discrete set and candidates"),
         "fill": Option("believer", str, help="how a round of several trials is filled",

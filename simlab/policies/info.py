@@ -206,7 +206,6 @@ class ProbabilityOfMinimum(Acquisition):
     rule = "pbest"
     description = "most probable location of the minimum, from posterior samples"
     scores_anywhere = False  # scores its own candidate set only (no curve over arbitrary inputs)
-    weights_feasibility = False   # its own candidates or samples: feasibility weighting not built yet
     options = {
         "samples": Option(256, int, 1, 65536, "posterior draws counted per trial"),
         "features": Option(128, int, 16, 8192, "spectral frequencies shared by the draws"),
@@ -392,7 +391,6 @@ class MaxValueEntropySearch(Acquisition):
 
     rule = "mes"
     description = "max-value entropy search"
-    weights_feasibility = False   # its own candidates or samples: feasibility weighting not built yet
     options = {
         "samples": Option(16, int, 1, 1024, "sampled minimum values per trial"),
         "features": Option(128, int, 16, 8192, "spectral frequencies for the draws"),

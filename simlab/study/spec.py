@@ -952,9 +952,9 @@ def unsupported(study: Study) -> tuple[str, str] | None:
             return field, f"{what} are not supported yet with a [history] (past trials would need their measured limits)"
         for i, p in enumerate(study.policies):
             if p.options.get("feasible", "ignore") == "weight" and not POLICIES[p.rule].weights_feasibility:
-                return f"policy[{i}].feasible", (f"\"weight\" is not supported yet by rule \"{p.rule}\"; rules that weight "
-                                                 "by feasibility: " + ", ".join(k for k, c in POLICIES.items()
-                                                                                 if c.weights_feasibility))
+                return f"policy[{i}].feasible", (f"\"weight\" does not apply to rule \"{p.rule}\": it weights a score "
+                                                 "that is a positive utility, as in " + ", ".join(
+                                                     k for k, c in POLICIES.items() if c.weights_feasibility))
     if space.discrete and study.refit_every:
         return "belief.refit_every", ("belief refits are not supported yet with stepped or categorical inputs "
                                       "(the refit searches the lengthscales of a stationary kernel only)")
