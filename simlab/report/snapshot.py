@@ -46,6 +46,18 @@ class _Snapshot:
     trials: int            # campaign trials so far (history not counted)
     kind: str = "continuous"   # of the input along the axis: a stepped or categorical one is drawn value by value
     ticks: tuple = ()      # categorical: the level names at x = 0, 1, ...
+    infeasible: np.ndarray | None = None   # (g,) bool with limits: the true world breaks a limit or fails there
+    chance: np.ndarray | None = None       # (g,) with limits: the belief's chance of feasibility
+    failed: int = 0        # trials so far that failed (with fails_where; counted apart from lost ones)
+
+
+def _shade_infeasible(ax, x, infeasible) -> None:
+    """Hatch the stretches of the line where the true world breaks a limit or fails (one legend entry)."""
+    edges = np.flatnonzero(np.diff(np.r_[0, infeasible.astype(int), 0]))
+    half = 0.5 * (np.min(np.diff(x)) if len(x) > 1 else 1.0)
+    for k, (a, b) in enumerate(zip(edges[::2], edges[1::2] - 1)):
+        ax.axvspan(x[a] - half, x[b] + half, facecolor="none", edgecolor=GREY, hatch="///", lw=0, zorder=0,
+                   label="breaks a limit or fails\n(true world, hidden)" if k == 0 else None, gid="infeasible")
 
 
 def _acquisition_for_display(policy, values):
@@ -109,7 +121,7 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
     from ..model.gp import Posterior
     from ..policies import Acquisition, Context
     from ..rng import stream
-    from ..replay.runner import make_belief, make_policy
+    from ..replay.runner import make_belief, make_feasible, make_policy
     from ..worlds.replicate import make_replicate
     from ..worlds.draws import FeatureSample
 
@@ -127,13 +139,25 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
     post = Posterior(belief.kernel, belief.mean, belief.noise, pool=rep.pool, capacity=max(len(y), 1) + 1)
     for u, v in zip(U, y):
         post.add(u, v)
+    failed = rows["failed"].to_numpy(dtype=bool) if "failed" in rows else np.zeros(len(rows), dtype=bool)
+    if rep.limits is not None:
+        # the campaign's belief about its limits, rebuilt from the same trials: each failed trial, and the
+        # measured limits of each that worked (the replicate's own shocks, as the campaign measured them)
+        post.feasible = make_feasible(study)(pool=rep.pool, capacity=len(rows) + 1)
+        X_all = space.to_unit(space.user_matrix(rows))
+        for u, t, fail, seen in zip(X_all, rows["trial"].to_numpy(), failed, observed):
+            if fail:
+                post.feasible.add(u, worked=False)
+            elif seen:
+                post.feasible.add(u, worked=True, values=rep.limits.measure(u, int(t) - 1))
 
     # The line the figure is drawn along: the whole input range (d = 1) or a slice through
     # the current recommendation (d > 1). For d = 1 the trial inputs are on the line.
     grid = space.grid(j) if j in space.discrete else np.linspace(0.0, 1.0, points)
     if space.dim == 1 and j not in space.discrete:
         grid = np.unique(np.concatenate([grid, U[:, 0]]))
-    base = U[post.recommend()].copy() if post.n else np.full(space.dim, 0.5)
+    recommend = post.feasible.recommend(post) if post.feasible is not None and post.n else (post.recommend() if post.n else None)
+    base = U[recommend].copy() if recommend is not None else np.full(space.dim, 0.5)
     line = np.repeat(base[None, :], grid.size, axis=0)
     line[:, j] = grid
     mu, sd = post.moments(line)
@@ -190,11 +214,14 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
     return _Snapshot(
         name=space.names[j], x=space.from_unit(line)[:, j], mean=sign * mu, low=np.minimum(*band),
         high=np.maximum(*band), world=sign * rep.world(line), trials_x=X_user[:, j], trials_y=sign * y,
-        past=(rows["trial"].to_numpy() <= 0)[observed], lost=int((~observed).sum()),
+        past=(rows["trial"].to_numpy() <= 0)[observed], lost=int((~observed & ~failed).sum()),
         on_line=np.all(np.abs(np.delete(U - base, j, axis=1)) <= 1e-9, axis=1),
         scores=scores, next_x=next_x, next_score=next_score, minimisers=minimisers,
         best_x=float(space.from_unit(u_best)[j]), best_y=float(sign * f_best), fixed=fixed, trials=trial,
         kind=space.kind(j), ticks=tuple(space.levels[j]) if j in space.categorical else (),
+        infeasible=rep.limits.infeasible(line) if rep.limits is not None else None,
+        chance=np.exp(post.feasible.log_chance(line)) if post.feasible is not None else None,
+        failed=int(failed.sum()),
     )
 
 
@@ -299,6 +326,8 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         top.plot(snap.x, snap.mean, color="#0072B2", lw=1.8, label="posterior mean", gid="posterior-mean")
         top.plot(snap.x, snap.world, color="#000000", lw=1.3, ls="--", label="true world (hidden from policies)",
                  gid="world")
+    if snap.infeasible is not None and snap.infeasible.any():
+        _shade_infeasible(top, snap.x, snap.infeasible)
     # Trials on the drawn line are shown as observed there; with several inputs the others lie
     # off this slice, so they are drawn at their coordinate along it, in grey, and say so.
     new, on = ~snap.past, snap.on_line
@@ -332,6 +361,9 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         if snap.next_score[label] is not None:
             mid.plot([snap.next_x[label]], [snap.next_score[label]], ls="none", marker="v", ms=7,
                      color=colors[label], mec="#000000", mew=0.5)
+    if snap.chance is not None:
+        mid.plot(snap.x, snap.chance, color="#000000", ls=":", lw=1.4, label="chance of feasibility\n(belief, 0-1)",
+                 gid="feasible-chance")
     mid.set_ylim(-0.04, 1.1)
     mid.set_yticks([0.0, 0.5, 1.0])
     mid.set_ylabel("acquisition\n(scaled to 0-1)")
@@ -383,6 +415,8 @@ def snapshot_figure(study, traces=None, *, replicate=0, policy=None, trial=None,
         title += f" (plus {int(snap.past.sum())} past trials)"
     if snap.lost:
         title += f"; {snap.lost} lost"
+    if snap.failed:
+        title += f"; {snap.failed} failed"
     if snap.fixed:
         held = ", ".join(f"{display_label(k)} = {v if isinstance(v, str) else format(v, '.4g')}"
                          for k, v in snap.fixed.items())

@@ -144,3 +144,21 @@ def test_weight_without_limits_is_refused(tmp_path):
     from command_line import SMALL
     (tmp_path / "s.toml").write_text(SMALL.replace('rule = "ei"\n', 'rule = "ei"\nfeasible = "weight"\n'))
     assert "policy[0].feasible" in one_line(simlab("check", "s.toml", cwd=tmp_path))
+
+
+def test_snapshot_shows_the_feasible_region(active):
+    """The snapshot of a constrained campaign draws the belief's chance of feasibility (a probability) and
+    hatches where the true world breaks the limit: exactly the inputs of the slice that the replicate's
+    own limit check calls infeasible (the same replicate rebuilt from its streams)."""
+    from simlab.report.snapshot import _snapshot_data, snapshot_figure
+    from simlab.worlds.replicate import make_replicate
+    study, frame = active
+    snap = _snapshot_data(study, frame, 0, "weigh", 12, "feed", 50, 101)
+    assert snap.chance is not None and np.all((snap.chance >= 0) & (snap.chance <= 1))
+    rep = make_replicate(study, 0)
+    line = np.column_stack([study.space.to_unit(np.column_stack([snap.x, np.zeros_like(snap.x)]))[:, 0],
+                            np.full(snap.x.size, study.space.to_unit(np.array([[0.0, snap.fixed["temp"]]]))[0, 1])])
+    assert np.array_equal(snap.infeasible, rep.limits.infeasible(line))
+    fig = snapshot_figure(study, frame, replicate=0, policy="weigh", trial=12, samples=50, points=101)
+    gids = {a.get_gid() for ax in fig.axes for a in ax.get_children()}
+    assert "feasible-chance" in gids and ("infeasible" in gids) == bool(snap.infeasible.any())
