@@ -50,7 +50,10 @@ def limits_line(study, limits) -> str:
     horizon = study.campaign.horizon
     rows = limits[(limits["budget"] == horizon) & limits["study_budget"].astype(bool)]
     count, words = ("breaks_mean", "break a limit") if study.limits else ("failed_mean", "fail")
-    parts = [f"{row.policy} {pct_interval(row.rec_breaks_share, row.rec_breaks_low, row.rec_breaks_high)} "
-             f"({fmt_sig(getattr(row, count))} trials {words})" for row in rows.itertuples()]
-    return (f"limits after {horizon} trials, campaigns whose recommendation breaks a limit (mean trials per campaign "
-            f"that {words}): " + "; ".join(parts) + f" ({LIMITS})")
+    parts = []
+    for k, row in enumerate(rows.itertuples()):
+        share = pct_interval(row.rec_breaks_share, row.rec_breaks_low, row.rec_breaks_high)
+        mean = fmt_sig(getattr(row, count))
+        parts.append(f"{row.policy} recommends a setting that breaks a limit in {share} of campaigns and runs {mean} "
+                     f"trials per campaign that {words}" if k == 0 else f"{row.policy} {share} and {mean}")
+    return f"limits after {horizon} trials: " + "; ".join(parts) + f" ({LIMITS})"

@@ -139,9 +139,14 @@ def test_the_command_line_line(written):
     study, _, files, _ = written
     line = limits_line(study, pd.read_csv(files.limits))
     assert "\n" not in line and line.startswith("limits after 8 trials")
+    from simlab.report.cells import fmt_sig
+    from simlab.report.console import pct_interval
     stored = pd.read_csv(files.limits)
     for row in stored[stored["budget"] == 8].itertuples():
+        # the share and its Clopper-Pearson interval as the report prints them, read from limits.csv
         assert f"{row.policy} " in line
+        assert pct_interval(row.rec_breaks_share, row.rec_breaks_low, row.rec_breaks_high) in line
+        assert fmt_sig(row.breaks_mean) in line
     assert line.endswith("(limits.csv)")
 
 
@@ -155,3 +160,16 @@ def test_traces_without_the_columns_are_refused_and_a_plain_study_has_no_limits(
     assert files.limits is None and not (tmp_path / "y" / "limits.csv").exists()
     assert 'id="limit-breaks"' not in page and "<b>Limits:</b>" not in page
     assert "Safety constraints are not modelled" in page
+
+
+def test_run_and_report_print_the_line_for_a_constrained_study_only(written, capsys):
+    # simlab.cli._print_limits, what `simlab run` and `simlab report` call after the budget table
+    from types import SimpleNamespace
+
+    from simlab.cli import _print_limits
+    study, _, files, _ = written
+    _print_limits(SimpleNamespace(path=files.folder, study=study))
+    out = capsys.readouterr().out
+    assert out.count("\n") == 1 and out.startswith("limits after 8 trials")
+    _print_limits(SimpleNamespace(path=files.folder, study=study_with(BASE)))
+    assert capsys.readouterr().out == ""
