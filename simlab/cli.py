@@ -122,6 +122,7 @@ def _run(args) -> int:
     want_report = not args.no_report and not (result.up_to_date and (result.path / "report.html").is_file())
     summary = _write_report(result, success=args.success, quiet=args.quiet) if want_report else None
     print(budget_table(result.study, summary if summary is not None else result.summary()))
+    _print_limits(result)
     if result.up_to_date:
         print(f"\nnothing replayed: {result.path} already held the finished run ({study.replicates} replicates x "
               f"{len(study.policies)} policies)")
@@ -149,6 +150,17 @@ def _write_report(result, *, success: float, quiet: bool):
         if bar is not None:
             bar.close()
     return pd.read_csv(files.summary)
+
+
+def _print_limits(result):
+    """One line on limits after the budget table, for a study with limits or hidden failures (from limits.csv)."""
+    from .report.files import LIMITS
+    path = result.path / LIMITS
+    if result.study.constrained and path.is_file():
+        import pandas as pd
+
+        from .report.console import limits_line
+        print(limits_line(result.study, pd.read_csv(path)))
 
 
 def _check(args) -> int:
@@ -295,6 +307,7 @@ def _report(args) -> int:
     result = load_results(args.folder)
     summary = _write_report(result, success=args.success, quiet=args.quiet)
     print(budget_table(result.study, summary))
+    _print_limits(result)
     print(f"\nreport: {result.path / 'report.html'} (rebuilt from stored traces; no campaign replayed)")
     return 0
 

@@ -19,7 +19,8 @@ ATTITUDES = (
     "lowest failure risk",
     "fewest trials for the requested success level",
 )
-# The fourth attitude, only when the study gives a [target] floor (then alpha is shared by four).
+# The fourth attitude, only when the study gives a [target] floor or has limits (Study.constrained:
+# a trial that breaks a limit or fails is harmful); then alpha is shared by four.
 HARM_ATTITUDE = "fewest harmful trials"
 
 
@@ -151,8 +152,9 @@ def choice_table(
         default "objective unit(s)".
     harm : DataFrame, optional
         Harmful trials of every campaign at `budget`
-        (`simlab.evidence.harm.harm_per_campaign`, for a study with ``[target] floor``): adds
-        the attitude "fewest harmful trials", and alpha is then shared by four attitudes.
+        (`simlab.evidence.harm.harm_per_campaign`, for a study with ``[target] floor`` or with
+        limits and hidden failures, where a trial that breaks a limit or fails is harmful too):
+        adds the attitude "fewest harmful trials", and alpha is then shared by four attitudes.
     harm_difference : float, optional
         Smallest difference in mean harmful trials per campaign that matters; default
         `simlab.evidence.harm.HARM_DIFFERENCE` (0.1, a tenth of a harmful trial per campaign).
@@ -356,7 +358,12 @@ def _harm_row(harm, policies, *, budget, level, alpha, attitudes, confidence_lev
         pairs, ranked[0], ranked[1:], favours_col="harm_favours", p_col="harm_p_holm", test_name="Wilcoxon",
         level=level, alpha=alpha, effect=effect, margin=margin, attitudes=attitudes,
     )
-    floor = f" (true value worse than the floor {float(harm['floor'].iloc[0]):g})" if "floor" in harm.columns else ""
+    if "counted" in harm.columns:       # a study with limits: what harm_per_campaign counted, in its words
+        floor = f" ({harm['counted'].iloc[0]})"
+    elif "floor" in harm.columns:
+        floor = f" (true value worse than the floor {float(harm['floor'].iloc[0]):g})"
+    else:
+        floor = ""
     return _choice_row(HARM_ATTITUDE, f"harmful trials per campaign{floor} in {budget} trials", table, ranked[0],
                        ranked[1], ("harmful_mean", "harmful_low", "harmful_high"), lead, p_value, evidence)
 

@@ -182,3 +182,42 @@ def horizons(traces):
             f"policy {policy!r} has several at trial {t}"
         )
     return low.astype(np.int64)
+
+
+# ---------------------------------------------------------------------------
+# rows that count as a campaign's own trials (harmful trials, limits)
+# ---------------------------------------------------------------------------
+def campaign_trials(traces, budget):
+    """The rows of trials 1 .. `budget`: what a campaign ran within that budget.
+
+    Past trials (``[history]``: trial <= 0, or ``history`` True) never count; the initial design
+    does (its trials are run too). Raises when `budget` lies beyond the traces' last trial."""
+    trial = pd.to_numeric(traces["trial"])
+    if budget > int(trial.max()):
+        raise ValueError(f"budget {budget} is beyond the traces' last trial {int(trial.max())}")
+    rows = traces[(trial >= 1) & (trial <= budget)]
+    if "history" in rows.columns:
+        rows = rows[~rows["history"].to_numpy(dtype=bool)]
+    return rows
+
+
+def flags(rows, column):
+    """A column of true/false flags (bool, or 0/1) as a bool array; anything else raises."""
+    values = rows[column]
+    if values.dtype == bool:
+        return values.to_numpy()
+    numeric = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
+    bad = ~((numeric == 0.0) | (numeric == 1.0))
+    if bad.any():
+        raise ValueError(f"`traces[{column!r}]` must hold true/false flags; found {values[bad].iloc[0]!r}")
+    return numeric == 1.0
+
+
+def horizon_aware(traces, top):
+    """Labels of the policies whose trials 1 .. came from campaigns planned for a budget other than
+    `top` (the largest) at some trial: horizon-aware rules replayed once per budget. Empty without
+    a ``horizon`` column."""
+    if "horizon" not in traces.columns:
+        return set()
+    return set(traces.loc[traces["trial"] >= 1].groupby("policy", observed=True)["horizon"]
+               .agg(lambda h: bool((h != top).any())).pipe(lambda s: s[s].index.astype(str)))

@@ -1,10 +1,11 @@
-"""Harmful trials: per policy and budget, the trials whose true value is worse than ``[target] floor``,
-the share of campaigns with any, and the shortfall of the trials themselves against the world's best."""
+"""Harmful trials: per policy and budget, the trials whose true value is worse than ``[target] floor``
+(or, in a study with limits, that break a limit or fail), the share of campaigns with any, and the
+shortfall of the trials themselves against the world's best."""
 
 from __future__ import annotations
 
-__all__ = ["harm_per_campaign", "harm_table", "harm_pairs", "count_mean_interval", "skew_mean_interval",
-           "HARM_DIFFERENCE", "FEW"]
+__all__ = ["harm_per_campaign", "harm_table", "harm_pairs", "count_mean_interval", "count_summary",
+           "skew_mean_interval", "HARM_DIFFERENCE", "FEW", "HARM_LIMIT_COLUMNS"]
 
 from itertools import combinations
 
@@ -12,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from .compare import _signed_rank_sum, _wilcoxon_p, holm_adjust
-from .frame import check_probability, policy_order
+from .frame import campaign_trials, check_probability, flags, horizon_aware, policy_order
 from .intervals import bounded_mean_interval, share_interval
 
 # Smallest difference in harmful trials per campaign that matters for a clear lead: a tenth of a
@@ -29,6 +30,12 @@ FEW = 10
 
 _NEEDED = ("policy", "replicate", "trial", "initial", "f", "regret", "rec_trial")
 
+# The traces' limit columns (simlab.columns.LIMIT_COLUMNS) that make a trial harmful wherever they
+# are present, with the words harm.csv's ``counted`` column gives them: the trial broke a limit,
+# or it failed (spent the budget and returned nothing). ``rec_breaks`` is about the recommendation,
+# not the trial, and is counted in limits.csv.
+HARM_LIMIT_COLUMNS = {"breaks": "breaks a limit", "failed": "failed"}
+
 
 def _check(traces):
     if not isinstance(traces, pd.DataFrame):
@@ -44,12 +51,31 @@ def _reference(traces, sign):
     ``regret = sign * (f[rec] - reference)`` on every row, so ``reference = f[rec] - sign * regret``
     at any row; the rows of the last trial are used. It equals ``reference`` of worlds.csv up to
     rounding (tests/unit/test_harm.py)."""
+    if "rec_breaks" in traces.columns:
+        return _feasible_reference(traces, sign)
     last = traces[traces["trial"] == traces["trial"].max()]
     f = traces.set_index(["policy", "replicate", "trial"])["f"]
     keys = pd.MultiIndex.from_arrays([last["policy"].to_numpy(), last["replicate"].to_numpy(),
                                       last["rec_trial"].to_numpy()])
     best = f.reindex(keys).to_numpy(dtype=float) - sign * last["regret"].to_numpy(dtype=float)
     return pd.Series(best, index=last["replicate"].to_numpy()).groupby(level=0).first()
+
+
+def _feasible_reference(traces, sign):
+    """`_reference` for traces with ``rec_breaks``: where the recommendation breaks a limit its regret
+    is a penalty, not ``sign * (f[rec] - reference)``, so the reference is read from the rows whose
+    recommendation breaks none (any of them: they all give it, up to rounding)."""
+    rows = traces[(pd.to_numeric(traces["trial"]) >= 0) & ~flags(traces, "rec_breaks")]
+    f = traces.set_index(["policy", "replicate", "trial"])["f"]
+    keys = pd.MultiIndex.from_arrays([rows["policy"].to_numpy(), rows["replicate"].to_numpy(),
+                                      rows["rec_trial"].to_numpy()])
+    best = f.reindex(keys).to_numpy(dtype=float) - sign * rows["regret"].to_numpy(dtype=float)
+    best = pd.Series(best, index=rows["replicate"].to_numpy()).dropna().groupby(level=0).first()
+    missing = sorted(set(traces["replicate"]) - set(best.index))
+    if missing:
+        raise ValueError(f"the world's best value cannot be read back from the traces for replicate(s) {missing[:5]}: "
+                         "every recommendation there breaks a limit; pass `reference` (worlds.csv)")
+    return best
 
 
 def harm_per_campaign(traces, *, floor, sign, budget, reference=None):
@@ -59,9 +85,11 @@ def harm_per_campaign(traces, *, floor, sign, budget, reference=None):
     ----------
     traces : DataFrame
         Traces of a study (columns ``policy, replicate, trial, initial, f, regret, rec_trial``;
-        ``history`` if present), ``f`` in the user's orientation.
-    floor : float
-        ``[target] floor`` in objective units.
+        ``history`` if present; ``breaks``, ``failed`` and ``rec_breaks`` in a study with limits
+        or hidden failures), ``f`` in the user's orientation.
+    floor : float or None
+        ``[target] floor`` in objective units; None when the study has none (then the traces must
+        hold a limit column: something has to make a trial harmful).
     sign : float
         ``Study.sign``: +1 when the goal is to minimise (a trial above the floor is harmful),
         -1 when it is to maximise (a trial below the floor is harmful).
@@ -75,33 +103,39 @@ def harm_per_campaign(traces, *, floor, sign, budget, reference=None):
     -------
     DataFrame
         One row per campaign: ``policy, replicate, trials, harmful, own_trials, own_harmful,
-        shortfall, floor``. ``harmful`` counts trials 1 .. budget, the shared initial design included
-        (its trials are run too); ``own_*`` only the policy's own trials after the design. Past
-        trials (``[history]``, trial <= 0) never count. A lost trial counts: it was run, only
-        its result was lost. ``shortfall`` is the sum over the same trials as ``harmful`` of
+        shortfall, floor`` (``floor`` NaN without one), and ``counted`` (what made a trial harmful,
+        in words) when the traces have limit columns. A trial is harmful when its true value is
+        worse than the floor (a trial exactly at the floor is not), or, where the columns of
+        :data:`HARM_LIMIT_COLUMNS` are present, when it breaks a limit or failed. ``harmful``
+        counts trials 1 .. budget, the shared initial design included (its trials are run too);
+        ``own_*`` only the policy's own trials after the design. Past trials (``[history]``,
+        trial <= 0) never count. A lost trial counts by its true value: it was run, only its
+        result was lost. ``shortfall`` is the sum over the same trials as ``harmful`` of
         ``sign * (f - reference)``: how far each trial itself fell short of the world's best,
-        the in-campaign cost when every trial is a product. A trial exactly at the floor is not
-        harmful.
+        the in-campaign cost when every trial is a product; a trial without a true value
+        (``f`` NaN, as a failed trial may be) adds nothing to it.
     """
     _check(traces)
     if sign not in (1.0, -1.0):
         raise ValueError(f"`sign` must be 1 or -1; got {sign!r}")
-    floor = float(floor)
-    if not np.isfinite(floor):
-        raise ValueError(f"`floor` must be a finite number; got {floor!r}")
-    trial = pd.to_numeric(traces["trial"])
-    if budget > int(trial.max()):
-        raise ValueError(f"budget {budget} is beyond the traces' last trial {int(trial.max())}")
+    limits = [c for c in HARM_LIMIT_COLUMNS if c in traces.columns]
+    if floor is None and not limits:
+        raise ValueError("`floor` is None and `traces` has no limit column "
+                         f"({', '.join(HARM_LIMIT_COLUMNS)}): nothing would make a trial harmful")
+    if floor is not None:
+        floor = float(floor)
+        if not np.isfinite(floor):
+            raise ValueError(f"`floor` must be a finite number; got {floor!r}")
     best = _reference(traces, sign) if reference is None else pd.Series(reference)
-    rows = traces[(trial >= 1) & (trial <= budget)]
-    if "history" in rows.columns:
-        rows = rows[~rows["history"].to_numpy(dtype=bool)]
+    rows = campaign_trials(traces, budget)
     f = rows["f"].to_numpy(dtype=float)
     replicate = rows["replicate"].to_numpy()
     if not np.isin(replicate, best.index.to_numpy()).all():
         raise ValueError("`reference` has no value for some replicate of the traces")
     own = ~rows["initial"].to_numpy(dtype=bool)
-    harmful = sign * (f - floor) > 0
+    harmful = sign * (f - floor) > 0 if floor is not None else np.zeros(len(rows), dtype=bool)
+    for column in limits:
+        harmful = harmful | flags(rows, column)
     frame = pd.DataFrame({
         "policy": rows["policy"].astype(str).to_numpy(), "replicate": replicate,
         "harmful": harmful, "own": own, "own_harmful": harmful & own,
@@ -110,10 +144,19 @@ def harm_per_campaign(traces, *, floor, sign, budget, reference=None):
     per = frame.groupby(["policy", "replicate"], sort=False).agg(
         trials=("harmful", "size"), harmful=("harmful", "sum"), own_trials=("own", "sum"),
         own_harmful=("own_harmful", "sum"), shortfall=("shortfall", "sum")).reset_index()
-    per["floor"] = floor
+    per["floor"] = floor if floor is not None else np.nan
+    if limits:
+        per["counted"] = _counted_words(floor, sign, limits)
     order = {p: i for i, p in enumerate(map(str, policy_order(traces)))}
     per = per.sort_values(["policy", "replicate"], key=lambda c: c.map(order) if c.name == "policy" else c)
     return per.reset_index(drop=True)
+
+
+def _counted_words(floor, sign, limits):
+    """What made a trial harmful, e.g. "true value above the floor 0.5, breaks a limit or failed"."""
+    words = ([] if floor is None else [f"true value {'above' if sign > 0 else 'below'} the floor {floor:g}"])
+    words += [HARM_LIMIT_COLUMNS[c] for c in limits]
+    return words[0] if len(words) == 1 else ", ".join(words[:-1]) + " or " + words[-1]
 
 
 def skew_mean_interval(x, confidence_level):
@@ -179,6 +222,16 @@ def count_mean_interval(x, low, high, confidence_level):
     return bounded_mean_interval(x, low, high, confidence_level)
 
 
+def count_summary(name, counts, trials, confidence_level):
+    """``{name}_mean, {name}_low, {name}_high`` of per-campaign counts of trials, each in 0 .. `trials`.
+
+    The mean over campaigns and `count_mean_interval` on [0, trials]: the one way every table
+    (harm.csv, limits.csv) summarises a count of trials per campaign."""
+    x = np.asarray(counts, dtype=float)
+    low, high = count_mean_interval(x, 0.0, float(trials), confidence_level)
+    return {f"{name}_mean": x.mean(), f"{name}_low": low, f"{name}_high": high}
+
+
 def harm_table(traces, *, floor, sign, budgets, initial, reference=None, confidence_level=0.95):
     """Per policy and budget: harmful trials per campaign, campaigns with any, and the shortfall.
 
@@ -199,7 +252,9 @@ def harm_table(traces, *, floor, sign, budgets, initial, reference=None, confide
         trials, harmful_mean, harmful_low, harmful_high, own_trials, own_harmful_mean,
         own_harmful_low, own_harmful_high, campaigns_harmed, harmed_share, harmed_low,
         harmed_high, own_campaigns_harmed, own_harmed_share, own_harmed_low, own_harmed_high,
-        shortfall_mean, shortfall_low, shortfall_high, horizon_aware``.
+        shortfall_mean, shortfall_low, shortfall_high, horizon_aware``, and ``counted`` (what
+        made a trial harmful, in words: the floor, breaking a limit, failing) when the traces have
+        limit columns; ``floor`` is NaN in a study with limits but no floor.
 
     Notes
     -----
@@ -220,11 +275,7 @@ def harm_table(traces, *, floor, sign, budgets, initial, reference=None, confide
     campaigns planned for different budgets (as ``within_target.csv`` does between budgets).
     """
     confidence_level = check_probability("confidence_level", confidence_level)
-    aware = set()
-    if "horizon" in traces.columns:
-        top = max(budgets)
-        aware = set(traces.loc[traces["trial"] >= 1].groupby("policy", observed=True)["horizon"]
-                    .agg(lambda h: bool((h != top).any())).pipe(lambda s: s[s].index.astype(str)))
+    aware = horizon_aware(traces, max(budgets))
     rows = []
     for budget in sorted(budgets):
         per = harm_per_campaign(traces, floor=floor, sign=sign, budget=budget, reference=reference)
@@ -233,22 +284,21 @@ def harm_table(traces, *, floor, sign, budgets, initial, reference=None, confide
             n = len(mine)
             harmful = mine["harmful"].to_numpy(dtype=float)
             own = mine["own_harmful"].to_numpy(dtype=float)
-            lo, hi = count_mean_interval(harmful, 0.0, float(budget), confidence_level)
-            own_lo, own_hi = count_mean_interval(own, 0.0, float(own_trials), confidence_level)
             hit, own_hit = int((harmful > 0).sum()), int((own > 0).sum())
             share_lo, share_hi = share_interval(hit, n, confidence_level)
             own_share_lo, own_share_hi = share_interval(own_hit, n, confidence_level)
             short_lo, short_hi = skew_mean_interval(mine["shortfall"], confidence_level)
             rows.append({
-                "policy": policy, "budget": budget, "replicates": n, "floor": float(floor), "trials": budget,
-                "harmful_mean": harmful.mean(), "harmful_low": lo, "harmful_high": hi,
-                "own_trials": own_trials, "own_harmful_mean": own.mean(), "own_harmful_low": own_lo,
-                "own_harmful_high": own_hi,
+                "policy": policy, "budget": budget, "replicates": n,
+                "floor": float(floor) if floor is not None else np.nan, "trials": budget,
+                **count_summary("harmful", harmful, budget, confidence_level),
+                "own_trials": own_trials, **count_summary("own_harmful", own, own_trials, confidence_level),
                 "campaigns_harmed": hit, "harmed_share": hit / n, "harmed_low": float(share_lo),
                 "harmed_high": float(share_hi), "own_campaigns_harmed": own_hit, "own_harmed_share": own_hit / n,
                 "own_harmed_low": float(own_share_lo), "own_harmed_high": float(own_share_hi),
                 "shortfall_mean": float(mine["shortfall"].mean()), "shortfall_low": short_lo,
                 "shortfall_high": short_hi, "horizon_aware": policy in aware,
+                **({"counted": mine["counted"].iloc[0]} if "counted" in mine.columns else {}),
             })
     table = pd.DataFrame(rows)
     order = {p: i for i, p in enumerate(map(str, policy_order(traces)))}

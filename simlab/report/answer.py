@@ -1,7 +1,7 @@
 """The answer first: one short paragraph from the decision tables, then one line per budget the study asked about.
 
-Every number is a tagged cell (`Cells`) of choice.csv, budget_plan.csv, within_target.csv or
-summary.csv, so a test can trace each one; only the study's own settings (target, budgets,
+Every number is a tagged cell (`Cells`) of choice.csv, budget_plan.csv, within_target.csv,
+summary.csv, stopping.csv or limits.csv, so a test can trace each one; only the study's own settings (target, budgets,
 success level) are written as plain numbers.
 """
 
@@ -13,7 +13,8 @@ import numpy as np
 
 from ..evidence import choice as choice_rules
 from .cells import Cells, escape, fmt_pct, is_missing, number, unit_words
-from .files import STOPPING, WITHIN_TARGET
+from .files import LIMITS, STOPPING, WITHIN_TARGET
+from .limits_section import limit_title
 
 _, _ATTITUDE_FAILURE, _ = choice_rules.ATTITUDES
 
@@ -77,6 +78,7 @@ def answer_section(study, tables, summary, plan, choice, sweep, success):
     level = fmt_pct(success)
     target = f"{number(study.target)} {unit_words(study, study.target)}"
     parts = [f"<p>{_who(study, choice, i)} "]
+    booked = horizon
     if not is_missing(plan.value(k, "budget_conservative")):
         booked = int(plan.value(k, "budget_conservative"))
         j = within.row(policy=policy, trial=booked)
@@ -99,6 +101,8 @@ def answer_section(study, tables, summary, plan, choice, sweep, success):
             f"of simulated campaigns (95 % interval), a residual <i>miss risk</i> ({MISS_RISK_WORDS}) of "
             f"{summary.pct(r, 'failure_risk', 'failure_low', 'failure_high')}. To defend a number, simulate larger "
             "budgets (<code>[campaign] budgets</code>) or more replicates. ")
+    if LIMITS in tables:
+        parts.append(_limit_words(study, tables[LIMITS], policy, booked))
     if STOPPING in tables:
         parts.append(_stopping_words(tables[STOPPING], policy, success))
     if sweep is not None:
@@ -123,6 +127,24 @@ def answer_section(study, tables, summary, plan, choice, sweep, success):
     return ('<section id="answer"><h2>0. The answer</h2><div class="box answer">' + "".join(parts)
             + f"<p>The budgets asked about ({asked} trials), for {escape(policy)}:</p>"
             + f'<ul class="budgets">{"".join(lines)}</ul></div></section>')
+
+
+def _limit_words(study, frame, policy, budget):
+    """One sentence on limits for the recommended policy at the budget to book (limits.csv holds that row)."""
+    cells = Cells(LIMITS, frame)
+    i = cells.row(policy=policy, budget=budget)
+    fails = study.world.fails_where is not None
+    counts = []
+    if study.limits:
+        counts.append(f"{cells.sig(i, 'breaks_mean', 'breaks_low', 'breaks_high')} trials that break a limit")
+    if fails:
+        counts.append(f"{cells.sig(i, 'failed_mean', 'failed_low', 'failed_high')} that fail" if counts else
+                      f"{cells.sig(i, 'failed_mean', 'failed_low', 'failed_high')} trials that fail")
+    return (f"<b>Limits:</b> at {budget} trials its recommendation breaks a limit"
+            f"{' or lies where trials fail' if fails else ''} in "
+            f"{cells.pct(i, 'rec_breaks_share', 'rec_breaks_low', 'rec_breaks_high')} of simulated campaigns, and "
+            f"a campaign runs on average {' and '.join(counts)} (95 % intervals; section “{limit_title(study)}”). "
+            "These limits are only as good as their priors. ")
 
 
 def _stopping_words(frame, policy, success):

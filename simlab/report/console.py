@@ -1,12 +1,13 @@
-"""What the command line prints: the budget table, shares with intervals, budgets, durations."""
+"""What the command line prints: the budget table, one line on limits, shares with intervals, budgets, durations."""
 
 from __future__ import annotations
 
 import pandas as pd
 
-from .cells import fmt_pct, unit_label
+from .cells import fmt_pct, fmt_sig, unit_label
+from .files import LIMITS
 
-__all__ = ["budget_table", "budget_text", "duration", "pct_interval"]
+__all__ = ["budget_table", "budget_text", "duration", "pct_interval", "limits_line"]
 
 
 def duration(seconds: float) -> str:
@@ -40,3 +41,19 @@ def budget_table(study, summary) -> str:
         within = pct_interval(row.within_target, row.within_low, row.within_high)
         lines.append(f"{str(row.policy)[:20]:<20} {row.budget:>6}  {band:<30} {within:>28}")
     return "\n".join(lines)
+
+
+def limits_line(study, limits) -> str:
+    """One line on limits after the largest budget, per policy: the share of campaigns whose recommendation
+    breaks a limit, with its exact interval, and the mean trials per campaign that break a limit (or fail,
+    in a study with hidden failures only), from limits.csv (`simlab.evidence.limits.limit_table`)."""
+    horizon = study.campaign.horizon
+    rows = limits[(limits["budget"] == horizon) & limits["study_budget"].astype(bool)]
+    count, words = ("breaks_mean", "break a limit") if study.limits else ("failed_mean", "fail")
+    parts = []
+    for k, row in enumerate(rows.itertuples()):
+        share = pct_interval(row.rec_breaks_share, row.rec_breaks_low, row.rec_breaks_high)
+        mean = fmt_sig(getattr(row, count))
+        parts.append(f"{row.policy} recommends a setting that breaks a limit in {share} of campaigns and runs {mean} "
+                     f"trials per campaign that {words}" if k == 0 else f"{row.policy} {share} and {mean}")
+    return f"limits after {horizon} trials: " + "; ".join(parts) + f" ({LIMITS})"

@@ -188,11 +188,7 @@ def _limits(study):
         "differently, the ranking of policies and the budgets can change.</li>"
         + belief_note
         + _noise_limit(study.world)
-        + "<li><b>Safety constraints are not modelled.</b> Every input in the box is assumed safe to run; "
-        "limits on temperature, pressure, dose or any other hazard are not part of the simulation, and "
-        + ("trials fail only at random, never because of the setting chosen."
-           if study.world.lost else "every trial is assumed to return a measurement.")
-        + "</li>"
+        + _safety_limit(study)
         + ("<li><b>Refits follow one recipe.</b> The model is refitted by maximum likelihood on a fixed "
            "schedule; a team that refits differently, or by judgement, may see different campaigns.</li>"
            if study.refit_every else
@@ -202,6 +198,26 @@ def _limits(study):
         "nothing about whether the assumptions hold.</li>"
         "</ul></section>"
     )
+
+
+def _safety_limit(study):
+    """What the simulation assumes about safety and failed trials."""
+    if not study.constrained:
+        return ("<li><b>Safety constraints are not modelled.</b> Every input in the box is assumed safe to run; "
+                "limits on temperature, pressure, dose or any other hazard are not part of the simulation, and "
+                + ("trials fail only at random, never because of the setting chosen."
+                   if study.world.lost else "every trial is assumed to return a measurement.")
+                + "</li>")
+    stated = []
+    if study.limits:
+        stated.append("the limits stated (" + escape("; ".join(limit.words() for limit in study.limits)) + ")")
+    if study.world.fails_where is not None:
+        stated.append("a region where trials fail")
+    return ("<li><b>Only " + " and ".join(stated) + " are modelled, and only as well as their priors.</b> Each is "
+            "drawn for every world from the prior the study gives it, independently of the objective; the real "
+            "quantity may be rougher, larger or tied to the objective, and any other limit on temperature, "
+            "pressure, dose or another hazard is not part of the simulation: an input that breaks none of the "
+            "stated limits is not thereby safe to run.</li>")
 
 
 def _noise_limit(w):

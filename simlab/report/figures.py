@@ -222,8 +222,13 @@ class HarmFigure(Figure):
         return HARM in tables
 
     def caption(self, study, success):
+        if study.constrained:
+            from .harmful import harm_words
+            counted = f"a trial is harmful when {harm_words(study)}"
+        else:
+            counted = f"true value worse than the floor of {number(study.floor)} {unit_words(study)}"
         return (f"Each policy after {study.campaign.horizon} trials: the mean number of harmful trials per "
-                f"campaign (true value worse than the floor of {number(study.floor)} {unit_words(study)}, the "
+                f"campaign ({counted}, the "
                 "shared initial design included) against the median regret of what it recommends, with the 95 % "
                 f"intervals of both (<code>{HARM}</code>, <code>{SUMMARY}</code>). Cautious rules sit to the "
                 "left, bold ones lower down; the dashed line is the target.")
@@ -231,8 +236,12 @@ class HarmFigure(Figure):
     def draw(self, given):
         from . import plots
         s = given.study
+        what = None
+        if s.constrained:
+            from .harmful import harm_words
+            what = harm_words(s, html=False)
         return plots.harm_figure(given.tables[HARM], given.tables[SUMMARY], budget=s.campaign.horizon,
-                                 target=s.target, floor=s.floor, colors=given.colors, units=unit_label(s))
+                                 target=s.target, floor=s.floor, colors=given.colors, units=unit_label(s), what=what)
 
 
 class SnapshotFigure(Figure):

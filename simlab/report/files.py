@@ -13,7 +13,8 @@ PAIRWISE = "pairwise.csv"
 CHOICE = "choice.csv"
 BUDGET_PLAN = "budget_plan.csv"
 PLACEMENT = "placement.csv"
-HARM = "harm.csv"               # only with [target] floor
+HARM = "harm.csv"               # only with [target] floor, or limits (Study.constrained)
+LIMITS = "limits.csv"           # only with limits or hidden failures (Study.constrained)
 STOPPING = "stopping.csv"
 STOPPING_CURVES = "stopping_curves.csv"
 REPORT = "report.html"
@@ -24,5 +25,5 @@ FIGURES = "figures"
 
 # what a report writes at the top of the folder (worlds.csv and the sweep's files are the runner's)
 TABLES = (SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, PAIRWISE, CHOICE, BUDGET_PLAN, WITHIN_TARGET, PLACEMENT,
-          STOPPING, STOPPING_CURVES, REPORT, HARM)
+          STOPPING, STOPPING_CURVES, REPORT, HARM, LIMITS)
 FIGURE_FORMATS = ("png", "svg")

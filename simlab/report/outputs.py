@@ -10,14 +10,16 @@ from pathlib import Path
 import pandas as pd
 
 from ..evidence import choice, compare, frame, metrics, reach
+from ..columns import LIMIT_COLUMNS
 from ..evidence.harm import harm_per_campaign, harm_table
+from ..evidence.limits import limit_table
 from ..evidence.placement import box_view, placement_table
 from ..replay.store import atomic_write
 from .figures import FIGURES as FIGURE_REGISTRY
 from .figures import FigureInput
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, REPORT, STOPPING, STOPPING_CURVES,
-                    SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET,
-                    WORLDS)
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, LIMITS, PAIRWISE, PLACEMENT, REPORT, STOPPING,
+                    STOPPING_CURVES, SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY,
+                    WITHIN_TARGET, WORLDS)
 from .page import render
 
 
@@ -36,15 +38,16 @@ class ReportFiles:
     figures: tuple[Path, ...] = field(default=())
     within_target: Path | None = None   # within_target.csv (always written; a default keeps old callers working)
     placement: Path | None = None       # placement.csv (always written; a default keeps old callers working)
-    harm: Path | None = None            # harm.csv (only with [target] floor)
+    harm: Path | None = None            # harm.csv (only with [target] floor or limits)
+    limits: Path | None = None          # limits.csv (only with limits or hidden failures: Study.constrained)
     stopping: Path | None = None        # stopping.csv, only for a study with [[stop]] rules
     stopping_curves: Path | None = None  # stopping_curves.csv, likewise
 
     def paths(self) -> tuple[Path, ...]:
         """Every file written, CSVs first, then figures, then the report."""
         tables = (self.summary, self.within_target, self.trials_to_target, self.trials_to_target_summary,
-                  self.budget_plan, self.pairwise, self.choice, self.placement, self.harm, self.stopping,
-                  self.stopping_curves)
+                  self.budget_plan, self.pairwise, self.choice, self.placement, self.harm, self.limits,
+                  self.stopping, self.stopping_curves)
         return tuple(p for p in tables if p is not None) + self.figures + (self.report,)
 
 
@@ -89,7 +92,10 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         (`trials_to_target_summary`, median and the success level),
         ``pairwise.csv`` (at the largest budget) and ``choice.csv`` (both only with two
         or more policies), ``harm.csv`` (`simlab.evidence.harm.harm_table`, only with
-        ``[target] floor``), the figures and ``report.html``.
+        ``[target] floor`` or limits: a trial that breaks a limit or fails is harmful too),
+        ``limits.csv`` (`simlab.evidence.limits.limit_table`, only for a study with limits or
+        hidden failures, at the study's budgets and at the budget each policy's plan books),
+        the figures and ``report.html``.
 
     Notes
     -----
@@ -99,6 +105,10 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     the files.
     """
     success = frame.check_probability("success", success, closed_high=True)
+    if study.constrained and not set(LIMIT_COLUMNS) <= set(traces.columns):
+        missing = [c for c in LIMIT_COLUMNS if c not in traces.columns]
+        raise ValueError(f"study {study.name!r} has limits or hidden failures, but `traces` lacks the column(s) "
+                         f"{missing} that record them")
     folder = Path(folder)
     step = progress if progress is not None else (lambda n: None)
     target, budgets, horizon = study.target, list(study.campaign.budgets), study.campaign.horizon
@@ -127,12 +137,16 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     paths[BUDGET_PLAN] = _write_csv(tables[BUDGET_PLAN], BUDGET_PLAN)
     step(1)
     harm = None
-    if study.floor is not None:   # harmful trials (no step of its own: it is quick)
+    if study.floor is not None or study.constrained:   # harmful trials (no step of its own: it is quick)
         reference = _reference(folder)
         tables[HARM] = harm_table(traces, floor=study.floor, sign=study.sign, budgets=budgets,
                                   initial=study.campaign.initial, reference=reference)
         paths[HARM] = _write_csv(tables[HARM], HARM)
         harm = harm_per_campaign(traces, floor=study.floor, sign=study.sign, budget=horizon, reference=reference)
+    if study.constrained:   # limits and failed trials (quick too), also at each plan's booked budget for the answer
+        booked = tables[BUDGET_PLAN]["budget_conservative"].dropna().astype(int)
+        tables[LIMITS] = limit_table(traces, study, budgets=sorted(set(budgets) | {int(b) for b in booked}))
+        paths[LIMITS] = _write_csv(tables[LIMITS], LIMITS)
     if several:
         tables[PAIRWISE] = compare.pairwise(traces, budget=horizon, target=target)
         paths[PAIRWISE] = _write_csv(tables[PAIRWISE], PAIRWISE)
@@ -186,7 +200,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
         trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
         pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
-        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM),
+        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM), limits=paths.get(LIMITS),
         stopping=paths.get(STOPPING), stopping_curves=paths.get(STOPPING_CURVES),
     )
 

@@ -15,10 +15,12 @@ from .answer import MISS_RISK_WORDS, answer_section
 from .cells import Cells, escape, fmt_pct, is_missing, number, unit_words
 from .describe import _assumptions, _cautions, _limits, _question
 from .figures import FIGURES as FIGURE_REGISTRY
-from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, PAIRWISE, PLACEMENT, STOPPING, STOPPING_CURVES, SUMMARY,
-                    SWEEP_RANKING, SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET, WORLDS)
-from .harmful import harm_section
+from .files import (BUDGET_PLAN, CHOICE, FIGURES, HARM, LIMITS, PAIRWISE, PLACEMENT, STOPPING, STOPPING_CURVES,
+                    SUMMARY, SWEEP_RANKING, SWEEP_SUMMARY, TRIALS_TO_TARGET, TRIALS_TO_TARGET_SUMMARY, WITHIN_TARGET,
+                    WORLDS)
+from .harmful import harm_section, harm_words
 from .landing import placement_section
+from .limits_section import limits_section
 from .stop_section import stopping_section
 
 _ATTITUDE_REGRET, _ATTITUDE_FAILURE, _ATTITUDE_TRIALS = choice.ATTITUDES
@@ -95,6 +97,7 @@ def render(study, tables, images, *, success):
     sweep = Cells(SWEEP_RANKING, tables[SWEEP_RANKING]) if SWEEP_RANKING in tables else None
     placement = Cells(PLACEMENT, tables[PLACEMENT]) if PLACEMENT in tables else None
     harm = Cells(HARM, tables[HARM]) if HARM in tables else None
+    limits = Cells(LIMITS, tables[LIMITS]) if LIMITS in tables else None
     title = f"Choosing a policy and a trial budget: {study.name}"
     parts = [
         "<!DOCTYPE html>",
@@ -110,14 +113,14 @@ def render(study, tables, images, *, success):
         _plan_section(study, plan, success),
         stopping_section(study, tables, choice, _figures_in("stopping", study, images, success), success),
         _optimum_warning(study, tables.get(WORLDS)),
-        _results(study, summary, reach, pairs, images, success, placement, harm=harm, choice=choice),
+        _results(study, summary, reach, pairs, images, success, placement, harm=harm, choice=choice, limits=limits),
         _sweep_section(study, sweep, images, tables.get(SWEEP_SUMMARY)) if sweep is not None else "",
         _limits(study),
         _cautions(),
         _question(study, success),     # the appendix: the question as asked, the assumptions and method
         _assumptions(study, __version__),
         _files_section(pairs is not None, bool(images), sweep is not None, placement is not None, harm is not None,
-                       bool(study.stops)),
+                       bool(study.stops), has_limits=limits is not None, constrained=study.constrained),
         (f"<footer>Written by simlab {escape(__version__)} from the stored traces of study "
          f"“{escape(study.name)}”. Rebuilding it from the same traces and seed gives the same numbers.</footer>"),
         "</body></html>",
@@ -308,7 +311,7 @@ def _pairwise_table(study, pairs):
     )
 
 
-def _results(study, summary, reach, pairs, images, success, placement=None, *, harm=None, choice=None):
+def _results(study, summary, reach, pairs, images, success, placement=None, *, harm=None, choice=None, limits=None):
     horizon = study.campaign.horizon
     parts = [
         '<section id="results"><h2>3. Results and risks</h2>',
@@ -352,6 +355,7 @@ def _results(study, summary, reach, pairs, images, success, placement=None, *, h
     if placement is not None:
         parts.append(placement_section(study, placement, _figures_in("placement", study, images, success)))
     parts.append(harm_section(study, harm, _figures_in("harm", study, images, success), choice, _ATTITUDE_HARM))
+    parts.append(limits_section(study, limits))
     parts.append(_figures_in("snapshot", study, images, success))
     parts.append("</section>")
     return "".join(parts)
@@ -419,9 +423,11 @@ def _choice_section(study, summary, choice, success):
                  f"to end within the target): {leader} needs {_choice_trials(choice, i, 'leader', horizon)}; "
                  f"{runner} needs {_choice_trials(choice, i, 'runner_up', horizon)}.")
         elif attitude == _ATTITUDE_HARM:
-            s = (f"<b>If every trial that fails specification is costly</b> (fewest harmful trials, true value "
-                 f"{'below' if study.goal == 'maximize' else 'above'} the floor of {number(study.floor)} "
-                 f"{unit_words(study, study.floor)}): {leader} runs "
+            counted = (f"a trial is harmful when {harm_words(study)}" if study.constrained else
+                       f"true value {'below' if study.goal == 'maximize' else 'above'} the floor of "
+                       f"{number(study.floor)} {unit_words(study, study.floor)}")
+            s = (f"<b>If every trial that fails specification is costly</b> (fewest harmful trials, "
+                 f"{counted}): {leader} runs "
                  f"{choice.sig(i, 'leader_value', 'leader_low', 'leader_high')} harmful trials per campaign in "
                  f"{horizon} trials; {runner} "
                  f"{choice.sig(i, 'runner_up_value', 'runner_up_low', 'runner_up_high')}.")
@@ -512,7 +518,8 @@ def _plan_section(study, plan, success):
     )
 
 
-def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False, has_harm=False, has_stops=False):
+def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False, has_harm=False, has_stops=False, *,
+                   has_limits=False, constrained=False):
     files = [
         (SUMMARY, "regret, within-target share, failure risk and CVaR-90 per policy and budget"),
         (WITHIN_TARGET, "share of campaigns within target after each trial, with its interval: budgets are "
@@ -530,8 +537,14 @@ def _files_section(has_pairs, has_figures, has_sweep=False, has_placement=False,
     if has_placement:
         files.append((PLACEMENT, "share of each policy's own trials on the boundary of the box and in its corners"))
     if has_harm:
-        files.append((HARM, "harmful trials per campaign (worse than [target] floor), campaigns with any, and the "
+        counted = ("worse than [target] floor, breaking a limit or failing" if constrained else
+                   "worse than [target] floor")
+        files.append((HARM, f"harmful trials per campaign ({counted}), campaigns with any, and the "
                             "trials' own shortfall, per policy and budget"))
+    if has_limits:
+        files.append((LIMITS, "trials that break a limit and trials that fail per campaign, and the share of "
+                              "campaigns whose recommendation breaks a limit, per policy and budget (also at the "
+                              "budget each policy's plan books)"))
     if has_stops:
         files += [(STOPPING, "per policy and stopping rule: trials used and saved, regret and miss risk at the stop, "
                              "the paired difference against the full budget"),

@@ -549,7 +549,7 @@ def placement_figure(trials, *, names, low, high, band=0.01, placement=None, col
     return fig
 
 
-def harm_figure(harm, summary, *, budget, target, floor, colors=None, ax=None, units="objective units"):
+def harm_figure(harm, summary, *, budget, target, floor, colors=None, ax=None, units="objective units", what=None):
     """Final regret against harmful trials per campaign: one point per policy, 95 % intervals both ways.
 
     Parameters
@@ -564,13 +564,17 @@ def harm_figure(harm, summary, *, budget, target, floor, colors=None, ax=None, u
         The budget both are read at (the largest).
     target : float
         Regret tolerance, drawn as a dashed horizontal line.
-    floor : float
+    floor : float or None
         ``[target] floor``, for the axis label.
     colors : dict, optional
         `policy_colors` mapping.
     ax : matplotlib Axes, optional
     units : str
         The objective's unit.
+    what : str, optional
+        What made a trial harmful, for the axis label (a study with limits: "its true value is above
+        the floor of 0.5 MPa, it breaks a limit (viscosity below 40) or it fails ..."); default: worse
+        than `floor`.
 
     Returns
     -------
@@ -600,7 +604,10 @@ def harm_figure(harm, summary, *, budget, target, floor, colors=None, ax=None, u
         ax.text(0.0, target, f" target {target:g} {units}", transform=ax.get_yaxis_transform(), fontsize=8,
                 va="bottom", ha="left")
     ax.set_xlim(left=0.0)
-    ax.set_xlabel(f"harmful trials per campaign (true value worse than {floor:g} {units}), mean [95 % interval]")
+    if what is None:
+        ax.set_xlabel(f"harmful trials per campaign (true value worse than {floor:g} {units}), mean [95 % interval]")
+    else:   # a study with limits: the longer definition on a line of its own
+        ax.set_xlabel(f"harmful trials per campaign, mean [95 % interval]\nharmful: {what}", fontsize=8.5)
     ax.set_ylabel(f"median regret after {budget} trials\n({units}; {floor_note(lowest, values)})", fontsize=9.5)
     ax.set_title(f"Final regret against harmful trials after {budget} trials (lower left is better)", fontsize=10,
                  loc="left")
