@@ -45,15 +45,20 @@ def budget_table(study, summary) -> str:
 
 def limits_line(study, limits) -> str:
     """One line on limits after the largest budget, per policy: the share of campaigns whose recommendation
-    breaks a limit, with its exact interval, and the mean trials per campaign that break a limit (or fail,
-    in a study with hidden failures only), from limits.csv (`simlab.evidence.limits.limit_table`)."""
+    breaks a limit, with its exact interval, and the mean trials per campaign that break a limit and that
+    fail (each where the study has it), from limits.csv (`simlab.evidence.limits.limit_table`)."""
     horizon = study.campaign.horizon
     rows = limits[(limits["budget"] == horizon) & limits["study_budget"].astype(bool)]
-    count, words = ("breaks_mean", "break a limit") if study.limits else ("failed_mean", "fail")
+    kinds = [(c, w) for c, w, on in (("breaks_mean", "break a limit", bool(study.limits)),
+                                     ("failed_mean", "fail", study.world.fails_where is not None)) if on]
     parts = []
     for k, row in enumerate(rows.itertuples()):
         share = pct_interval(row.rec_breaks_share, row.rec_breaks_low, row.rec_breaks_high)
-        mean = fmt_sig(getattr(row, count))
-        parts.append(f"{row.policy} recommends a setting that breaks a limit in {share} of campaigns and runs {mean} "
-                     f"trials per campaign that {words}" if k == 0 else f"{row.policy} {share} and {mean}")
+        means = [fmt_sig(getattr(row, c)) for c, _ in kinds]
+        if k == 0:
+            counts = " and ".join(f"{m} trials per campaign that {w}" if i == 0 else f"{m} that {w}"
+                                  for i, (m, (_, w)) in enumerate(zip(means, kinds)))
+            parts.append(f"{row.policy} recommends a setting that breaks a limit in {share} of campaigns and runs {counts}")
+        else:
+            parts.append(f"{row.policy} {share} and {' and '.join(means)}")
     return f"limits after {horizon} trials: " + "; ".join(parts) + f" ({LIMITS})"
