@@ -13,6 +13,7 @@ from ..model.kernels import make_kernel
 from ..rng import stream
 from ..study.types import Study
 from .draws import FeatureWorld, World
+from .feasible import Slack
 
 __all__ = ["Slack", "WorldLimits", "make_limits", "FAIL_LEVEL_POINTS"]
 
@@ -20,23 +21,6 @@ __all__ = ["Slack", "WorldLimits", "make_limits", "FAIL_LEVEL_POINTS"]
 # quantile over them, so the failing share of the space is `share` within about 1 / sqrt(2^14) (less:
 # the points are low-discrepancy). The threshold then defines the world exactly.
 FAIL_LEVEL_POINTS = 2**14
-
-
-class Slack(World):
-    """``sign * (world(U) - bound)``: an input respects it where the value is <= 0."""
-
-    def __init__(self, world: World, bound: float, sign: float):
-        self.world, self.bound, self.sign = world, float(bound), float(sign)
-        self.dim = world.dim
-
-    def __call__(self, U):
-        return self.sign * (self.world(U) - self.bound)
-
-    def grad(self, U):
-        return self.sign * self.world.grad(U)
-
-    def rank_values(self, U):
-        return self.sign * (self.world.rank_values(U) - np.float32(self.bound))
 
 
 @dataclass
@@ -97,7 +81,7 @@ def make_limits(study: Study, r: int) -> WorldLimits | None:
         world = FeatureWorld(_unit(p.kernel, p.lengthscale, p.amplitude, study), p.mean,
                              stream(study.seed, r, "limit", lim.name), n_freq)
         quantities.append(world)
-        slacks.append(Slack(world, lim.bound, lim.sign))
+        slacks.append(Slack(world, lim.bound, int(lim.sign)))
         noise.append(p.noise)
         shocks.append(stream(study.seed, r, "limit_noise", lim.name).standard_normal(horizon))
     fails_slack = None
@@ -106,7 +90,7 @@ def make_limits(study: Study, r: int) -> WorldLimits | None:
         latent = FeatureWorld(_unit(fw.kernel, fw.lengthscale, 1.0, study), 0.0, stream(study.seed, r, "fails"), n_freq)
         points = stats.qmc.Sobol(study.space.dim, seed=stream(study.seed, r, "fails_level")).random(FAIL_LEVEL_POINTS)
         threshold = float(np.quantile(latent.rank_values(points).astype(float), 1.0 - fw.share))   # float32 ranks: set once, then exact
-        fails_slack = Slack(latent, threshold, 1.0)
+        fails_slack = Slack(latent, threshold, 1)
         slacks.append(fails_slack)
     return WorldLimits(names=tuple(lim.name for lim in study.limits), quantities=quantities,
                        noise=np.array(noise, dtype=float), shocks=np.array(shocks).reshape(len(quantities), horizon),
