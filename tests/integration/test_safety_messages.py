@@ -24,14 +24,15 @@ def small(tmp_path):
 # --------------------------------------------------------------------------- 3. reserved names
 def test_trace_columns_are_exactly_the_reserved_names_plus_inputs():
     """Every column the runner writes (traces and worlds.csv) is refused as an input name (columns.py);
-    the stopping rules' columns, written only for a study with [[stop]] rules, are reserved too."""
-    from simlab.columns import STOP_COLUMNS, TRACE_COLUMNS, WORLD_COLUMNS
+    the stopping rules' columns, written only for a study with [[stop]] rules, and the limits' columns,
+    written only for a study with [[limit]]s or fails_where, are reserved too."""
+    from simlab.columns import LIMIT_COLUMNS, STOP_COLUMNS, TRACE_COLUMNS, WORLD_COLUMNS
     from simlab.replay.runner import replay
     from simlab.study.spec import RESERVED, load_study
     study = load_study(ROOT / "configs" / "quick-1d.toml").with_replicates(1)
     traces = replay(study)
     assert set(traces.columns) == set(TRACE_COLUMNS) | set(study.space.names)
-    assert set(RESERVED) == set(TRACE_COLUMNS) | set(STOP_COLUMNS) | set(WORLD_COLUMNS)
+    assert set(RESERVED) == set(TRACE_COLUMNS) | set(STOP_COLUMNS) | set(LIMIT_COLUMNS) | set(WORLD_COLUMNS)
     assert "horizon" in RESERVED and "optimum_gap" in RESERVED
 
 
