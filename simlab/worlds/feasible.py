@@ -246,8 +246,12 @@ def feasible_minimum(world, constraints, dim: int, rng, *, n_rank: int | None = 
         starts = U[least[spread_best(U[least], viol[least], n_starts, sep)]]
         if rough:
             starts = _zoom(world, constraints, starts, 0.5 * ls, rng)
+            cand.tried.append(starts)
         for x0 in starts:
-            x = x0 if cand.offer(x0)[0] else cand.least_violation(x0, c_scale)
+            if cand.offer(x0)[0]:          # the zoom found a feasible point
+                cand.polish(x0, f_scale, c_scale)
+                continue
+            x = cand.least_violation(x0, c_scale)
             if cand.offer(x)[0]:
                 cand.polish(x, f_scale, c_scale)
 
