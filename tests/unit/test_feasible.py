@@ -139,13 +139,15 @@ def test_branin_on_a_disk_that_holds_a_minimiser():
     assert _branin_on_disk_reference(centre, r2)[0] == pytest.approx(5.0 / (4.0 * np.pi), abs=1e-9)
 
 
-# Random worlds: Matern 5/2, lengthscale 0.2 of the range, amplitude 1, mean 0; each limit an
+# Random worlds: Matern 5/2 (one 2-D world Matern 3/2), lengthscale 0.2 of the range, amplitude 1, mean 0; each limit an
 # independent draw of the same prior, bounded at a quantile of its values on 4096 uniform points
 # (one limit: its median; two: each at its 70 % quantile, about half the cube jointly feasible).
 # Streams keyed (root seed, world, role) by numpy's SeedSequence (NEP 19).
 AMPLITUDE = 1.0
 MISS = 1e-3 * AMPLITUDE    # the project's bar for a missed world optimum (issue 11), in amplitudes
-RANDOM_WORLDS = [(2, 1, 0), (2, 1, 1), (2, 2, 2), (2, 2, 3), (2, 2, 4), (4, 2, 5), (4, 1, 6)]   # (d, limits, seed)
+# (inputs, kernel, limits, seed): Matern 3/2 takes the zoom path of rough worlds
+RANDOM_WORLDS = [(2, "matern52", 1, 0), (2, "matern52", 1, 1), (2, "matern52", 2, 2), (2, "matern52", 2, 3),
+                 (2, "matern32", 2, 4), (4, "matern52", 2, 5), (4, "matern52", 1, 6)]
 
 
 def _rng(*key):
@@ -153,8 +155,8 @@ def _rng(*key):
 
 
 @functools.lru_cache(maxsize=None)
-def _random_problem(d, m, i):
-    kernel = make_kernel("matern52", [0.2] * d, AMPLITUDE)
+def _random_problem(d, name, m, i):
+    kernel = make_kernel(name, [0.2] * d, AMPLITUDE)
     world = FeatureWorld(kernel, 0.0, _rng(i, 0))
     probe = _rng(i, 99).random((4096, d))
     q = 0.5 if m == 1 else 0.7
@@ -172,10 +174,10 @@ def _stacked(limits, x):
 
 
 @functools.lru_cache(maxsize=None)
-def _random_reference(d, m, i):
+def _random_reference(d, name, m, i):
     """The better of differential evolution with the limits (polish on) and SLSQP from 100 uniform
     starts; a point counts as feasible with every constraint <= 1e-9 (lenient to the reference)."""
-    world, limits = _random_problem(d, m, i)
+    world, limits = _random_problem(d, name, m, i)
     best = np.inf
     with threadpool_limits(1):
         nlc = NonlinearConstraint(lambda x: _stacked(limits, x), -np.inf, 0.0,
@@ -200,14 +202,14 @@ def _random_reference(d, m, i):
 def test_random_worlds_meet_the_reference():
     # 7 worlds (5 in 2-D, 2 in 4-D), fixed seeds: simlab's feasible value <= reference + 1e-3 amplitudes.
     on_boundary = 0
-    for d, m, i in RANDOM_WORLDS:
-        world, limits = _random_problem(d, m, i)
-        with threadpool_limits(1):
+    for d, name, m, i in RANDOM_WORLDS:
+        world, limits = _random_problem(d, name, m, i)
+        with threadpool_limits(1):      # as the runner's workers search
             res = feasible_minimum(world, limits, d, _rng(i, 50))
-        assert 0.3 <= res.feasible_share <= 0.7, (d, m, i, res.feasible_share)
+        assert 0.3 <= res.feasible_share <= 0.7, (d, name, m, i, res.feasible_share)
         assert res.found and max(c(res.u[None])[0] for c in limits) <= 0.0
-        ref = _random_reference(d, m, i)
-        assert res.value <= ref + MISS, (d, m, i, res.value, ref)
+        ref = _random_reference(d, name, m, i)
+        assert res.value <= ref + MISS, (d, name, m, i, res.value, ref)
         on_boundary += max(c(res.u[None])[0] for c in limits) > -1e-6
     # the set exercises constrained optima on a limit's boundary, not only interior minima
     assert on_boundary >= 2, on_boundary
@@ -218,12 +220,13 @@ def test_a_weak_search_misses_some_random_world():
     # Negative control: 16 ranking points and no polish. It must miss the reference by more than the
     # bar on at least one of the same worlds, so the bar above can fail.
     misses = []
-    for d, m, i in RANDOM_WORLDS:
-        world, limits = _random_problem(d, m, i)
-        res = feasible_minimum(world, limits, d, _rng(i, 50), n_rank=16, n_starts=0)
+    for d, name, m, i in RANDOM_WORLDS:
+        world, limits = _random_problem(d, name, m, i)
+        with threadpool_limits(1):
+            res = feasible_minimum(world, limits, d, _rng(i, 50), n_rank=16, n_starts=0)
         if res.found:
             assert max(c(res.u[None])[0] for c in limits) <= 0.0
-        misses.append(res.value - _random_reference(d, m, i) if res.found else np.inf)
+        misses.append(res.value - _random_reference(d, name, m, i) if res.found else np.inf)
     assert max(misses) > MISS, misses
 
 
@@ -243,7 +246,8 @@ def test_never_an_infeasible_answer():
             g = FeatureWorld(kernel, 0.0, _rng(1000 + i, 1 + j))
             sign = 1 if (i + j) % 3 else -1
             limits.append(Slack(g, float(np.quantile(g(probe), q if sign == 1 else 1.0 - q)), sign))
-        res = feasible_minimum(world, limits, d, _rng(1000 + i, 50))
+        with threadpool_limits(1):      # as the runner's workers search (BLAS threads only contend here)
+            res = feasible_minimum(world, limits, d, _rng(1000 + i, 50))
         assert res.value == pytest.approx(world(res.u[None])[0], abs=1e-12)
         assert np.all((0.0 <= res.u) & (res.u <= 1.0))
         if res.found:
