@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..lazy import optimize, special
+from ..lazy import linalg, optimize, special
 from .classify import FailureBelief, logistic_gaussian_mean
 from .gp import Posterior
 from .kernels import Kernel
@@ -156,6 +156,42 @@ class FeasibleBelief:
                 total += np.log(np.maximum(self.classifier.success_probability(self.pool), 1e-300))
             self._pool_log = total
         return self._pool_log
+
+    def sample_pool(self, rng: np.random.Generator, features: int) -> np.ndarray:
+        """One joint posterior sample of every limit and of the classifier's latent over the pool:
+        (m,) bool, where the sampled limits all hold and the sampled latent says a trial works
+        (sigmoid(f) >= 1/2, i.e. f >= 0). For Thompson sampling with sampled limits.
+
+        Each limit is drawn pathwise (Matheron's rule, Wilson et al. 2020, ICML): a random-feature prior
+        draw g0 corrected by ``K(., X) (K + s2 I)^-1 (y - g0(X) - eps)``. The classifier's Laplace
+        posterior is that of a regression on the pseudo-targets ``f_hat + W^-1 (y - pi)`` with noise
+        variance ``W^-1`` (R&W 2006, section 3.4.2: it has the mean and covariance of eqs. 3.21 and
+        3.24), so its latent is drawn the same way, through ``(K + W^-1)^-1 = W^1/2 B^-1 W^1/2``.
+        """
+        from ..worlds.draws import FeatureSample
+
+        ok = np.ones(len(self.pool), dtype=bool)
+        for lm, post in zip(self.limits, self.posts):
+            draw = FeatureSample(lm.kernel, lm.mean, rng, features)
+            g = draw(self.pool)
+            if post.n:
+                eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
+                g = g + post.pool_cross(post.y - draw(post.X) - eps)
+            ok &= lm.sign * (g - lm.bound) <= 0
+        c = self.classifier
+        if c is not None:
+            draw = FeatureSample(c.kernel, c.prior_mean, rng, features)
+            f = draw(self.pool)
+            if len(c.worked):
+                w = c._w_sqrt
+                z = rng.standard_normal(len(c.worked))
+                # W^1/2 (pseudo-target - f0(X) - eps), with W^1/2 eps = z ~ N(0, I); (y - pi) / W^1/2 stays
+                # finite as pi -> y (it tends to 0)
+                right = w * (c.mode - draw(c.X)) + c._grad / np.maximum(w, 1e-300) - z
+                alpha = w * linalg.cho_solve((c._L, True), right, check_finite=False)
+                f = f + c.kernel(self.pool, c.X) @ alpha
+            ok &= f >= 0.0
+        return ok
 
     @staticmethod
     def _z(lm: LimitModel, mu, sd):

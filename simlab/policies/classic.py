@@ -419,6 +419,23 @@ class ThompsonSampling(Acquisition):
         np.cos(P, out=P)
         return (P @ amp.astype(np.float32)).astype(float)
 
+    # With limits, feasible = "weight" samples them too: one posterior sample of each limit and of the
+    # classifier's latent with the objective's, and the sample's best pool point among those where every
+    # sampled limit holds (constrained Thompson sampling, as in Eriksson & Poloczek 2021, AISTATS, SCBO,
+    # from memory; here without their trust region). No polish: the pool's best feasible point is the choice.
+    weights_feasibility = True
+
+    def choose(self, post, t):
+        if not self.weighted(post) or t >= self.ctx.horizon - self.exploit_last:
+            return super().choose(post, t)
+        self.prepare(post)                                    # the objective's sample over the pool
+        ok = post.feasible.sample_pool(self.ctx.rng, self.features)
+        pool = self.ctx.pool
+        if ok.any():
+            return pool[int(np.argmin(np.where(ok, self._pool_values, np.inf)))].copy()
+        # no pool point holds in this sample: the point the belief holds most likely feasible
+        return pool[int(np.argmax(post.feasible.pool_log_chance()))].copy()
+
     def _keep_state(self, post):
         """The sample just minimised, for :meth:`score` (the snapshot): no new draw."""
         if self._beta is None:                # the final switch to the lowest mean drew nothing

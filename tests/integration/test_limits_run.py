@@ -48,6 +48,13 @@ label = "ignore"
 rule = "ei"
 label = "weigh"
 feasible = "weight"
+[[policy]]
+rule = "thompson"
+label = "ts-ignore"
+[[policy]]
+rule = "thompson"
+label = "ts-weigh"
+feasible = "weight"
 """
 
 
@@ -56,11 +63,11 @@ def replay(replicates=30, bound=32.0, fails=""):
     return study, pd.concat([replay_replicate(study, r) for r in range(replicates)], ignore_index=True)
 
 
-def wasted(frame):
-    """Infeasible trials (breaking the limit or failing) per campaign of each policy, after the design."""
+def wasted(frame, pair=("ignore", "weigh")):
+    """Infeasible trials (breaking the limit or failing) per campaign of two policies, after the design."""
     own = frame[frame.trial > 5]
     per = (own.breaks | own.failed).groupby([own.policy, own.replicate]).sum().unstack(0)
-    return per["ignore"].to_numpy(), per["weigh"].to_numpy()
+    return per[pair[0]].to_numpy(), per[pair[1]].to_numpy()
 
 
 @pytest.fixture(scope="module")
@@ -76,6 +83,16 @@ def test_weighing_feasibility_wastes_fewer_trials(active):
     study, frame = active
     ignore, weigh = wasted(frame)
     assert ignore.mean() > 2 * weigh.mean()
+    assert stats.wilcoxon(ignore, weigh, alternative="greater").pvalue < 0.01
+
+
+def test_thompson_with_sampled_limits_wastes_fewer_trials(active):
+    """Thompson sampling with the limit sampled beside the objective (choose the sample's best pool point
+    where the sampled limit holds) against plain Thompson sampling on the same 30 worlds: fewer
+    limit-breaking trials, paired one-sided Wilcoxon (scipy.stats.wilcoxon), p < 0.01."""
+    study, frame = active
+    ignore, weigh = wasted(frame, ("ts-ignore", "ts-weigh"))
+    assert ignore.mean() > weigh.mean()
     assert stats.wilcoxon(ignore, weigh, alternative="greater").pvalue < 0.01
 
 
