@@ -159,6 +159,7 @@ class Acquisition(Policy):
     polish_iterations: ClassVar[int] = 30
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs
     log_score: ClassVar[bool] = False  # the score is the log of a positive quantity (log EI, log PI)
+    positive_score: ClassVar[bool] = False  # the score is a positive quantity (an information gain): logged as is
     scores_anywhere: ClassVar[bool] = True  # False for rules that only score their own candidate sets
     # lockstep = True: the score is a function of the posterior mean and sd alone (set through
     # _from_moments, with per-trial state from prepare_block); choose() then runs the block
@@ -327,6 +328,12 @@ class Acquisition(Policy):
             values, grads = np.zeros(len(U)), None if grads is None else np.zeros(U.shape)
         if self.log_score or (weighted and self._feasible_first):
             total, g = values.copy(), None if grads is None else grads.copy()
+        elif self.positive_score:
+            # a positive utility: its own logarithm (softplus would flatten an information gain of a few
+            # hundredths of a nat to log 2), floored where it underflows
+            safe = np.maximum(values, 1e-300)
+            total = np.log(safe)
+            g = None if grads is None else np.where((values > 1e-300)[:, None], grads / safe[:, None], 0.0)
         else:
             sp = np.logaddexp(0.0, values)                      # softplus
             total = np.log(sp)

@@ -173,7 +173,30 @@ class KnowledgeGradient(Acquisition):
         """The discrete set A (and the candidates) of one campaign: shape (<= points + 1, d)."""
         return self.candidates_block(post)[0]
 
+    # feasible = "weight": the candidates are the pool points of lowest mu - 2 sd among those at least as
+    # likely feasible as not (topped up by the most likely feasible), and each candidate's knowledge
+    # gradient is weighted by its chance of feasibility (a positive utility, weighted as EI is; candidates
+    # whose gradient is 0 rank by their chance alone)
+    weights_feasibility = True
+
+    def _feasible_candidates(self, post) -> np.ndarray:
+        pool = self.ctx.pool
+        mu, sd = post.pool_moments()
+        chance = post.feasible.pool_log_chance()
+        key = np.where(chance >= np.log(0.5), mu - 2.0 * sd, np.inf)
+        k = min(self.points, len(pool))
+        order = np.lexsort((-chance, key))[:k]            # by the bound, then (where it is inf) by the chance
+        P = pool[order]
+        if post.n:
+            P = np.vstack([P, post.X[post.feasible.recommend(post)][None, :]])
+        return P[None]
+
     def choose(self, post, t):
+        if self.weighted(post) and t < self.ctx.horizon - self.exploit_last:
+            P = self._feasible_candidates(post)
+            kg, _ = knowledge_gradients(post, P)
+            score = np.log(np.maximum(kg[0], 1e-300)) + post.feasible.log_chance(P[0])
+            return P[0, int(np.argmax(score))].copy()
         return self.choose_block(post, t, self.ctx.block())[0]
 
     def choose_block(self, st, t, block):

@@ -232,11 +232,20 @@ class ProbabilityOfMinimum(Acquisition):
     def score_pool(self, post):
         return self.probabilities(post)
 
+    # feasible = "weight": the vote shares times the chance of feasibility (a positive utility, weighted as
+    # EI is), the shares smoothed by one vote each (add-one, common practice: a point no draw voted for has
+    # a small, not a zero, chance of being the minimiser, so a feasible point can outrank one voted for but
+    # almost surely infeasible); the winner is not refined then (its sample's path knows nothing of limits)
+    weights_feasibility = True
+
     def choose(self, post, t):
         if t >= self.ctx.horizon - self.exploit_last:
             return super().choose(post, t)              # the final switch to the lowest mean
         votes = self._votes(post)
         counts = np.bincount(votes, minlength=len(self.ctx.pool))
+        if self.weighted(post):
+            score = np.log1p(counts) + post.feasible.pool_log_chance()
+            return self.ctx.pool[int(np.argmax(score))].copy()
         tied = np.flatnonzero(counts == counts.max())
         if len(tied) > 1:
             _, sd = post.pool_moments()
@@ -398,6 +407,11 @@ class MaxValueEntropySearch(Acquisition):
         "noise_aware": Option(1, int, 0, 1, "1: information carried by the noisy observation"),
     }
 
+    # weighting by feasibility (feasible = "weight"): the information times the chance of feasibility, in
+    # logarithms (the product heuristic of Gardner et al. 2014 applied to a positive utility; a constrained
+    # MES proper, Perrone et al. 2019, would count the limits' information too, from memory)
+    weights_feasibility = True
+    positive_score = True
     lockstep = True   # the one-campaign path is the block code on a block of one
 
     def start(self, ctx):
@@ -463,7 +477,7 @@ class MaxValueEntropySearch(Acquisition):
     def score_pool(self, post):
         mu, sd = post.pool_moments()
         sd = self._floor(post, sd)
-        if self._noise > 0.0 and self.fill == "penalize":   # penalizers reorder the pool: no screen
+        if self._noise > 0.0 and (self.fill == "penalize" or self.weighted(post)):   # reordered: no screen
             return self._value(mu, sd)
         return self._screened(mu, sd, self.fstar, max(self.n_starts, 1))
 
