@@ -173,7 +173,7 @@ class FeasibleBelief:
         ok = np.ones(len(self.pool), dtype=bool)
         for lm, post in zip(self.limits, self.posts):
             draw = FeatureSample(lm.kernel, lm.mean, rng, features)
-            g = draw(self.pool)
+            g = draw.values32(self.pool)       # float32 over the pool: off by ~1e-6 sd, only at the bound itself
             if post.n:
                 eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
                 g = g + post.pool_cross(post.y - draw(post.X) - eps)
@@ -181,7 +181,7 @@ class FeasibleBelief:
         c = self.classifier
         if c is not None:
             draw = FeatureSample(c.kernel, c.prior_mean, rng, features)
-            f = draw(self.pool)
+            f = draw.values32(self.pool)
             if len(c.worked):
                 w = c._w_sqrt
                 z = rng.standard_normal(len(c.worked))

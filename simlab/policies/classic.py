@@ -428,11 +428,17 @@ class ThompsonSampling(Acquisition):
     def choose(self, post, t):
         if not self.weighted(post) or t >= self.ctx.horizon - self.exploit_last:
             return super().choose(post, t)
-        self.prepare(post)                                    # the objective's sample over the pool
-        ok = post.feasible.sample_pool(self.ctx.rng, self.features)
-        pool = self.ctx.pool
+        rng, pool = self.ctx.rng, self.ctx.pool
+        self._features(post, [rng])
+        sample = self.sample = self._samples[0]
+        sample.redraw(rng)
+        eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
+        r = post.y - sample(post.X) - eps
+        self.beta = post.solve(r)
+        values = sample.values32(pool) + post.pool_cross(r)   # the objective's sample, ranked in float32
+        ok = post.feasible.sample_pool(rng, self.features)
         if ok.any():
-            return pool[int(np.argmin(np.where(ok, self._pool_values, np.inf)))].copy()
+            return pool[int(np.argmin(np.where(ok, values, np.inf)))].copy()
         # no pool point holds in this sample: the point the belief holds most likely feasible
         return pool[int(np.argmax(post.feasible.pool_log_chance()))].copy()
 
