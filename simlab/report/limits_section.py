@@ -74,9 +74,16 @@ def limits_section(study, limits):
     if not last:
         return ""
     breaks, fails = bool(study.limits), study.world.fails_where is not None
-    lead = [f"<b>After {horizon} trials</b>, the recommendation breaks a limit least often with "
-            + _best_and_next(limits, last, "rec_breaks_share", "rec_breaks_low", "rec_breaks_high", "pct",
-                             "of campaigns")]
+    if not (frame["rec_breaks"].to_numpy()[last] > 0).any():
+        # nobody's recommendation broke a limit: a ranking of zeros would read as a lead
+        worst = max(last, key=lambda i: float(frame.at[i, "rec_breaks_high"]))
+        lead = [f"<b>After {horizon} trials</b>, no policy's recommendation broke a limit in any simulated campaign "
+                f"(for any policy, at most {limits.span(worst, 'rec_breaks_high', 'pct')} % of campaigns would, the "
+                "upper end of the 95 % interval)"]
+    else:
+        lead = [f"<b>After {horizon} trials</b>, the recommendation breaks a limit least often with "
+                + _best_and_next(limits, last, "rec_breaks_share", "rec_breaks_low", "rec_breaks_high", "pct",
+                                 "of campaigns")]
     if breaks:
         lead.append("fewest trials break a limit with "
                     + _best_and_next(limits, last, "breaks_mean", "breaks_low", "breaks_high", "sig", "per campaign"))

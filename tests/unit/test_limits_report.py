@@ -1,8 +1,8 @@
 """The report of a study with limits and hidden failures (report/limits_section.py, answer.py, outputs.py,
 console.py): limits.csv written and owned, the page's subsection and its caution, the answer's sentence at
-the budget to book, harmful trials without a floor, and the command line's one line. The study is built on
-the types (the study file's [[limit]] reader and the loops that fill the traces' limit columns are not
-here yet): a small replayed study whose traces get seeded limit columns, as the runner will write them."""
+the budget to book, harmful trials without a floor, and the command line's one line. The traces are a small
+replayed study's with seeded limit columns, as the runner writes them, so that every share and count is
+known in advance (tests/integration/test_limits_run.py replays real constrained campaigns)."""
 
 import re
 
@@ -173,3 +173,18 @@ def test_run_and_report_print_the_line_for_a_constrained_study_only(written, cap
     assert out.count("\n") == 1 and out.startswith("limits after 8 trials")
     _print_limits(SimpleNamespace(path=files.folder, study=study_with(BASE)))
     assert capsys.readouterr().out == ""
+
+
+def test_no_recommendation_broke_a_limit_reads_as_no_lead(written):
+    """With no recommendation breaking a limit, the subsection says so (and quotes the largest upper bound)
+    instead of ranking policies on a tie at 0 %."""
+    from simlab.report.cells import Cells
+    from simlab.report.limits_section import limits_section
+    study, traces, _, _ = written
+    clean = traces.copy()
+    clean["rec_breaks"] = False
+    table = limit_table(clean, study)
+    html = limits_section(study, Cells("limits.csv", table))
+    assert "no policy's recommendation broke a limit" in html and "least often" not in html
+    sentence = html[html.index("no policy's recommendation"):html.index("(95 % intervals)")]
+    assert 'data-col="rec_breaks_high"' in sentence      # the largest upper bound, tagged to its cell
