@@ -160,6 +160,10 @@ class Acquisition(Policy):
     sd_floor: ClassVar[float] = 1e-9  # relative to the prior sd; keeps z finite at evaluated inputs
     log_score: ClassVar[bool] = False  # the score is the log of a positive quantity (log EI, log PI)
     positive_score: ClassVar[bool] = False  # the score is a positive quantity (an information gain): logged as is
+    # The score is minus a bound on the objective (mu - width sd, or mu): weighted by feasibility, its utility is
+    # the bound's improvement over the incumbent, max(best - bound, 0), a positive quantity whose largest value
+    # is the bound's best input whenever one beats the incumbent (so unweighted, nothing changes)
+    bound_score: ClassVar[bool] = False
     scores_anywhere: ClassVar[bool] = True  # False for rules that only score their own candidate sets
     # lockstep = True: the score is a function of the posterior mean and sd alone (set through
     # _from_moments, with per-trial state from prepare_block); choose() then runs the block
@@ -237,6 +241,8 @@ class Acquisition(Policy):
         if t >= self.ctx.horizon - self.exploit_last:
             return _lowest_mean(post, self.ctx.pool, self.n_starts, self.polish_iterations)
         self.prepare(post)
+        if weighted and self.bound_score:
+            self._bound_best = self._feasible_incumbent(post)
         pool = self.ctx.pool
         values = self._penalized(post, pool, self.score_pool(post), on_pool=True)
         if self.n_starts == 0:
@@ -307,6 +313,13 @@ class Acquisition(Policy):
     # for a feasible region first), as log P(feasible).
     _feasible_first = False
 
+    def _feasible_incumbent(self, post) -> float:
+        """The lowest posterior mean over evaluated inputs believed feasible (the set the recommendation comes
+        from); sets ``_feasible_first`` when there is none (the rule then seeks feasibility alone)."""
+        trusted = post.feasible.trusted(post.X) if post.n else np.zeros(0, dtype=bool)
+        self._feasible_first = not trusted.any()
+        return float(np.min(post.mean_at_data()[trusted])) if trusted.any() else post.mean
+
     def _penalized(self, post, U, values, grads=None, *, on_pool: bool = False):
         """Add log local penalizers of the pending trials to the (log-transformed) score, and, weighting
         by feasibility, log P(feasible) (Gardner et al. 2014, ICML, eq. 4: EI times the chance that
@@ -328,6 +341,11 @@ class Acquisition(Policy):
             values, grads = np.zeros(len(U)), None if grads is None else np.zeros(U.shape)
         if self.log_score or (weighted and self._feasible_first):
             total, g = values.copy(), None if grads is None else grads.copy()
+        elif weighted and self.bound_score:
+            gain = values + self._bound_best                # best - bound
+            safe = np.maximum(gain, 1e-300)
+            total = np.log(safe)
+            g = None if grads is None else np.where((gain > 1e-300)[:, None], grads / safe[:, None], 0.0)
         elif self.positive_score:
             # a positive utility: its own logarithm (softplus would flatten an information gain of a few
             # hundredths of a nat to log 2), floored where it underflows

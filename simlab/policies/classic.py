@@ -62,6 +62,7 @@ class PosteriorMean(Acquisition):
     rule = "mean"
     description = "pure exploitation: lowest posterior mean"
     lockstep = True
+    weights_feasibility = bound_score = True
 
     def _from_moments(self, mu, sd):
         return -mu, -np.ones_like(mu), np.zeros_like(sd)
@@ -80,6 +81,7 @@ class ConfidenceBound(Acquisition):
     rule = "lcb"
     description = "optimistic confidence bound"
     lockstep = True
+    weights_feasibility = bound_score = True
     options = {"width": Option(2.0, float, 0.0, 100.0, "multiple of the posterior sd")}
     small_width: ClassVar[float] = 1.0   # below this many posterior sd the bound barely explores
 
@@ -115,7 +117,8 @@ class _Improvement(Acquisition):
 
     # The score is a positive utility (an improvement's expectation or chance), so weighting it by the chance
     # of feasibility is the published product (Gardner et al. 2014; Schonlau, Welch & Jones 1998 for PI).
-    # A confidence bound or a mean has no zero to weight from (its product would depend on the prior mean).
+    # (A confidence bound or a mean has no zero to weight from: those rules weight their bound's improvement
+    # over the same incumbent, Acquisition.bound_score.)
     weights_feasibility = True
 
     def prepare(self, post):
@@ -123,9 +126,7 @@ class _Improvement(Acquisition):
         if self.weighted(post):
             # weighting by feasibility: the incumbent is the best input believed feasible (the set the
             # recommendation comes from); with none, the rule seeks feasibility alone (Gelbart et al. 2014)
-            trusted = post.feasible.trusted(post.X) if post.n else np.zeros(0, dtype=bool)
-            self._feasible_first = not trusted.any()
-            self.best = float(np.min(post.mean_at_data()[trusted])) if trusted.any() else post.mean
+            self.best = self._feasible_incumbent(post)
             return
         self.best = float(np.min(post.mean_at_data())) if post.n else post.mean
 

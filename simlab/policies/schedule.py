@@ -58,6 +58,7 @@ class GPUCB(Acquisition):
     description = "confidence bound with the GP-UCB width schedule"
     options = {"delta": Option(0.1, float, 1e-12, 0.999, "failure probability of the confidence bound")}
     lockstep = True
+    weights_feasibility = bound_score = True
 
     def prepare(self, post):
         self.beta = float(gp_ucb_beta(post.n + 1, len(self.ctx.pool), self.delta))
@@ -101,9 +102,11 @@ class GPHedge(Policy):
 
     rule = "hedge"
     description = "portfolio of EI, PI and the confidence bound, weighted by past gains"
-    options = {"eta": Option(1.0, float, 0.0, 1e6, "learning rate of the softmax over gains, per objective unit")}
+    options = {"eta": Option(1.0, float, 0.0, 1e6, "learning rate of the softmax over gains, per objective unit"),
+               "feasible": Acquisition.options["feasible"]}   # passed to every member
 
     lockstep = True   # the members are lockstep rules; the one-campaign path is a block of one
+    weights_feasibility = True
 
     def start(self, ctx):
         super().start(ctx)
@@ -113,7 +116,8 @@ class GPHedge(Policy):
 
     def _begin(self, size: int) -> None:
         """Fresh members and zero gains for a block of ``size`` campaigns."""
-        self.members = (ExpectedImprovement(), ProbabilityOfImprovement(), ConfidenceBound())
+        self.members = tuple(m(feasible=self.feasible) for m in (ExpectedImprovement, ProbabilityOfImprovement,
+                                                                 ConfidenceBound))
         self.gains = np.zeros((size, len(self.members)))
         self.nominees: list[np.ndarray] = []   # (B, members, d) per choice whose reward is pending
         self.picked: np.ndarray | None = None  # (B,) member chosen for each campaign
@@ -149,7 +153,10 @@ class GPHedge(Policy):
         if not self._holding:            # first choice of a round: the last round's results are in
             self.collect(st)
             self._n_seen = st.n
-        nominees = np.stack([m.choose_block(st, t, block) for m in self.members], axis=1)   # (B, M, d)
+        if st.feasible is not None and self.feasible == "weight":   # one campaign, its members weighted
+            nominees = np.stack([m.choose(st, t) for m in self.members])[None]
+        else:
+            nominees = np.stack([m.choose_block(st, t, block) for m in self.members], axis=1)   # (B, M, d)
         self.picked = self.pick(block.rngs)
         self._chose_last = True
         self.nominees.append(nominees)

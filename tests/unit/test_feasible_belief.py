@@ -152,27 +152,27 @@ def test_sampled_limits_hold_as_often_as_the_belief_says():
     assert not np.all(np.abs(share - averaged) <= tol)
 
 
-@pytest.mark.parametrize("rule", ["ei", "pi", "thompson", "mes", "pbest", "kg"])
+@pytest.mark.parametrize("rule", ["ei", "pi", "thompson", "mes", "pbest", "kg", "lcb", "mean", "gp-ucb", "hedge"])
 def test_weighted_rules_stay_where_the_limit_holds(rule):
-    """Constructed: the objective falls toward x1 = 1, but a pressure measured at 60 trials clearly breaks its
+    """Constructed: the objective falls toward x1 = 1, but a pressure measured at 150 trials clearly breaks its
     limit wherever x1 > 0.55 (by up to 9 prior sd). Each rule weighted by feasibility chooses its next trial where the limit holds
     (x1 < 0.6); the same rule ignoring the limit goes for the low objective (x1 > 0.6), the negative control."""
     from simlab.policies import POLICIES, Context
     rng = np.random.default_rng(3)
     pool = rng.random((512, 2))
-    X = rng.random((60, 2))
+    X = rng.random((150, 2))
     kernel = make_kernel("matern52", [0.3, 0.3], 1.0)
-    post = Posterior(kernel, 0.0, 0.05, pool=pool, capacity=64)
+    post = Posterior(kernel, 0.0, 0.05, pool=pool, capacity=160)
     for x in X:
         post.add(x, float(-2.0 * x[0] + 0.2 * np.sin(5 * x[1])))
     limit = LimitModel(make_kernel("matern52", [0.3, 0.3], 3.0), 0.0, 0.1, 0.0, 1.0)
     chosen = {}
     for feasible in ("weight", "ignore"):
-        post.feasible = FeasibleBelief([limit], None, pool=pool, capacity=64, chance=0.95)
+        post.feasible = FeasibleBelief([limit], None, pool=pool, capacity=160, chance=0.95)
         for x in X:
             post.feasible.add(x, worked=True, values=[60.0 * (x[0] - 0.55)])
         policy = POLICIES[rule](feasible=feasible)
-        policy.start(Context(pool=pool, rng=np.random.default_rng(5), sequence=pool[:70], horizon=70, posterior=post))
-        chosen[feasible] = policy.choose(post, 61)
+        policy.start(Context(pool=pool, rng=np.random.default_rng(5), sequence=pool[:160], horizon=160, posterior=post))
+        chosen[feasible] = policy.choose(post, 151)
     assert chosen["weight"][0] < 0.6, chosen
     assert chosen["ignore"][0] > 0.6, chosen
