@@ -109,7 +109,7 @@ def _assumptions(study, version):
               "back</td></tr>" if batch > 1 else "")
     return (
         '<section id="assumptions"><h2>2. Appendix: assumptions and method</h2>'
-        "<h3>Worlds</h3>" + _world_section(study) + "<h3>Belief</h3>" + belief +
+        "<h3>Worlds</h3>" + _world_section(study) + "<h3>Belief</h3>" + belief + _limits_assumed(study) +
         "<h3>Search space</h3><table><thead><tr><th>input</th><th class='n'>low</th><th class='n'>high</th>"
         f"</tr></thead><tbody>{space}</tbody></table>"
         "<h3>Policies</h3><table><thead><tr><th>label</th><th>rule</th><th>what it does</th>"
@@ -133,6 +133,34 @@ def _assumptions(study, version):
     )
 
 
+def _limits_assumed(study) -> str:
+    """The appendix's account of [[limit]]s and fails_where: each limit's prior, the failing region, and how
+    the campaigns model both (empty for other studies)."""
+    if not study.constrained:
+        return ""
+    out = ["<h3>Limits and failures</h3>"]
+    for lim in study.limits:
+        out.append(f"<p><b>{escape(lim.words())}</b>: drawn for each world from its own prior, independent of the "
+                   "objective, and measured with every trial that runs:</p>"
+                   f"<table class='kv'>{_prior_rows(lim.prior, study)}</table>")
+    fw = study.world.fails_where
+    if fw is not None:
+        ls = ", ".join(f"{escape(n)} {number(v)}" for n, v in zip(study.space.names, fw.lengthscale))
+        out.append(f"<p><b>Trials fail</b> where a latent world ({escape(KERNELS[fw.kernel].title)}, unit amplitude, "
+                   f"lengthscales {ls}) is in its top {number(100 * fw.share)} % of the space; a failed trial spends "
+                   "its place in the budget and returns nothing.</p>")
+    model = ["each limit with a Gaussian process of its own prior, fed the measured value of every trial that "
+             "runs"] if study.limits else []
+    if fw is not None:
+        model.append("the failing region with a Gaussian-process classifier (logistic likelihood, Laplace's "
+                     "approximation; latent amplitude 3 on the logistic scale, the region's lengthscales, prior chance "
+                     f"of success {number(100 * (1 - fw.share))} %)")
+    out.append("<p>The campaigns model " + " and ".join(model) + ". Every campaign ships the evaluated input with "
+               "the lowest posterior mean among those believed to respect every limit at least "
+               f"{number(100 * study.feasible_chance)} % surely (<code>[target] feasible_chance</code>).</p>")
+    return "".join(out)
+
+
 _ROUND_SETTINGS = ("fill", "lie")   # Acquisition's settings for rounds of trials (policies/base.py)
 
 
@@ -141,7 +169,9 @@ def _settings(spec, study):
     options = POLICIES[spec.rule].options
     # How a round of several trials is filled (fill, lie) matters only when the study has rounds.
     rounds_only = () if study.campaign.batch > 1 else _ROUND_SETTINGS
-    settings = [(key, value) for key, value in spec.settings if key not in rounds_only]
+    # How a rule treats limits (feasible) matters only when the study has limits or failures.
+    hidden = rounds_only + (() if study.constrained else ("feasible",))
+    settings = [(key, value) for key, value in spec.settings if key not in hidden]
     if not settings:
         return "none (the rule has no settings)"
     # the rule's own settings first, then those every acquisition has (fill, lie, exploit_last: policies/base.py)

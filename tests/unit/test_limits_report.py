@@ -188,3 +188,16 @@ def test_no_recommendation_broke_a_limit_reads_as_no_lead(written):
     assert "no policy's recommendation broke a limit" in html and "least often" not in html
     sentence = html[html.index("no policy's recommendation"):html.index("(95 % intervals)")]
     assert 'data-col="rec_breaks_high"' in sentence      # the largest upper bound, tagged to its cell
+
+
+def test_the_appendix_states_the_limits_and_hides_feasible_elsewhere(written, tmp_path):
+    """The appendix lists each limit's prior and the failing region with how the campaigns model them; a study
+    without limits does not show the policies' `feasible` setting (it plays no part there)."""
+    study, traces, _, page = written
+    appendix = page[page.index('<section id="assumptions">'):]
+    assert "<h3>Limits and failures</h3>" in appendix and "viscosity below 40" in appendix
+    assert "Gaussian-process classifier" in appendix and "feasible = ignore" in appendix
+    plain = study_with(BASE)
+    files = write_outputs(tmp_path, plain, replay(plain))
+    text = files.report.read_text(encoding="utf-8")
+    assert "Limits and failures" not in text and "feasible =" not in text
