@@ -140,8 +140,11 @@ def _limits_assumed(study) -> str:
         return ""
     out = ["<h3>Limits and failures</h3>"]
     for lim in study.limits:
-        out.append(f"<p><b>{escape(lim.words())}</b>: drawn for each world from its own prior, independent of the "
-                   "objective, and measured with every trial that runs:</p>"
+        related = ("independent of the objective" if not lim.correlation else
+                   f"correlated with the objective (ρ = {number(lim.correlation)} across worlds; the campaigns' belief "
+                   "models it independently)")
+        out.append(f"<p><b>{escape(lim.words())}</b>: drawn for each world from its own prior, {related}, and measured "
+                   "with every trial that runs:</p>"
                    f"<table class='kv'>{_prior_rows(lim.prior, study)}</table>")
     fw = study.world.fails_where
     if fw is not None:

@@ -85,6 +85,8 @@ def dump_study(study: Study, *, header: dict[str, Any] | None = None, history_fi
         side = "below" if limit.below is not None else "above"
         lines += ["", "[[limit]]", f"name = {toml_value(limit.name)}", f"{side} = {limit.bound!r}",
                   *_prior_lines(limit.prior, study.space)]
+        if limit.correlation:
+            lines.append(f"correlation = {limit.correlation!r}")
     for stop in study.stops:   # written only when the study has some: other studies dump (and hash) as before
         lines += ["", "[[stop]]", f"rule = {toml_value(stop.rule)}", f"label = {toml_value(stop.label)}"]
         lines += [f"{k} = {toml_value(v)}" for k, v in stop.settings]

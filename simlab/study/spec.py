@@ -263,7 +263,7 @@ def _read_limits(r: "_Reader", data: dict, space: Space) -> tuple[LimitSpec, ...
     out, seen = [], set()
     for i, t in enumerate(tables):
         where = f"limit[{i}]"
-        r.keys(t, where, ("name", "below", "above", "kernel", "lengthscale", "amplitude", "mean", "noise"))
+        r.keys(t, where, ("name", "below", "above", "kernel", "lengthscale", "amplitude", "mean", "noise", "correlation"))
         name = r.string(t, f"{where}.name")
         if not _NAME.match(name) or len(name) > NAME_LENGTH:
             r.fail(f"{where}.name", f"must be a short name of letters, digits, _ . - (it names the limit in the report); got {name!r}")
@@ -277,7 +277,8 @@ def _read_limits(r: "_Reader", data: dict, space: Space) -> tuple[LimitSpec, ...
                    + (" and ".join(sides) if sides else "neither"))
         bound = r.number(t, f"{where}.{sides[0]}")
         prior = _read_prior(r, t, where, space, base=None, noise_default=0.0)
-        out.append(LimitSpec(name=name, prior=prior, **{sides[0]: bound}))
+        rho = r.number(t, f"{where}.correlation", low=-1.0, high=1.0, low_open=True, high_open=True, default=0.0)
+        out.append(LimitSpec(name=name, prior=prior, correlation=rho, **{sides[0]: bound}))
     return tuple(out)
 
 

@@ -286,13 +286,17 @@ class FailSpec:
 class LimitSpec:
     """One ``[[limit]]``: a quantity measured with each trial that must stay below or above a bound.
 
-    Worlds draw it from its own prior (independent of the objective); the belief models it with its
-    own Gaussian process of the same prior. Exactly one of ``below`` and ``above`` is set."""
+    Worlds draw it from its own prior, independent of the objective unless ``correlation`` is set (then
+    each world's limit is ``mean + amplitude (rho z_f + sqrt(1 - rho^2) z)`` with z_f the objective's
+    standardised deviation and z a draw of the limit's own kernel); the belief models it with its own
+    Gaussian process of the same prior, independent of the objective. Exactly one of ``below`` and
+    ``above`` is set."""
 
     name: str
     prior: Prior                       # kernel, lengthscale, amplitude, mean (user units), noise
     below: float | None = None
     above: float | None = None
+    correlation: float = 0.0           # with the objective (user orientation), at every input; 0: independent
 
     @property
     def bound(self) -> float:

@@ -64,13 +64,43 @@ class WorldLimits:
         return true + self.noise * self.shocks[:, t]
 
 
+class Blend(World):
+    """``offset + sum_i weight_i world_i``: a limit correlated with the objective (its own draw mixed with the
+    objective's standardised deviation)."""
+
+    def __init__(self, offset: float, parts):
+        self.offset, self.parts = float(offset), [(float(w), world) for w, world in parts]
+        self.dim = self.parts[0][1].dim
+
+    def __call__(self, U):
+        return self.offset + sum(w * world(U) for w, world in self.parts)
+
+    def grad(self, U):
+        return sum(w * world.grad(U) for w, world in self.parts)
+
+    def rank_values(self, U):
+        return self.offset + sum(w * world.rank_values(U) for w, world in self.parts)
+
+    def roughness(self):
+        """The roughest part's (shortest lengthscales, smallest smoothness), so a search scales with it."""
+        rough = [world.roughness() for _, world in self.parts]
+        rough = [x for x in rough if x is not None]
+        if not rough:
+            return None
+        return np.min([ls for ls, _ in rough], axis=0), min(nu for _, nu in rough)
+
+
 def _unit(kernel_name, lengthscale, amplitude, study: Study):
     return make_kernel(kernel_name, np.asarray(lengthscale) / study.space.width, amplitude)
 
 
-def make_limits(study: Study, r: int) -> WorldLimits | None:
+def make_limits(study: Study, r: int, objective: World | None = None) -> WorldLimits | None:
     """Replicate r's limits (None when the study has neither [[limit]]s nor fails_where). Each comes from
-    its own keyed stream ("limit" + name, "fails"), so adding a limit leaves the objective unchanged."""
+    its own keyed stream ("limit" + name, "fails"), so adding a limit leaves the objective unchanged. A limit
+    with a ``correlation`` rho mixes its own unit draw z with the objective's standardised deviation
+    z_f = (f - mean) / amplitude (user orientation): ``mean + amplitude (rho z_f + sqrt(1 - rho^2) z)``, so
+    at every input its correlation with the objective across worlds is rho (with equal kernels, at every
+    pair of inputs too)."""
     if not study.constrained:
         return None
     n_freq = dict(study.world.method_settings).get("features", 1024)
@@ -78,8 +108,17 @@ def make_limits(study: Study, r: int) -> WorldLimits | None:
     quantities, slacks, noise, shocks = [], [], [], []
     for lim in study.limits:
         p = lim.prior
-        world = FeatureWorld(_unit(p.kernel, p.lengthscale, p.amplitude, study), p.mean,
-                             stream(study.seed, r, "limit", lim.name), n_freq)
+        if lim.correlation == 0.0:
+            world = FeatureWorld(_unit(p.kernel, p.lengthscale, p.amplitude, study), p.mean,
+                                 stream(study.seed, r, "limit", lim.name), n_freq)
+        else:
+            rho, obj = lim.correlation, study.world.prior
+            own = FeatureWorld(_unit(p.kernel, p.lengthscale, 1.0, study), 0.0, stream(study.seed, r, "limit", lim.name),
+                               n_freq)
+            # internal objective f_int = sign * f_user, so amplitude * rho * (f_user - m) / a is linear in f_int
+            scale = p.amplitude * rho / obj.amplitude
+            world = Blend(p.mean - scale * obj.mean, [(scale * study.sign, objective),
+                                                      (p.amplitude * np.sqrt(1.0 - rho**2), own)])
         quantities.append(world)
         slacks.append(Slack(world, lim.bound, int(lim.sign)))
         noise.append(p.noise)

@@ -203,7 +203,7 @@ def make_replicate(study: Study, r: int) -> Replicate:
     B = c.horizon
     world = make_world(study, r)
     u_best, v_best, gap = world_optimum(world, study, r)
-    limits, worst = make_limits(study, r), float("nan")
+    limits, worst = make_limits(study, r, world), float("nan")
     if limits is not None:
         u_best, v_best, worst, gap = feasible_optimum(world, limits, (u_best, v_best, gap), study, r)
     rng = stream(study.seed, r, "design")
