@@ -83,9 +83,9 @@ def _toml(value) -> str:
 def _document(data: dict) -> str:
     lines = []
     for section, table in data.items():
-        if section == "policy":
+        if section in ("policy", "limit"):
             for p in table:
-                lines.append("[[policy]]")
+                lines.append(f"[[{section}]]")
                 lines += [f"{k} = {_toml(v)}" for k, v in p.items()]
         else:
             lines.append(f"[{section}]")
@@ -93,13 +93,13 @@ def _document(data: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _mutate(edits, drops):
+def _mutate(edits, drops, base=BASE):
     import copy
-    data = copy.deepcopy(BASE)
+    data = copy.deepcopy(base)
     data.setdefault("belief", {})
     for path, value in edits:
         table = data[path[0]]
-        if path[0] == "policy":
+        if path[0] in ("policy", "limit"):
             table = table[path[1]]
         key = path[-1]
         if value is None:
@@ -152,6 +152,52 @@ def test_generated_studies_fail_cleanly_or_run(edits, drops, tmp_path_factory, c
     observed = traces[~traces["lost"]]
     assert not observed.isna().any().any()
     assert (traces["regret"] >= 0).all()
+
+
+# A study with a limit and a failing region: edits of those tables and of the settings that go with them.
+LIMITED = {**BASE,
+           "world": {**BASE["world"], "fails_where": {"share": 0.2, "lengthscale": 0.3}},
+           "target": {"regret": 0.1, "feasible_chance": 0.9},
+           "policy": [{"rule": "ei", "feasible": "weight"}, {"rule": "thompson", "feasible": "weight"},
+                      {"rule": "random"}],
+           "limit": [{"name": "pressure", "below": 1.0, "lengthscale": 0.4, "amplitude": 1.0, "noise": 0.1}]}
+LIMIT_KEYS = [("limit", 0, "name"), ("limit", 0, "below"), ("limit", 0, "above"), ("limit", 0, "lengthscale"),
+              ("limit", 0, "amplitude"), ("limit", 0, "mean"), ("limit", 0, "noise"), ("limit", 0, "kernel"),
+              ("limit", 0, "correlation"), ("limit", 0, "typo"), ("world", "fails_where"), ("target", "feasible_chance"),
+              ("policy", 0, "feasible"), ("policy", 2, "feasible"), ("space", "c"), ("world", "function")]
+LIMIT_VALUES = st.one_of(VALUES, st.sampled_from(["weight", "ignore", "a", "pressure", "regret"]),
+                         st.fixed_dictionaries({"share": st.floats(-0.5, 1.5), "lengthscale": st.floats(-1.0, 2.0)}),
+                         st.floats(-1.5, 1.5))
+
+
+@settings(max_examples=80, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(edits=st.lists(st.tuples(st.sampled_from(LIMIT_KEYS), LIMIT_VALUES), min_size=1, max_size=3))
+@pytest.mark.slow
+def test_generated_limit_studies_fail_cleanly_or_run(edits, tmp_path_factory, capsys):
+    """Hypothesis (fixed seed, 80 examples) edits a study with a [[limit]] and fails_where: names that clash,
+    both or neither bound, correlations at and beyond +-1, shares outside (0, 0.9], feasible settings
+    without limits or on rules without the option. Each is refused in one line (exit 2, nothing written) or
+    runs one replicate with regret >= 0 and the limit columns in the traces."""
+    tmp = tmp_path_factory.mktemp("fuzz-limits")
+    path = tmp / "study.toml"
+    path.write_text(_document(_mutate(edits, [], LIMITED)), encoding="utf-8")
+    out = tmp / "out"
+    code = main(["check", str(path), "--no-timing"])
+    captured = capsys.readouterr()
+    assert code in (0, 2)
+    if code == 2:
+        _error_line(captured.err, path)
+        assert main(["run", str(path), "--out", str(out), "--quiet"]) == 2
+        _error_line(capsys.readouterr().err, path)
+        assert not out.exists()
+        return
+    code = main(["run", str(path), "--out", str(out), "--replicates", "1", "--quiet", "--no-report"])
+    err = capsys.readouterr().err
+    assert code == 0, err
+    traces = pd.read_parquet(out / "traces.parquet")
+    assert (traces["regret"] >= 0).all() and traces["regret"].notna().all()
+    assert {"failed", "breaks", "rec_breaks"} <= set(traces.columns)
 
 
 @settings(max_examples=60, deadline=None, derandomize=True, database=None,
