@@ -24,9 +24,10 @@ class FeasibleOptimum:
     value : float
         The world's value at ``u`` (float64).
     worst : float
-        The largest world value over the feasible ranking points (evaluated in float64 at
-        the point that ranked worst): the regret reference of a campaign that recommends
-        an infeasible input. Never below ``value``; equal to it when ``found`` is False.
+        The largest world value found over the feasible set: the feasible ranking point that
+        ranked worst, evaluated in float64 and polished upward by SLSQP (unless ``n_starts``
+        is 0): the regret reference of a campaign that recommends an infeasible input. Never
+        below ``value``; equal to it when ``found`` is False.
     feasible_share : float
         Share of the ranking points that are feasible (an estimate of the feasible volume).
     found : bool
@@ -211,6 +212,8 @@ def feasible_minimum(world, constraints, dim: int, rng, *, n_rank: int | None = 
     if feasible.any():
         i = np.flatnonzero(feasible)[np.argmax(f[feasible])]
         worst = float(world(U[i:i + 1])[0])
+        if n_starts is None or n_starts > 0:
+            worst = _worst_polished(world, constraints, U[i], worst, f, C)
 
     # 2. a feasible unconstrained optimum is the answer
     if unconstrained is not None and _violation(constraints, unconstrained[0][None])[0] <= 0.0:
@@ -266,6 +269,30 @@ def feasible_minimum(world, constraints, dim: int, rng, *, n_rank: int | None = 
     u = seen[int(np.argmin(_violation(constraints, seen)))]
     v = float(world(u[None])[0])
     return FeasibleOptimum(u=u, value=v, worst=v, feasible_share=share, found=False)
+
+
+class _Negated:
+    """``-world``: the largest feasible value is the smallest of this."""
+
+    def __init__(self, world):
+        self.world = world
+
+    def __call__(self, U):
+        return -self.world(U)
+
+    def grad(self, U):
+        return -self.world.grad(U)
+
+
+def _worst_polished(world, constraints, x0, worst: float, f, C) -> float:
+    """The largest feasible value, polished up from the worst feasible ranking point (SLSQP on ``-world``,
+    kept only where feasible in float64). It is the regret charged to a campaign that ships an infeasible
+    input, so it is searched upward rather than taken from the ranking points alone, which could only
+    understate it (a missed worst value makes that penalty too small: search harder, never round in the
+    tool's favour)."""
+    cand = _Candidates(_Negated(world), constraints)
+    cand.polish(np.asarray(x0, dtype=float), _spread(f), np.array([_spread(row) for row in C]))
+    return max([worst] + [-v for v in cand.values])
 
 
 class _Candidates:
