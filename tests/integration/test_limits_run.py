@@ -179,3 +179,15 @@ def test_snapshot_shows_the_feasible_region(active):
     fig = snapshot_figure(study, frame, replicate=0, policy="weigh", trial=12, samples=50, points=101)
     gids = {a.get_gid() for ax in fig.axes for a in ax.get_children()}
     assert "feasible-chance" in gids and ("infeasible" in gids) == bool(snap.infeasible.any())
+
+
+def test_constrained_traces_do_not_depend_on_jobs_or_chunks():
+    """common practice (the project's contract, DEVELOPERS "Lockstep replicates"): the same bits whatever the
+    number of jobs and the chunk size, limits and failures included (every draw from its keyed stream)."""
+    from simlab.replay.runner import replay as replay_all
+    study = parse_study(tomllib.loads(STUDY.format(replicates=4, bound=32.0,
+                                                   fails="fails_where = { share = 0.2, lengthscale = 0.3 }")),
+                        source="t")
+    one = replay_all(study, jobs=1, chunk=4)
+    for jobs, chunk in ((1, 1), (2, 3)):
+        pd.testing.assert_frame_equal(replay_all(study, jobs=jobs, chunk=chunk), one, check_exact=True)
