@@ -36,9 +36,13 @@ def _cautions(page):
 
 
 def test_every_setting_is_shown_resolved_with_its_help_text():
-    # with rounds of two trials every setting counts, the round-filling ones (fill, lie) too
+    # with rounds of two trials every setting counts, the round-filling ones (fill, lie) too; how a rule treats
+    # limits (feasible) only in a study with limits or failures
     rounds = _row(_assumptions(_study({"rule": "pi", "label": "PI"}, batch=2), "test"), "PI")
     for key, option in POLICIES["pi"].options.items():          # every setting and its help text
+        if key == "feasible":
+            assert "<code>feasible = " not in rounds
+            continue
         assert f"<code>{key} = " in rounds and option.help.replace('"', "&quot;") in rounds
     assert rounds.index("margin = ") < rounds.index("fill = ")  # the rule's own setting first
     page = _assumptions(_study({"rule": "pi", "label": "PI"}, {"rule": "ei", "label": "EI", "margin": 0.05},
@@ -47,7 +51,7 @@ def test_every_setting_is_shown_resolved_with_its_help_text():
     assert "<code>margin = 0</code>" in row                    # the default, written out, not "defaults"
     for key, option in POLICIES["pi"].options.items():          # one trial per round: all but fill and lie
         shown = f"<code>{key} = " in row
-        assert shown == (key not in ("fill", "lie")), key
+        assert shown == (key not in ("fill", "lie", "feasible")), key
     assert "<code>margin = 0.05</code>" in _row(page, "EI")
     assert "<td>defaults</td>" not in page                     # what the table said before
     assert "none (the rule has no settings)" in _row(page, "Random")
