@@ -193,7 +193,9 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     -----
     1. ``plan.n_search`` scrambled Sobol' points, plus any ``extra`` points, are ranked; the
        ``plan.n_starts`` best in distinct basins (:func:`spread_best`)
-       are kept as starts. With ``band`` and ``plan.descend``, as many more starts come from
+       are kept as starts. With ``band``, half as many more come from the whole function's
+       ranking, and those are zoomed on the whole function at every resolution (step 3), so
+       that a narrow basin deepened by the fine features is not left at the coarse rounds. With ``band`` and ``plan.descend``, as many more starts come from
        ``descend`` times as many good points after 24 normalised gradient steps on the
        smooth part, so that basins compete by (nearly) their floors.
     2. ``plan.climb`` damped Newton steps on the ranking values (:func:`_newton`) move every
@@ -231,31 +233,52 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     half = plan.half.copy()
     v = rank_at(U, half)
     starts = U[spread_best(U, v, n_starts, plan.separation)].copy()
+    fine = np.zeros(len(starts), dtype=bool)     # starts zoomed on the whole function at every resolution
+    if band is not None:
+        # and starts from the whole function's ranking, zoomed on the whole function: a narrow basin whose
+        # depth comes from the fine features looks poor at the coarse resolutions, so the banded zoom would
+        # leave it (4-D Matern 1/2, benchmarks/world_optima.py: a basin 0.3 amplitudes deeper than the one
+        # every banded search settled in)
+        whole = U[spread_best(U, rank(U), max(n_starts // 2, 1), plan.separation)]
+        starts = np.vstack([starts, whole])
+        fine = np.r_[fine, np.ones(len(whole), dtype=bool)]
     if band is not None and plan.descend > 0:
         # More starts: descend from many good points on the smooth part, so that basins are
         # ranked by (nearly) their floors rather than by wherever a sample fell in them.
         head = spread_best(U, v, plan.descend * n_starts, 0.5 * plan.separation)
         X, vx = _descend(band, U[head], _BAND_RADIANS / float(np.min(half)), plan.half)
-        starts = np.vstack([starts, X[spread_best(X, vx, n_starts, plan.separation)]])
+        more = X[spread_best(X, vx, n_starts, plan.separation)]
+        starts = np.vstack([starts, more])
+        fine = np.r_[fine, np.zeros(len(more), dtype=bool)]
     if plan.climb > 0:
         if local is None:
             starts, _ = polish(fg, starts, maxiter=plan.polish_steps)
         else:
             starts = _newton(local, starts, plan.climb, plan.half)
+
+    def zoom_values(C, half):
+        # (starts, k, d) candidates: each start's own at its resolution (the whole function for `fine` ones)
+        out = np.empty(C.shape[:2])
+        if (~fine).any():
+            out[~fine] = rank_at(C[~fine].reshape(-1, dim), half).reshape(-1, C.shape[1])
+        if fine.any():
+            out[fine] = rank(C[fine].reshape(-1, dim)).reshape(-1, C.shape[1])
+        return out
+
     if plan.zoom > 0:
-        best_v = rank_at(starts, half)
+        best_v = zoom_values(starts[:, None, :], half)[:, 0]
     for r in range(plan.zoom):
         if band is not None and r > 0:
-            best_v = rank_at(starts, half)        # the starts seen at the finer resolution
+            best_v = zoom_values(starts[:, None, :], half)[:, 0]   # the starts seen at the finer resolution
         cand = starts[:, None, :] + half * (2.0 * rng.random((len(starts), plan.zoom_points, dim)) - 1.0)
         cand = np.clip(cand, 0.0, 1.0)
-        vc = rank_at(cand.reshape(-1, dim), half).reshape(len(starts), plan.zoom_points)
+        vc = zoom_values(cand, half)
         j = np.argmin(vc, axis=1)
         better = vc[np.arange(len(starts)), j] < best_v
         starts[better] = cand[better, j[better]]
         best_v[better] = vc[better, j[better]]
         half /= 2.0
-        if r + 1 in plan.keep_after and len(starts) > 2 * plan.n_polish:
+        if r + 1 in plan.keep_after and len(starts) > 2 * plan.n_polish and not fine.any():
             # successive halving: the starts that look worse at this resolution stop here
             order = np.argsort(best_v, kind="stable")[: max(2 * plan.n_polish, len(starts) // 2)]
             starts, best_v = starts[order], best_v[order]
