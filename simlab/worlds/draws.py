@@ -77,6 +77,7 @@ class SearchPlan:
     climb: int = 0           # lockstep quasi-Newton steps on the ranking values from every start
     polish_steps: int = 500  # iteration limit of the float64 polish
     keep_after: tuple = ()   # zoom rounds after which only the better half of the starts go on
+    whole: float = 0.5       # banded: this share of n_starts more starts from the whole function's ranking
 
 
 # Search sizes (measured by benchmarks/world_optima.py against an independent thorough search:
@@ -234,12 +235,12 @@ def find_minimum(f, fg, dim: int, rng, *, lengthscale=None, nu: float = np.inf, 
     v = rank_at(U, half)
     starts = U[spread_best(U, v, n_starts, plan.separation)].copy()
     fine = np.zeros(len(starts), dtype=bool)     # starts zoomed on the whole function at every resolution
-    if band is not None:
+    if band is not None and plan.whole > 0:
         # and starts from the whole function's ranking, zoomed on the whole function: a narrow basin whose
         # depth comes from the fine features looks poor at the coarse resolutions, so the banded zoom would
         # leave it (4-D Matern 1/2, benchmarks/world_optima.py: a basin 0.3 amplitudes deeper than the one
         # every banded search settled in)
-        whole = U[spread_best(U, rank(U), max(n_starts // 2, 1), plan.separation)]
+        whole = U[spread_best(U, rank(U), int(round(plan.whole * n_starts)), plan.separation)]
         starts = np.vstack([starts, whole])
         fine = np.r_[fine, np.ones(len(whole), dtype=bool)]
     if band is not None and plan.descend > 0:
