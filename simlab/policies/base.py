@@ -79,6 +79,10 @@ class Policy(WithOptions):
         self._set_options(settings)
         self.ctx: Context | None = None
 
+    def weighted(self, post) -> bool:
+        """The rule weighs the chance of feasibility (``feasible = "weight"`` in a study with limits)."""
+        return getattr(self, "feasible", "ignore") == "weight" and post.feasible is not None
+
     def start(self, ctx: Context) -> None:
         """Called once before the first trial the policy chooses."""
         self.ctx = ctx
@@ -228,10 +232,6 @@ class Acquisition(Policy):
     # ------------------------------------------------------------------ choosing
     zero_at_evaluated: ClassVar[bool] = False   # with zero noise the score is exactly 0 at an evaluated input
 
-    def weighted(self, post) -> bool:
-        """The score is weighted by the chance of feasibility (``feasible = "weight"`` in a study with limits)."""
-        return self.feasible == "weight" and post.feasible is not None
-
     def choose(self, post, t):
         weighted = self.weighted(post)
         if self.lockstep and not self._pending and not weighted:
@@ -331,27 +331,23 @@ class Acquisition(Policy):
         ``phi_j(x) = Phi((L ||x - x_j|| - mu_j + M) / sd_j)``: the probability that x lies
         outside the ball around x_j that cannot hold the minimum (Gonzalez et al. 2016,
         eq. 4, in minimisation form). Scores that are not already logarithms are first
-        mapped through ``log(softplus(a))`` as in that paper.
+        mapped through ``log(softplus(a))`` as in that paper; a ``positive_score`` (MES's
+        information) through its own logarithm, with penalizers as with weighting.
         """
         weighted = self.weighted(post)
         if not self._pending and not weighted:
             return values if grads is None else (values, grads)
         U = np.atleast_2d(U)
         if weighted and self._feasible_first:
-            values, grads = np.zeros(len(U)), None if grads is None else np.zeros(U.shape)
-        if self.log_score or (weighted and self._feasible_first):
+            total, g = np.zeros(len(U)), None if grads is None else np.zeros(U.shape)
+        elif self.log_score:
             total, g = values.copy(), None if grads is None else grads.copy()
         elif weighted and self.bound_score:
-            gain = values + self._bound_best                # best - bound
-            safe = np.maximum(gain, 1e-300)
-            total = np.log(safe)
-            g = None if grads is None else np.where((gain > 1e-300)[:, None], grads / safe[:, None], 0.0)
+            total, g = _log_positive(values + self._bound_best, grads)   # the bound's gain, best - bound
         elif self.positive_score:
             # a positive utility: its own logarithm (softplus would flatten an information gain of a few
-            # hundredths of a nat to log 2), floored where it underflows
-            safe = np.maximum(values, 1e-300)
-            total = np.log(safe)
-            g = None if grads is None else np.where((values > 1e-300)[:, None], grads / safe[:, None], 0.0)
+            # hundredths of a nat to log 2)
+            total, g = _log_positive(values, grads)
         else:
             sp = np.logaddexp(0.0, values)                      # softplus
             total = np.log(sp)
@@ -374,6 +370,15 @@ class Acquisition(Policy):
                 chance, dchance = post.feasible.log_chance(U, grad=True)
                 total, g = total + chance, g + dchance
         return total if grads is None else (total, g)
+
+
+def _log_positive(values, grads=None):
+    """``log(a)`` of a positive score and its gradient ``grad a / a``, floored at 1e-300 where it underflows
+    (there the gradient is 0)."""
+    safe = np.maximum(values, 1e-300)
+    if grads is None:
+        return np.log(safe), None
+    return np.log(safe), np.where((values > 1e-300)[:, None], grads / safe[:, None], 0.0)
 
 
 def best_row(st: Stack, block: Block, values, *, skip_evaluated: bool = False) -> np.ndarray:

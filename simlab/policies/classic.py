@@ -430,13 +430,8 @@ class ThompsonSampling(Acquisition):
         if not self.weighted(post) or t >= self.ctx.horizon - self.exploit_last:
             return super().choose(post, t)
         rng, pool = self.ctx.rng, self.ctx.pool
-        self._features(post, [rng])
-        sample = self.sample = self._samples[0]
-        sample.redraw(rng)
-        eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
-        r = post.y - sample(post.X) - eps
-        self.beta = post.solve(r)
-        values = sample.values32(pool) + post.pool_cross(r)   # the objective's sample, ranked in float32
+        r = self._draw_one(post)
+        values = self.sample.values32(pool) + post.pool_cross(r)   # the objective's sample, ranked in float32
         ok = post.feasible.sample_pool(rng, self.features)
         if ok.any():
             return pool[int(np.argmin(np.where(ok, values, np.inf)))].copy()
@@ -452,6 +447,12 @@ class ThompsonSampling(Acquisition):
 
     def prepare(self, post):
         """A fresh sample over the whole pool (a round filled by penalizers takes this path)."""
+        r = self._draw_one(post)
+        self._pool_values = self.sample(self.ctx.pool) + post.pool_cross(r)
+
+    def _draw_one(self, post):
+        """One campaign's fresh posterior sample: new weights (``self.sample``), its data correction
+        ``self.beta``, and the residual r it was solved from (for the pool's correction)."""
         rng = self.ctx.rng
         self._features(post, [rng])
         self.sample = self._samples[0]
@@ -459,7 +460,7 @@ class ThompsonSampling(Acquisition):
         eps = np.sqrt(post.s2) * rng.standard_normal(post.n)
         r = post.y - self.sample(post.X) - eps
         self.beta = post.solve(r)
-        self._pool_values = self.sample(self.ctx.pool) + post.pool_cross(r)
+        return r
 
     def score_pool(self, post):
         return -self._pool_values

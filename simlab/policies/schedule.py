@@ -153,7 +153,7 @@ class GPHedge(Policy):
         if not self._holding:            # first choice of a round: the last round's results are in
             self.collect(st)
             self._n_seen = st.n
-        if st.feasible is not None and self.feasible == "weight":   # one campaign, its members weighted
+        if self.weighted(st):            # one campaign, its members weighted
             nominees = np.stack([m.choose(st, t) for m in self.members])[None]
         else:
             nominees = np.stack([m.choose_block(st, t, block) for m in self.members], axis=1)   # (B, M, d)
