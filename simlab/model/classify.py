@@ -184,6 +184,24 @@ class FailureBelief:
         q, dq_dmean, dq_dvar = logistic_gaussian_mean(mean, var, grad=True)
         return q, dq_dmean[:, None] * dmean + dq_dvar[:, None] * dvar
 
+    def draw_latent(self, U, prior, rng) -> np.ndarray:
+        """One draw of the approximate posterior of ``f`` at U (q, d), pathwise: ``prior`` is a random-feature
+        draw of the latent prior (a ``simlab.worlds.draws.FeatureSample`` with the prior mean; ranked at U in
+        float32), corrected through the data. Laplace's posterior is that of a regression on the pseudo-targets
+        ``f_hat + W^-1 (y - pi)`` with noise variance ``W^-1`` (R&W 2006, section 3.4.2: the mean and
+        covariance of eqs. 3.21 and 3.24), so Matheron's rule applies (Wilson et al. 2020, ICML), through
+        ``(K + W^-1)^-1 = W^1/2 B^-1 W^1/2``; ``rng`` draws the pseudo-noise."""
+        f = prior.values32(U)
+        if self._L is None:
+            return f
+        w = self._w_sqrt
+        z = rng.standard_normal(len(self.worked))
+        # W^1/2 (pseudo-target - f0(X) - eps), with W^1/2 eps = z ~ N(0, I); (y - pi) / W^1/2 stays finite
+        # as pi -> y (it tends to 0)
+        right = w * (self.mode - prior(self.X)) + self._grad / np.maximum(w, 1e-300) - z
+        alpha = w * linalg.cho_solve((self._L, True), right, check_finite=False)
+        return f + self.kernel(U, self.X) @ alpha
+
     def __repr__(self):
         return (f"FailureBelief({self.kernel!r}, n={len(self.worked)}, worked={int(self.worked.sum())}, "
                 f"log_marginal_likelihood={self.log_marginal_likelihood:.6g})")

@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..lazy import linalg, optimize, special
+from ..lazy import optimize, special
 from .classify import FailureBelief, logistic_gaussian_mean
 from .gp import Posterior
 from .kernels import Kernel
@@ -163,10 +163,8 @@ class FeasibleBelief:
         (sigmoid(f) >= 1/2, i.e. f >= 0). For Thompson sampling with sampled limits.
 
         Each limit is drawn pathwise (Matheron's rule, Wilson et al. 2020, ICML): a random-feature prior
-        draw g0 corrected by ``K(., X) (K + s2 I)^-1 (y - g0(X) - eps)``. The classifier's Laplace
-        posterior is that of a regression on the pseudo-targets ``f_hat + W^-1 (y - pi)`` with noise
-        variance ``W^-1`` (R&W 2006, section 3.4.2: it has the mean and covariance of eqs. 3.21 and
-        3.24), so its latent is drawn the same way, through ``(K + W^-1)^-1 = W^1/2 B^-1 W^1/2``.
+        draw g0 corrected by ``K(., X) (K + s2 I)^-1 (y - g0(X) - eps)``; the classifier's latent the same
+        way (:meth:`simlab.model.classify.FailureBelief.draw_latent`).
         """
         from ..worlds.draws import FeatureSample
 
@@ -180,16 +178,7 @@ class FeasibleBelief:
             ok &= lm.sign * (g - lm.bound) <= 0
         c = self.classifier
         if c is not None:
-            draw = FeatureSample(c.kernel, c.prior_mean, rng, features)
-            f = draw.values32(self.pool)
-            if len(c.worked):
-                w = c._w_sqrt
-                z = rng.standard_normal(len(c.worked))
-                # W^1/2 (pseudo-target - f0(X) - eps), with W^1/2 eps = z ~ N(0, I); (y - pi) / W^1/2 stays
-                # finite as pi -> y (it tends to 0)
-                right = w * (c.mode - draw(c.X)) + c._grad / np.maximum(w, 1e-300) - z
-                alpha = w * linalg.cho_solve((c._L, True), right, check_finite=False)
-                f = f + c.kernel(self.pool, c.X) @ alpha
+            f = c.draw_latent(self.pool, FeatureSample(c.kernel, c.prior_mean, rng, features), rng)
             ok &= f >= 0.0
         return ok
 

@@ -94,6 +94,7 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
     from ..stopping.record import StopRecorder, record_plan
 
     belief, observer, history = make_belief(study), make_observer(study), history_arrays(study)
+    feasible = make_feasible(study)   # None without limits; the same priors for every campaign
     plan = record_plan(study)      # None unless a [[stop]] rule reads the posterior: then nothing is recorded
     recorder = StopRecorder(plan, study.seed) if plan is not None else None
     c = study.campaign
@@ -111,8 +112,8 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
                                    history=history, snap=_snap(study), library=study.space.library is not None,
                                    stop=_stop_start(recorder, reps, spec.label))
             else:
-                traces = [_alone(study, spec, belief, observer, history, rep, b, _stop_start(recorder, [rep], spec.label))
-                          for rep in reps]
+                traces = [_alone(study, spec, belief, observer, history, rep, b, _stop_start(recorder, [rep], spec.label),
+                                 feasible) for rep in reps]
             for k, trace in enumerate(traces):
                 per[k].append((b, trace))
         for k in range(len(reps)):
@@ -129,7 +130,7 @@ def _stop_start(recorder, reps: list[Replicate], label: str):
 
 
 def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep: Replicate, budget: int,
-           stop=None) -> Trace:
+           stop=None, feasible=None) -> Trace:
     """One campaign replayed on its own (the reference path)."""
     def observe(f, t):
         return observer(f, rep.shocks[t], rep.lost[t])
@@ -140,7 +141,7 @@ def _alone(study: Study, spec, belief: Belief, observer: Observer, history, rep:
                         rng=stream(study.seed, r, "policy", spec.label), batch=study.campaign.batch,
                         history=history, refit_rng=stream(study.seed, r, "refit", spec.label),
                         library=study.space.library is not None, snap=_snap(study), stop=stop,
-                        limits=rep.limits, feasible=make_feasible(study))
+                        limits=rep.limits, feasible=feasible)
 
 
 def _snap(study: Study):

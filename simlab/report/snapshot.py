@@ -156,8 +156,10 @@ def _snapshot_data(study, traces, replicate, policy, trial, along, samples, poin
     grid = space.grid(j) if j in space.discrete else np.linspace(0.0, 1.0, points)
     if space.dim == 1 and j not in space.discrete:
         grid = np.unique(np.concatenate([grid, U[:, 0]]))
-    recommend = post.feasible.recommend(post) if post.feasible is not None and post.n else (post.recommend() if post.n else None)
-    base = U[recommend].copy() if recommend is not None else np.full(space.dim, 0.5)
+    if not post.n:
+        base = np.full(space.dim, 0.5)
+    else:               # the campaign's own recommendation (among inputs believed feasible, with limits)
+        base = U[post.feasible.recommend(post) if post.feasible is not None else post.recommend()].copy()
     line = np.repeat(base[None, :], grid.size, axis=0)
     line[:, j] = grid
     mu, sd = post.moments(line)
