@@ -216,13 +216,12 @@ def _columns(t: Trace, trial: np.ndarray, fstar: float, penalty: float | None = 
     """
     seen = np.where(np.isfinite(t.y), _feasible_f(t), np.inf)   # lost and failed trials were never seen
     best = np.minimum.accumulate(seen)
-    best = np.where(np.isfinite(best), best, t.f[t.rec])  # nothing seen yet: the current input
     regret = t.f[t.rec] - fstar
     if t.limits:
         regret = np.where(t.limits["rec_breaks"], max(penalty, 0.0), np.maximum(regret, 0.0))
-        best = np.where(np.isfinite(best), best, fstar + max(penalty, 0.0))
-    return {"U": t.U, "y": t.y, "f": t.f, "regret": regret, "regret_seen": np.maximum(best - fstar, 0.0) if t.limits
-            else best - fstar, "rec_trial": trial[t.rec], **t.stats, **t.limits}
+    regret_seen = np.where(np.isfinite(best), best - fstar, regret)   # nothing seen yet: as the recommendation
+    return {"U": t.U, "y": t.y, "f": t.f, "regret": regret, "regret_seen": regret_seen,
+            "rec_trial": trial[t.rec], **t.stats, **t.limits}
 
 
 def _compose(parts: list[tuple[int, dict]], trial: np.ndarray) -> dict[str, np.ndarray]:

@@ -113,6 +113,9 @@ def test_traces_record_limits_and_regret_stays_honest(active):
     assert {"failed", "breaks", "rec_breaks"} <= set(frame.columns)
     assert not frame.failed.any()                    # no fails_where: nothing fails
     assert (frame.regret >= 0).all() and np.isfinite(frame.regret).all()
+    # the best feasible input seen is never worse than the recommendation (before anything feasible is seen,
+    # it is the recommendation, charged as such: never a 0 taken from an input that broke a limit)
+    assert (frame.regret_seen >= 0).all() and (frame.regret_seen <= frame.regret + 1e-12).all()
     rows = frame.set_index(["policy", "replicate", "trial"])
     ok = frame[~frame.rec_breaks & (frame.trial > 0)]
     rec = rows.loc[list(zip(ok.policy, ok.replicate, ok.rec_trial))]
