@@ -252,11 +252,7 @@ def _read_fails_where(r: "_Reader", wt: dict, space: Space) -> FailSpec | None:
 
 def _read_limits(r: "_Reader", data: dict, space: Space) -> tuple[LimitSpec, ...]:
     """``[[limit]]`` tables (none is fine): a name, ``below`` or ``above``, and the quantity's own prior."""
-    if "limit" not in data:
-        return ()
-    tables = data["limit"]
-    if not isinstance(tables, list) or not all(isinstance(t, dict) for t in tables):
-        r.fail("limit", "must be written as [[limit]] tables, e.g. [[limit]] name = \"viscosity\" below = 40.0")
+    tables = r.tables(data, "limit", 'name = "viscosity" below = 40.0')
     if len(tables) > MAX_LIMITS:
         r.fail("limit", f"at most {MAX_LIMITS} [[limit]] tables; got {len(tables)}")
     reserved = set(space.names) | set(TRACE_COLUMNS) | set(STOP_COLUMNS) | set(LIMIT_COLUMNS)
@@ -689,9 +685,7 @@ def _level_correlation(r: "_Reader", t: dict, field: str, space: Space) -> tuple
 def _read_policies(r: "_Reader", data: dict) -> tuple[PolicySpec, ...]:
     if "policy" not in data:
         r.fail("policy", "at least one [[policy]] table is required, e.g. [[policy]] rule = \"ei\"")
-    tables = data["policy"]
-    if not isinstance(tables, list) or not all(isinstance(t, dict) for t in tables):
-        r.fail("policy", "must be written as [[policy]] tables")
+    tables = r.tables(data, "policy")
     if not tables:
         r.fail("policy", "at least one [[policy]] table is required")
     out, seen = [], {}
@@ -727,11 +721,7 @@ def _read_stops(r: "_Reader", data: dict, campaign: CampaignSpec) -> tuple[StopS
     rule could never stop a campaign). Rules that read the same recorded column must agree on the
     settings that shape it (``StopRule.shared``): the column is recorded once per trial.
     """
-    if "stop" not in data:
-        return ()
-    tables = data["stop"]
-    if not isinstance(tables, list) or not all(isinstance(t, dict) for t in tables):
-        r.fail("stop", "must be written as [[stop]] tables, e.g. [[stop]] rule = \"confident\"")
+    tables = r.tables(data, "stop", 'rule = "confident"')
     out, seen, shaped = [], {}, {}
     for i, t in enumerate(tables):
         where = f"stop[{i}]"
@@ -788,6 +778,15 @@ class _Reader:
         if not isinstance(value, dict):
             self.fail(f"[{key}]", f"must be a table ([{key}] with keys below it); got {type(value).__name__}")
         return value
+
+    def tables(self, data: dict, key: str, example: str = "") -> list:
+        """The ``[[key]]`` tables (an empty list when there are none), refused unless written as such."""
+        if key not in data:
+            return []
+        tables = data[key]
+        if not isinstance(tables, list) or not all(isinstance(t, dict) for t in tables):
+            self.fail(key, f"must be written as [[{key}]] tables" + (f", e.g. [[{key}]] {example}" if example else ""))
+        return tables
 
     def as_number(self, value, field: str) -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):

@@ -63,6 +63,21 @@ VALUES = st.one_of(
 SECTIONS = st.sampled_from(["study", "space", "world", "campaign", "target", "policy"])
 
 
+def _checked(path: Path, out: Path, capsys):
+    """`simlab check` on a generated study: None when it is refused (one line, exit 2, and `simlab run`
+    refuses it the same way and writes nothing), else what check printed."""
+    code = main(["check", str(path), "--no-timing"])
+    captured = capsys.readouterr()
+    assert code in (0, 2)
+    if code == 0:
+        return captured
+    _error_line(captured.err, path)
+    assert main(["run", str(path), "--out", str(out), "--quiet"]) == 2
+    _error_line(capsys.readouterr().err, path)
+    assert not out.exists()
+    return None
+
+
 def _toml(value) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
@@ -125,15 +140,9 @@ def test_generated_studies_fail_cleanly_or_run(edits, drops, tmp_path_factory, c
     path = tmp / "study.toml"
     path.write_text(_document(_mutate(edits, drops)), encoding="utf-8")
     out = tmp / "out"
-    code = main(["check", str(path), "--no-timing"])
-    captured = capsys.readouterr()
-    assert code in (0, 2)
-    event("refused" if code == 2 else "accepted")
-    if code == 2:
-        _error_line(captured.err, path)
-        assert main(["run", str(path), "--out", str(out), "--quiet"]) == 2
-        _error_line(capsys.readouterr().err, path)
-        assert not out.exists()
+    captured = _checked(path, out, capsys)
+    event("refused" if captured is None else "accepted")
+    if captured is None:
         return
     # valid: run it small unless the generated sizes make that slow
     budgets = re.search(r"^budgets = \[(.*)\]$", captured.out, re.M).group(1)
@@ -183,14 +192,7 @@ def test_generated_limit_studies_fail_cleanly_or_run(edits, tmp_path_factory, ca
     path = tmp / "study.toml"
     path.write_text(_document(_mutate(edits, [], LIMITED)), encoding="utf-8")
     out = tmp / "out"
-    code = main(["check", str(path), "--no-timing"])
-    captured = capsys.readouterr()
-    assert code in (0, 2)
-    if code == 2:
-        _error_line(captured.err, path)
-        assert main(["run", str(path), "--out", str(out), "--quiet"]) == 2
-        _error_line(capsys.readouterr().err, path)
-        assert not out.exists()
+    if _checked(path, out, capsys) is None:
         return
     code = main(["run", str(path), "--out", str(out), "--replicates", "1", "--quiet", "--no-report"])
     err = capsys.readouterr().err
