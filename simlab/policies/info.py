@@ -21,7 +21,7 @@ _SCREEN = 5.0
 
 _LOG_SQRT_2PI = 0.5 * np.log(2.0 * np.pi)
 _SQRT_HALF_PI = np.sqrt(0.5 * np.pi)
-_GH_NODES, _GH_WEIGHTS = hermegauss(12)
+_GH_NODES, _GH_WEIGHTS = hermegauss(8)   # accuracy: max_value_information's notes
 _GH_WEIGHTS = _GH_WEIGHTS / np.sqrt(2.0 * np.pi)  # E[g(s)], s ~ N(0, 1)  ~  sum w_q g(s_q)
 
 
@@ -324,9 +324,11 @@ def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = Fal
 
       and the last term equals ``kappa lambda E_s[b(kappa gamma + rho s)]``, ``s ~ N(0, 1)``,
       ``b(u) = Phi(u) log Phi(u) / phi(u)`` (substitute ``u = (gamma + rho t) / kappa`` and
-      complete the square). ``b`` is smooth and grows at most linearly, so a 12-node
-      Gauss-Hermite rule evaluates I to within 1e-9 for any noise level (checked against
-      80 nodes for |gamma| <= 10). As ``s -> 0`` the form tends to the
+      complete the square). ``b`` is smooth and grows at most linearly, so an 8-node
+      Gauss-Hermite rule evaluates I to within 5e-8 nats, and its derivatives to within 5e-8
+      (against 80 nodes on a grid of |gamma| <= 10 and sd / s from 1e-3 to 1e3; 12 nodes:
+      1e-9, at 1.5 times the cost). Rankings of the pool rest on 16 sampled minima, whose Monte
+      Carlo error is many orders larger. As ``s -> 0`` the form tends to the
       noise-free one; as ``s -> inf`` it tends to 0.
 
     Derivatives use ``lambda' = -lambda (gamma + lambda)`` and ``b'(u) = log Phi(u) + 1 + u b(u)``.
