@@ -506,7 +506,7 @@ class MaxValueEntropySearch(Acquisition):
             return max_value_information(mu, sd, fstar).mean(-1)
         keep = max(keep, 1)
         out = max_value_information(mu, sd, fstar.max(-1, keepdims=True))[..., 0]    # the loose bound
-        first = np.argsort(-out, kind="stable")[:keep]
+        first = np.argpartition(-out, keep - 1)[:keep] if keep < len(out) else np.arange(len(out))
         exact = np.zeros(len(out), dtype=bool)
         out[first] = max_value_information(mu[first], sd[first], fstar, self._noise).mean(-1)
         exact[first] = True
@@ -515,8 +515,7 @@ class MaxValueEntropySearch(Acquisition):
         low = out[first].min()
         rows = np.flatnonzero(~exact & (out > low))
         out[rows] = max_value_information(mu[rows], sd[rows], fstar).mean(-1)     # the mean bound where it matters
-        order = np.argsort(-out, kind="stable")
-        order = order[~exact[order]]
+        order = rows[np.argsort(-out[rows], kind="stable")]     # the others' bound is at most low: never scored
         done, chunk = 0, 64
         while done < len(order):
             if out[order[done]] <= np.partition(out[exact], -keep)[-keep]:
