@@ -66,6 +66,7 @@ class PathwiseDraws:
         self.sample = feature_sample(post.kernel, post.mean, rng, self.n_freq)
         self._basis = self.sample.basis(self.pool).astype(np.float32)   # (m, 2F)
         self._version = post.version
+        self._data = (np.empty((0, self.pool.shape[1])), None)          # the evaluated inputs' features, kept
 
     def plausible(self, post) -> np.ndarray:
         """Indices of the pool points that can hold the minimum of a draw (see ``_SCREEN``)."""
@@ -135,17 +136,32 @@ class PathwiseDraws:
         n = st.n
         if n == 0:
             return G, np.empty((0, S))
-        X, Li = st._X[b, :n], st._Li[b, :n, :n]
-        fX = self.sample.basis(X) @ W                                          # the same draws at the data
-        R = (st._y[b, :n] - st.mean)[:, None] - fX - np.sqrt(st._s2()[b]) * rng.standard_normal((n, S))
+        X, L, Li, s2 = st._X[b, :n], st._L[b, :n, :n], st._Li[b, :n, :n], st._s2()[b]
+        fX = self._data_basis(X) @ W                                           # the same draws at the data
+        R = (st._y[b, :n] - st.mean)[:, None] - fX - np.sqrt(s2) * rng.standard_normal((n, S))
         w = Li @ R                                                             # L^-1 R
+        a = Li.T @ w                                                           # (K + s2 I)^-1 R
         if 2 * len(rows) >= len(self.pool):
             V = st._V[b, :n]
             corr = V.T @ w if all_rows else V[:, rows].T @ w                   # cached cross term, O(n m S)
         else:
-            corr = st.kernel(self.pool[rows], X) @ (Li.T @ w)                  # few rows: O(n |rows| S)
+            corr = st.kernel(self.pool[rows], X) @ a                           # few rows: O(n |rows| S)
         G += corr.astype(np.float32) if single else corr
-        return G, fX + st.kernel(X) @ (Li.T @ w)
+        # K(X, X) a = (L L^T - s2 I) a = L w - s2 a: the kept factor, no kernel evaluation (as Stack.means_at_data)
+        return G, fX + L @ w - s2 * a
+
+    def _data_basis(self, X) -> np.ndarray:
+        """The features of the evaluated inputs X (n, 2F), kept between trials: a campaign's inputs only
+        grow, so each call computes the rows it has not seen (all again if the kept rows changed)."""
+        kept, old = self._data
+        k = len(kept)
+        if old is None or k > len(X) or not np.array_equal(kept, X[:k]):
+            k, old = 0, None
+        if k < len(X):
+            new = self.sample.basis(X[k:])
+            old = new if old is None else np.vstack([old, new])
+            self._data = (X.copy(), old)     # a new tuple: copies of these draws (the stopping record's) keep their own
+        return old
 
     def path(self, post, s: int):
         """Draw s of the last :meth:`draw` as a function anywhere: ``fg(U) -> (values, gradients)``."""
