@@ -67,6 +67,7 @@ class PathwiseDraws:
         self._basis = self.sample.basis(self.pool).astype(np.float32)   # (m, 2F)
         self._version = post.version
         self._data = (np.empty((0, self.pool.shape[1])), None)          # the evaluated inputs' features, kept
+        self._kept = None                                                # draw_kept's prior draws (W, Phi W)
 
     def plausible(self, post) -> np.ndarray:
         """Indices of the pool points that can hold the minimum of a draw (see ``_SCREEN``)."""
@@ -123,32 +124,82 @@ class PathwiseDraws:
         or beside others (every product is on b's own slices). ``single``: the correction is
         rounded to float32 before it is added to the float32 prior draws (adding float64 to
         float32 in place costs as much as the product itself; the values differ by float32
-        rounding, about 1e-7 of the prior sd). The stopping record uses it; MES keeps the
-        float64 addition, so its traces are unchanged.
+        rounding, about 1e-7 of the prior sd). MES keeps the float64 addition.
         """
         if st.version != self._version:          # the belief was refitted: new kernel, new features
             self._build(st, rng)
         all_rows = len(rows) == len(self.pool)
-        S = int(n_samples)
-        W = rng.standard_normal((self._basis.shape[1], S))
+        W = rng.standard_normal((self._basis.shape[1], int(n_samples)))
         Phi = self._basis if all_rows else self._basis[rows]
-        G = Phi @ W.astype(np.float32)                                         # prior draws, (r, S)
+        return self._condition(st, b, rng, Phi @ W.astype(np.float32), W, rows, single=single)
+
+    def draw_kept(self, st, b: int, rng, cols: slice, rows, *, total: int):
+        """:meth:`draw_in` (float32 correction) for columns ``cols`` of ``total`` prior draws made
+        once, at the first call, and kept: each call conditions them on the data it is given,
+        with fresh noise (Matheron's rule), so every call's draws are independent samples of
+        the belief of that moment, while calls share their prior parts (common random numbers,
+        as the stopping record uses them: one campaign's trials are then judged on the same
+        prior functions). The product ``Phi W`` (``2 m F total`` flops) is paid once per
+        campaign instead of at every call, and the prior draws at the evaluated inputs once per
+        input.
+
+        Returns ``(G, GX)`` with G of shape (S, len(rows)), one row per draw (the transpose of
+        :meth:`draw_in`'s: the kept draws are stored draw by draw, so a batch of them is one
+        contiguous block), and GX of shape (n, S).
+        """
+        if st.version != self._version:          # the belief was refitted: new kernel, new features
+            self._build(st, rng)
+        if self._kept is None:
+            W = rng.standard_normal((self._basis.shape[1], int(total)))
+            self._kept = (W, np.ascontiguousarray((self._basis @ W.astype(np.float32)).T), None, None)
+        W, GT, kept_X, kept_fX = self._kept
+        all_rows = len(rows) == len(self.pool)
         n = st.n
         if n == 0:
-            return G, np.empty((0, S))
-        X, L, Li, s2 = st._X[b, :n], st._L[b, :n, :n], st._Li[b, :n, :n], st._s2()[b]
-        fX = self._data_basis(X) @ W                                           # the same draws at the data
-        R = (st._y[b, :n] - st.mean)[:, None] - fX - np.sqrt(s2) * rng.standard_normal((n, S))
-        w = Li @ R                                                             # L^-1 R
-        a = Li.T @ w                                                           # (K + s2 I)^-1 R
+            return (GT[cols].copy() if all_rows else GT[cols][:, rows]), np.empty((0, cols.stop - cols.start))
+        X = st._X[b, :n]
+        if kept_X is None or len(kept_X) > n or not np.array_equal(kept_X, X[: len(kept_X)]):
+            kept_X, kept_fX = X[:0].copy(), np.empty((0, W.shape[1]))
+        if len(kept_X) < n:                     # the kept prior draws at inputs not seen before
+            kept_fX = np.vstack([kept_fX, self.sample.basis(X[len(kept_X):]) @ W])
+            kept_X = X.copy()
+            self._kept = (W, GT, kept_X, kept_fX)   # a new tuple: copies of these draws keep their own
+        w, a, GX = self._at_data(st, b, rng, kept_fX[:, cols])
         if 2 * len(rows) >= len(self.pool):
             V = st._V[b, :n]
-            corr = V.T @ w if all_rows else V[:, rows].T @ w                   # cached cross term, O(n m S)
+            corr = w.T @ V if all_rows else w.T @ V[:, rows]                   # cached cross term, O(n m S)
+        else:
+            corr = a.T @ st.kernel(X, self.pool[rows])                         # few rows: O(n |rows| S)
+        G = corr.astype(np.float32)
+        G += GT[cols] if all_rows else GT[cols][:, rows]
+        return G, GX
+
+    def _condition(self, st, b, rng, G, W, rows, *, single: bool):
+        """Prior draws G (rows, S) of weights W (2F, S), conditioned on replicate b's data: ``(G, GX)``."""
+        n = st.n
+        if n == 0:
+            return G, np.empty((0, W.shape[1]))
+        X = st._X[b, :n]
+        w, a, GX = self._at_data(st, b, rng, self._data_basis(X) @ W)
+        if 2 * len(rows) >= len(self.pool):
+            V = st._V[b, :n]
+            corr = V.T @ w if len(rows) == len(self.pool) else V[:, rows].T @ w   # cached cross term, O(n m S)
         else:
             corr = st.kernel(self.pool[rows], X) @ a                           # few rows: O(n |rows| S)
         G += corr.astype(np.float32) if single else corr
-        # K(X, X) a = (L L^T - s2 I) a = L w - s2 a: the kept factor, no kernel evaluation (as Stack.means_at_data)
-        return G, fX + L @ w - s2 * a
+        return G, GX
+
+    def _at_data(self, st, b, rng, fX):
+        """Matheron's rule at replicate b's evaluated inputs for prior draws fX (n, S) there: ``w = L^-1 R``,
+        ``a = (K + s2 I)^-1 R`` with ``R = y - m - fX - eps`` (fresh noise), and the posterior draws there,
+        ``fX + K a``, where ``K a = (L L^T - s2 I) a = L w - s2 a`` comes from the kept factor (no kernel
+        evaluation; as Stack.means_at_data)."""
+        n, S = fX.shape
+        L, Li, s2 = st._L[b, :n, :n], st._Li[b, :n, :n], st._s2()[b]
+        R = (st._y[b, :n] - st.mean)[:, None] - fX - np.sqrt(s2) * rng.standard_normal((n, S))
+        w = Li @ R                                                             # L^-1 R
+        a = Li.T @ w                                                           # (K + s2 I)^-1 R
+        return w, a, fX + L @ w - s2 * a
 
     def _data_basis(self, X) -> np.ndarray:
         """The features of the evaluated inputs X (n, 2F), kept between trials: a campaign's inputs only

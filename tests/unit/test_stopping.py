@@ -79,13 +79,38 @@ def test_chance_matches_exact_joint_draws_on_a_grid(target):
     mu, sd = post.pool_moments()
     exact, F, rec = _exact_chance(post, target, 40_000, seed=1)
     log = _log(post, target=target, draws=8192)
-    share = log._within(post, 0, post.recommend(), mu, sd, 8192) / 8192
+    share = log._within(post, 0, post.recommend(), mu, sd, slice(0, 8192)) / 8192
     assert 0.05 < exact < 0.95                                     # an informative probability
     assert share == pytest.approx(exact, abs=0.025)
     # negative control: draws that ignore the correlations between points (independent marginals)
     marg = np.random.default_rng(2).standard_normal(F.shape) * np.sqrt(np.var(F, axis=0)) + F.mean(axis=0)
     independent = float(np.mean(marg[:, rec] - marg.min(axis=1) <= target))
     assert abs(independent - exact) > 0.05
+
+
+def test_kept_draws_conditioned_on_later_data_match_exact_joint_draws():
+    """The record keeps one campaign's prior draws and conditions them on each trial's data
+    (PathwiseDraws.draw_kept): after six more trials the same kept draws, conditioned anew, must
+    again match exact joint draws (numpy multivariate_normal) of the belief *then*. Tolerance as in
+    the test above (4 Monte Carlo sd). Negative control: the share read with the draws as they were
+    conditioned before the new trials (stale) is off by more than 0.05."""
+    early, late = _posterior_1d(n=6), _posterior_1d(n=12)
+    assert np.array_equal(early.X, late.X[:6])                       # the same campaign, six trials on
+    target = 0.15
+    log = _log(early, target=target, draws=8192)
+    mu, sd = early.pool_moments()
+    log._within(early, 0, early.recommend(), mu, sd, slice(0, 8192))    # the draws are made and kept here
+    stale_G, stale_GX = log.draws[0].draw_kept(early, 0, np.random.default_rng(9), slice(0, 8192),
+                                               np.arange(len(early.pool)), total=8192)
+    mu, sd = late.pool_moments()
+    share = log._within(late, 0, late.recommend(), mu, sd, slice(0, 8192)) / 8192
+    exact, _, _ = _exact_chance(late, target, 40_000, seed=1)
+    assert 0.05 < exact < 0.95
+    assert share == pytest.approx(exact, abs=0.025)
+    r = late.recommend()
+    stale_at_rec = stale_G[:, np.argmin(np.abs(early.pool[:, 0] - late.X[r, 0]))]   # the pool point nearest the rec
+    stale = float(np.mean(stale_at_rec - np.minimum(stale_G.min(axis=1), stale_GX.min(axis=0)) <= target))
+    assert abs(stale - exact) > 0.05
 
 
 def test_pairwise_bounds_bracket_the_exact_chance():
