@@ -4,6 +4,7 @@ from __future__ import annotations
 
 __all__ = ["ReportFiles", "write_outputs", "report_steps"]
 
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -59,7 +60,7 @@ def report_steps(*, figures=True):
 # ---------------------------------------------------------------------------
 # the entry point
 # ---------------------------------------------------------------------------
-def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, progress=None):
+def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, progress=None, jobs=1):
     """Compute the decision tables of a study and write them, its figures and report.html.
 
     Parameters
@@ -79,7 +80,13 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         Seed of the bootstrap intervals; the same seed gives the same files.
     progress : callable, optional
         Called with 1 after each step; :func:`report_steps` gives the number of steps
-        (e.g. ``progress=tqdm(total=report_steps()).update``).
+        (e.g. ``progress=tqdm(total=report_steps()).update``). With workers, a figure's step
+        comes when its files are written, in the order the workers finish.
+    jobs : int, default 1
+        Processes that draw and render the figures (-1: every core). With more than one, joblib's
+        loky workers (those the replay left running, when there are as many) each draw whole
+        figures from the same inputs and hand back their PNG and SVG bytes, which this process
+        writes; 1 draws them here, one after another. The files are the same for any value.
 
     Returns
     -------
@@ -183,14 +190,10 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
 
     images, figure_paths = {}, []
     if figures:
-        from .plots import save_figure
-
-        for stem, fig in _figures(study, traces, tables, success=success, seed=seed):
-            if fig is not None:
-                png, svg = save_figure(fig, folder / FIGURES, stem)
-                figure_paths += [png, svg]
-                images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
-            step(1)
+        for stem, (png, svg) in _figure_files(folder / FIGURES, study, traces, tables, success=success, seed=seed,
+                                              jobs=jobs, step=step).items():
+            figure_paths += [png, svg]
+            images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
 
     text = render(study, tables, images, success=success)
     report = folder / REPORT
@@ -220,11 +223,55 @@ def _levels(success):
     return (0.5,) if success == 0.5 else (0.5, success)
 
 
-def _figures(study, traces, tables, *, success, seed):
-    """Yield (stem, figure or None where it does not apply) for every registered figure, in order."""
-    from .style import policy_colors
+def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step):
+    """Draw and write every registered figure that applies; {stem: (png, svg)} in registry order.
+
+    `step` is called once per registered figure: at once for those that do not apply, after its
+    files are written for the others."""
+    from ..replay.workers import stop_local_workers, workers
+    from .style import policy_colors, write_figure
 
     given = FigureInput(study=study, traces=traces, tables=tables, success=success, seed=seed,
                         colors=policy_colors(study.labels))
-    for stem, fig in FIGURE_REGISTRY.items():
-        yield stem, fig.draw(given) if fig.applies(study, tables) else None
+    stems = [stem for stem, fig in FIGURE_REGISTRY.items() if fig.applies(study, tables)]
+    if len(stems) < len(FIGURE_REGISTRY):
+        step(len(FIGURE_REGISTRY) - len(stems))
+    n = min(workers(jobs), len(stems))
+    written = {}
+    if n <= 1:   # here, one after another: no worker to start
+        for stem in stems:
+            written[stem] = write_figure(folder, stem, *_rendered(given, stem))
+            step(1)
+        return written
+    from joblib import Parallel, delayed
+
+    # One figure per task (0.2-1.3 s each on the demo), handed out in registry order, with the
+    # replay's Parallel settings so that its idle workers are reused (loky starts new ones when,
+    # say, max_nbytes differs). The bytes come back as each figure finishes and are written here:
+    # every file is this process's atomic write, and a stopped worker leaves nothing half-written.
+    calls = (delayed(_rendered_by_stem)(given, stem) for stem in stems)
+    with warnings.catch_warnings():
+        # leaving early (an error here, Ctrl-C) cancels the figures still being drawn, as it should
+        warnings.filterwarnings("ignore", message=r".*tasks which were still being processed", category=UserWarning)
+        results = Parallel(n_jobs=n, batch_size=1, return_as="generator_unordered")(calls)
+        try:
+            for stem, png, svg in results:
+                written[stem] = write_figure(folder, stem, png, svg)
+                step(1)
+        except BaseException:
+            results.close()
+            stop_local_workers()   # an error, Ctrl-C or SIGTERM: no worker outlives the report
+            raise
+    return {stem: written[stem] for stem in stems}
+
+
+def _rendered(given, stem):
+    """The PNG and SVG bytes of the registered figure `stem`, drawn from `given`."""
+    from .style import figure_bytes
+
+    return figure_bytes(FIGURE_REGISTRY[stem].draw(given))
+
+
+def _rendered_by_stem(given, stem):
+    """:func:`_rendered` in a worker: (stem, png, svg), so that results can arrive in any order."""
+    return (stem, *_rendered(given, stem))
