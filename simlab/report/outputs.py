@@ -118,6 +118,36 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
                          f"{missing} that record them")
     folder = Path(folder)
     step = progress if progress is not None else (lambda n: None)
+    warming = _start_figure_workers(jobs) if figures else None   # their imports, while the tables are made
+    try:
+        tables, paths = _decision_tables(folder, study, traces, success=success, seed=seed, step=step)
+    except BaseException:
+        _stop_figure_workers(warming)
+        raise
+
+    images, figure_paths = {}, []
+    if figures:
+        for stem, (png, svg) in _figure_files(folder / FIGURES, study, traces, tables, success=success, seed=seed,
+                                              jobs=jobs, step=step, warming=warming).items():
+            figure_paths += [png, svg]
+            images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
+
+    text = render(study, tables, images, success=success)
+    report = folder / REPORT
+    atomic_write(report, lambda p: p.write_text(text, encoding="utf-8"))
+    step(1)
+    return ReportFiles(
+        folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
+        trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
+        pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
+        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM), limits=paths.get(LIMITS),
+        stopping=paths.get(STOPPING), stopping_curves=paths.get(STOPPING_CURVES),
+    )
+
+
+def _decision_tables(folder, study, traces, *, success, seed, step):
+    """Compute the decision tables and write their CSVs; (tables, paths), both keyed by file name.
+    Also reads the folder's sweep and worlds tables where there are any (the page shows them)."""
     target, budgets, horizon = study.target, list(study.campaign.budgets), study.campaign.horizon
     several = len(study.policies) >= 2
 
@@ -188,24 +218,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     if (folder / WORLDS).is_file():
         tables[WORLDS] = pd.read_csv(folder / WORLDS)   # the runner's per-replicate optima (optimum_gap)
 
-    images, figure_paths = {}, []
-    if figures:
-        for stem, (png, svg) in _figure_files(folder / FIGURES, study, traces, tables, success=success, seed=seed,
-                                              jobs=jobs, step=step).items():
-            figure_paths += [png, svg]
-            images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
-
-    text = render(study, tables, images, success=success)
-    report = folder / REPORT
-    atomic_write(report, lambda p: p.write_text(text, encoding="utf-8"))
-    step(1)
-    return ReportFiles(
-        folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
-        trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
-        pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
-        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM), limits=paths.get(LIMITS),
-        stopping=paths.get(STOPPING), stopping_curves=paths.get(STOPPING_CURVES),
-    )
+    return tables, paths
 
 
 def _reference(folder):
@@ -223,45 +236,97 @@ def _levels(success):
     return (0.5,) if success == 0.5 else (0.5, success)
 
 
-def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step):
+def _figure_workers(jobs):
+    """How many processes draw the figures: at most one per registered figure."""
+    from ..replay.workers import workers
+    return min(workers(jobs), len(FIGURE_REGISTRY))
+
+
+def _start_figure_workers(jobs):
+    """With more than one job, have every figure worker import matplotlib and the drawing code (about
+    1 s each, the first time) while this process makes the tables; returns the joblib generator to
+    drain before the figures are handed out (None with one job)."""
+    n = _figure_workers(jobs)
+    if n <= 1:
+        return None
+    from joblib import delayed
+
+    return _parallel(n)(delayed(_import_drawing)() for _ in range(n))
+
+
+def _parallel(n):
+    """joblib's Parallel for the figures: one task at a time, results as they finish, and otherwise the
+    replay's settings, so that its idle workers are reused (loky starts new ones when, say,
+    max_nbytes differs)."""
+    from joblib import Parallel
+
+    return Parallel(n_jobs=n, batch_size=1, return_as="generator_unordered")
+
+
+def _stop_figure_workers(running):
+    """Leave a joblib generator early (an error here, Ctrl-C or SIGTERM): cancel what it still runs and
+    stop the workers, so that none outlives the report."""
+    from ..replay.workers import stop_local_workers
+
+    if running is not None:
+        with warnings.catch_warnings():
+            # joblib warns when a generator is left with tasks still running: here that is the point
+            warnings.filterwarnings("ignore", message=r".*tasks which were still being processed",
+                                    category=UserWarning)
+            running.close()
+        stop_local_workers()
+
+
+def _import_drawing():
+    """What a figure worker imports and sets up before its first figure (its font cache too)."""
+    from matplotlib.figure import Figure
+
+    from . import plots, snapshot  # noqa: F401
+    from .style import figure_bytes
+
+    tiny = Figure(figsize=(1, 1))
+    tiny.add_subplot().set_title("simlab")
+    figure_bytes(tiny)
+
+
+def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step, warming=None):
     """Draw and write every registered figure that applies; {stem: (png, svg)} in registry order.
 
     `step` is called once per registered figure: at once for those that do not apply, after its
-    files are written for the others."""
-    from ..replay.workers import stop_local_workers, workers
+    files are written for the others. `warming`: the generator of :func:`_start_figure_workers`."""
     from .style import policy_colors, write_figure
 
+    if warming is not None:
+        try:
+            for _ in warming:
+                pass
+        except BaseException:
+            _stop_figure_workers(warming)
+            raise
     given = FigureInput(study=study, traces=traces, tables=tables, success=success, seed=seed,
                         colors=policy_colors(study.labels))
     stems = [stem for stem, fig in FIGURE_REGISTRY.items() if fig.applies(study, tables)]
     if len(stems) < len(FIGURE_REGISTRY):
         step(len(FIGURE_REGISTRY) - len(stems))
-    n = min(workers(jobs), len(stems))
     written = {}
-    if n <= 1:   # here, one after another: no worker to start
+    if _figure_workers(jobs) <= 1 or len(stems) <= 1:   # here, one after another: no worker to start
         for stem in stems:
             written[stem] = write_figure(folder, stem, *_rendered(given, stem))
             step(1)
         return written
-    from joblib import Parallel, delayed
+    from joblib import delayed
 
-    # One figure per task (0.2-1.3 s each on the demo), handed out in registry order, with the
-    # replay's Parallel settings so that its idle workers are reused (loky starts new ones when,
-    # say, max_nbytes differs). The bytes come back as each figure finishes and are written here:
-    # every file is this process's atomic write, and a stopped worker leaves nothing half-written.
-    calls = (delayed(_rendered_by_stem)(given, stem) for stem in stems)
-    with warnings.catch_warnings():
-        # leaving early (an error here, Ctrl-C) cancels the figures still being drawn, as it should
-        warnings.filterwarnings("ignore", message=r".*tasks which were still being processed", category=UserWarning)
-        results = Parallel(n_jobs=n, batch_size=1, return_as="generator_unordered")(calls)
-        try:
-            for stem, png, svg in results:
-                written[stem] = write_figure(folder, stem, png, svg)
-                step(1)
-        except BaseException:
-            results.close()
-            stop_local_workers()   # an error, Ctrl-C or SIGTERM: no worker outlives the report
-            raise
+    # One figure per task (0.2-1.3 s each on the demo), handed out in registry order. The bytes come
+    # back as each figure finishes and are written here: every file is this process's atomic write,
+    # and a stopped worker leaves nothing half-written.
+    results = _parallel(_figure_workers(jobs))(delayed(_rendered_by_stem)(given, stem) for stem in stems)
+    try:
+        for stem, png, svg in results:
+            written[stem] = write_figure(folder, stem, png, svg)
+            step(1)
+    except BaseException:
+        _stop_figure_workers(results)
+        raise
     return {stem: written[stem] for stem in stems}
 
 
