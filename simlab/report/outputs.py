@@ -314,12 +314,19 @@ def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step, w
             written[stem] = write_figure(folder, stem, *_rendered(given, stem))
             step(1)
         return written
+    import pickle
+
     from joblib import delayed
 
     # One figure per task (0.2-1.3 s each on the demo), handed out in registry order. The bytes come
     # back as each figure finishes and are written here: every file is this process's atomic write,
-    # and a stopped worker leaves nothing half-written.
-    results = _parallel(_figure_workers(jobs))(delayed(_rendered_by_stem)(given, stem) for stem in stems)
+    # and a stopped worker leaves nothing half-written. The inputs travel as one pickle: given as
+    # they are, joblib would memmap the traces' arrays (past its 1 MB threshold) into a temporary
+    # folder whose removal at the end of the call waits for the workers to let go of it (the demo's
+    # last figure arrived 1.0 s late); max_nbytes=None avoids that too, but loky then replaces the
+    # replay's workers with new ones.
+    packed = pickle.dumps(given, protocol=pickle.HIGHEST_PROTOCOL)
+    results = _parallel(_figure_workers(jobs))(delayed(_rendered_in_worker)(packed, stem) for stem in stems)
     try:
         for stem, png, svg in results:
             written[stem] = write_figure(folder, stem, png, svg)
@@ -337,6 +344,9 @@ def _rendered(given, stem):
     return figure_bytes(FIGURE_REGISTRY[stem].draw(given))
 
 
-def _rendered_by_stem(given, stem):
-    """:func:`_rendered` in a worker: (stem, png, svg), so that results can arrive in any order."""
-    return (stem, *_rendered(given, stem))
+def _rendered_in_worker(packed, stem):
+    """:func:`_rendered` in a worker, from the pickled inputs: (stem, png, svg), so that results can
+    arrive in any order."""
+    import pickle
+
+    return (stem, *_rendered(pickle.loads(packed), stem))
