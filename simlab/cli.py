@@ -120,7 +120,7 @@ def _run(args) -> int:
         print(f"{result.path} is up to date: it holds the finished run of this study (--fresh to run it again)",
               file=sys.stderr)
     want_report = not args.no_report and not (result.up_to_date and (result.path / "report.html").is_file())
-    summary = _write_report(result, success=args.success, quiet=args.quiet) if want_report else None
+    summary = _write_report(result, success=args.success, quiet=args.quiet, jobs=args.jobs) if want_report else None
     print(budget_table(result.study, summary if summary is not None else result.summary()))
     _print_limits(result)
     if result.up_to_date:
@@ -134,8 +134,9 @@ def _run(args) -> int:
     return 0
 
 
-def _write_report(result, *, success: float, quiet: bool):
-    """Write the decision files, figures and report.html; return the summary table."""
+def _write_report(result, *, success: float, quiet: bool, jobs: int = 1):
+    """Write the decision files, figures and report.html (the figures on `jobs` worker processes);
+    return the summary table."""
     import pandas as pd
 
     from .report.outputs import report_steps, write_outputs
@@ -145,7 +146,7 @@ def _write_report(result, *, success: float, quiet: bool):
         bar = tqdm(total=report_steps(), unit="step", desc="report", leave=False)
     try:
         files = write_outputs(result.path, result.study, result.traces, success=success,
-                              progress=bar.update if bar else None)
+                              progress=bar.update if bar else None, jobs=jobs)
     finally:
         if bar is not None:
             bar.close()
@@ -224,7 +225,7 @@ def _sweep(args) -> int:
         from .api import load_results
         stored = load_results(folder)
         if stored.study == dataclasses.replace(study, sweep=stored.study.sweep):
-            _write_report(stored, success=0.9, quiet=args.quiet)
+            _write_report(stored, success=0.9, quiet=args.quiet, jobs=args.jobs)
             print(f"report with a robustness section: {folder / 'report.html'}")
     else:
         out = f" --out {args.out}" if args.out is not None else ""
@@ -304,8 +305,9 @@ def _new(args) -> int:
 def _report(args) -> int:
     from .report.console import budget_table
     from .api import load_results
+    _warn_jobs(args.jobs)
     result = load_results(args.folder)
-    summary = _write_report(result, success=args.success, quiet=args.quiet)
+    summary = _write_report(result, success=args.success, quiet=args.quiet, jobs=args.jobs)
     print(budget_table(result.study, summary))
     _print_limits(result)
     print(f"\nreport: {result.path / 'report.html'} (rebuilt from stored traces; no campaign replayed)")

@@ -76,6 +76,7 @@ examples:
 _EPILOG_REPORT = """\
 examples:
   simlab report results/pilot-extruder
+  simlab report results/pilot-extruder --jobs 2     # the figures drawn by two worker processes
 """
 
 
@@ -131,7 +132,8 @@ def build_parser() -> argparse.ArgumentParser:
                          "traces.parquet and study.toml, and print a summary table.",
                          epilog=_EPILOG_RUN, formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("study", metavar="STUDY.toml")
-    run.add_argument("--jobs", type=_jobs, default=1, metavar="N", help="worker processes (-1: all cores; default 1)")
+    run.add_argument("--jobs", type=_jobs, default=1, metavar="N",
+                     help="worker processes for the replay and the report's figures (-1: all cores; default 1)")
     run.add_argument("--out", metavar="DIR", help="results folder (default results/<study name>)")
     run.add_argument("--replicates", type=_replicates, metavar="N", help="override [study] replicates")
     run.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -214,6 +216,8 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("folder", metavar="DIR")
     report.add_argument("--success", type=_share, default=0.9, metavar="P",
                         help="chance of meeting the target for the budget plan and choice table (default 0.9)")
+    report.add_argument("--jobs", type=_jobs, default=1, metavar="N",
+                        help="worker processes drawing the figures (-1: all cores; default 1)")
     report.add_argument("--quiet", action="store_true", help="no progress bar")
 
     plan = sub.add_parser("plan", help="smallest budget at which the requested share of campaigns ends within target",

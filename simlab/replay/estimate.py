@@ -9,7 +9,7 @@ import time
 from dataclasses import dataclass
 
 from .runner import chunk_plan
-from .workers import cores, workers as _workers
+from .workers import cores, stop_local_workers, workers as _workers
 from ..study.spec import Study
 
 __all__ = ["Estimate", "measure", "process_age", "worker_startup"]
@@ -78,11 +78,10 @@ def worker_startup(workers: int) -> float:
     hand). The workers are stopped afterwards."""
     from joblib import Parallel, delayed
 
-    from .runner import _stop_local_workers
     t0 = time.perf_counter()
     Parallel(n_jobs=workers)(delayed(_import_runner)() for _ in range(workers))
     seconds = time.perf_counter() - t0
-    _stop_local_workers()
+    stop_local_workers()
     return seconds
 
 

@@ -23,6 +23,7 @@ from ..worlds.replicate import (Replicate, history_arrays, make_observer, make_r
                                 world_optimum)
 from .campaign import run_campaign
 from .trace import Trace
+from .workers import stop_local_workers as _stop_local_workers
 from .workers import workers as _workers
 
 __all__ = ["make_belief", "make_policy", "replay_replicate", "replay", "replay_study", "replay_chunks",
@@ -318,17 +319,6 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     finally:
         if isinstance(cluster, str):
             client.close()
-
-
-def _stop_local_workers() -> None:
-    """Kill joblib's loky worker processes now (they would otherwise idle on for minutes)."""
-    try:
-        from joblib.externals.loky import reusable_executor
-    except ImportError:  # pragma: no cover - depends on the joblib version
-        return
-    executor = getattr(reusable_executor, "_executor", None)
-    if executor is not None:
-        executor.shutdown(wait=True, kill_workers=True)
 
 
 _CLUSTER_ADDRESS = re.compile(r"^(tcp|tls)://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.-]+):(\d{1,5})$")

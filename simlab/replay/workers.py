@@ -1,5 +1,5 @@
-"""How many workers this machine offers: standard library only, so that the command line can warn
-about ``--jobs`` before the engine (pandas, SciPy) is imported."""
+"""How many workers this machine offers (standard library only, so that the command line can warn
+about ``--jobs`` before the engine, pandas and SciPy, is imported), and stopping joblib's local ones."""
 
 from __future__ import annotations
 
@@ -17,3 +17,14 @@ def cores() -> int:
 def workers(jobs: int) -> int:
     """Worker processes for ``--jobs``: -1 means every core."""
     return cores() if jobs == -1 else max(int(jobs), 1)
+
+
+def stop_local_workers() -> None:
+    """Kill joblib's loky worker processes now (they would otherwise idle on for minutes)."""
+    try:
+        from joblib.externals.loky import reusable_executor
+    except ImportError:  # pragma: no cover - depends on the joblib version
+        return
+    executor = getattr(reusable_executor, "_executor", None)
+    if executor is not None:
+        executor.shutdown(wait=True, kill_workers=True)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 __all__ = ["ReportFiles", "write_outputs", "report_steps"]
 
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -59,7 +60,7 @@ def report_steps(*, figures=True):
 # ---------------------------------------------------------------------------
 # the entry point
 # ---------------------------------------------------------------------------
-def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, progress=None):
+def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, progress=None, jobs=1):
     """Compute the decision tables of a study and write them, its figures and report.html.
 
     Parameters
@@ -79,7 +80,13 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
         Seed of the bootstrap intervals; the same seed gives the same files.
     progress : callable, optional
         Called with 1 after each step; :func:`report_steps` gives the number of steps
-        (e.g. ``progress=tqdm(total=report_steps()).update``).
+        (e.g. ``progress=tqdm(total=report_steps()).update``). With workers, a figure's step
+        comes when its files are written, in the order the workers finish.
+    jobs : int, default 1
+        Processes that draw and render the figures (-1: every core). With more than one, joblib's
+        loky workers (those the replay left running, when there are as many) each draw whole
+        figures from the same inputs and hand back their PNG and SVG bytes, which this process
+        writes; 1 draws them here, one after another. The files are the same for any value.
 
     Returns
     -------
@@ -111,6 +118,36 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
                          f"{missing} that record them")
     folder = Path(folder)
     step = progress if progress is not None else (lambda n: None)
+    warming = _start_figure_workers(jobs) if figures else None   # their imports, while the tables are made
+    try:
+        tables, paths = _decision_tables(folder, study, traces, success=success, seed=seed, step=step)
+    except BaseException:
+        _stop_figure_workers(warming)
+        raise
+
+    images, figure_paths = {}, []
+    if figures:
+        for stem, (png, svg) in _figure_files(folder / FIGURES, study, traces, tables, success=success, seed=seed,
+                                              jobs=jobs, step=step, warming=warming).items():
+            figure_paths += [png, svg]
+            images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
+
+    text = render(study, tables, images, success=success)
+    report = folder / REPORT
+    atomic_write(report, lambda p: p.write_text(text, encoding="utf-8"))
+    step(1)
+    return ReportFiles(
+        folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
+        trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
+        pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
+        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM), limits=paths.get(LIMITS),
+        stopping=paths.get(STOPPING), stopping_curves=paths.get(STOPPING_CURVES),
+    )
+
+
+def _decision_tables(folder, study, traces, *, success, seed, step):
+    """Compute the decision tables and write their CSVs; (tables, paths), both keyed by file name.
+    Also reads the folder's sweep and worlds tables where there are any (the page shows them)."""
     target, budgets, horizon = study.target, list(study.campaign.budgets), study.campaign.horizon
     several = len(study.policies) >= 2
 
@@ -181,28 +218,7 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
     if (folder / WORLDS).is_file():
         tables[WORLDS] = pd.read_csv(folder / WORLDS)   # the runner's per-replicate optima (optimum_gap)
 
-    images, figure_paths = {}, []
-    if figures:
-        from .plots import save_figure
-
-        for stem, fig in _figures(study, traces, tables, success=success, seed=seed):
-            if fig is not None:
-                png, svg = save_figure(fig, folder / FIGURES, stem)
-                figure_paths += [png, svg]
-                images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
-            step(1)
-
-    text = render(study, tables, images, success=success)
-    report = folder / REPORT
-    atomic_write(report, lambda p: p.write_text(text, encoding="utf-8"))
-    step(1)
-    return ReportFiles(
-        folder=folder, summary=paths[SUMMARY], trials_to_target=paths[TRIALS_TO_TARGET],
-        trials_to_target_summary=paths[TRIALS_TO_TARGET_SUMMARY], budget_plan=paths[BUDGET_PLAN],
-        pairwise=paths.get(PAIRWISE), choice=paths.get(CHOICE), report=report, figures=tuple(figure_paths),
-        within_target=paths[WITHIN_TARGET], placement=paths[PLACEMENT], harm=paths.get(HARM), limits=paths.get(LIMITS),
-        stopping=paths.get(STOPPING), stopping_curves=paths.get(STOPPING_CURVES),
-    )
+    return tables, paths
 
 
 def _reference(folder):
@@ -220,11 +236,117 @@ def _levels(success):
     return (0.5,) if success == 0.5 else (0.5, success)
 
 
-def _figures(study, traces, tables, *, success, seed):
-    """Yield (stem, figure or None where it does not apply) for every registered figure, in order."""
-    from .style import policy_colors
+def _figure_workers(jobs):
+    """How many processes draw the figures: at most one per registered figure."""
+    from ..replay.workers import workers
+    return min(workers(jobs), len(FIGURE_REGISTRY))
 
+
+def _start_figure_workers(jobs):
+    """With more than one job, have every figure worker import matplotlib and the drawing code (about
+    1 s each, the first time) while this process makes the tables; returns the joblib generator to
+    drain before the figures are handed out (None with one job)."""
+    n = _figure_workers(jobs)
+    if n <= 1:
+        return None
+    from joblib import delayed
+
+    return _parallel(n)(delayed(_import_drawing)() for _ in range(n))
+
+
+def _parallel(n):
+    """joblib's Parallel for the figures: one task at a time, results as they finish, and otherwise the
+    replay's settings, so that its idle workers are reused (loky starts new ones when, say,
+    max_nbytes differs)."""
+    from joblib import Parallel
+
+    return Parallel(n_jobs=n, batch_size=1, return_as="generator_unordered")
+
+
+def _stop_figure_workers(running):
+    """Leave a joblib generator early (an error here, Ctrl-C or SIGTERM): cancel what it still runs and
+    stop the workers, so that none outlives the report."""
+    from ..replay.workers import stop_local_workers
+
+    if running is not None:
+        with warnings.catch_warnings():
+            # joblib warns when a generator is left with tasks still running: here that is the point
+            warnings.filterwarnings("ignore", message=r".*tasks which were still being processed",
+                                    category=UserWarning)
+            running.close()
+        stop_local_workers()
+
+
+def _import_drawing():
+    """What a figure worker imports and sets up before its first figure (its font cache too)."""
+    from matplotlib.figure import Figure
+
+    from . import plots, snapshot  # noqa: F401
+    from .style import figure_bytes
+
+    tiny = Figure(figsize=(1, 1))
+    tiny.add_subplot().set_title("simlab")
+    figure_bytes(tiny)
+
+
+def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step, warming=None):
+    """Draw and write every registered figure that applies; {stem: (png, svg)} in registry order.
+
+    `step` is called once per registered figure: at once for those that do not apply, after its
+    files are written for the others. `warming`: the generator of :func:`_start_figure_workers`."""
+    from .style import policy_colors, write_figure
+
+    if warming is not None:
+        try:
+            for _ in warming:
+                pass
+        except BaseException:
+            _stop_figure_workers(warming)
+            raise
     given = FigureInput(study=study, traces=traces, tables=tables, success=success, seed=seed,
                         colors=policy_colors(study.labels))
-    for stem, fig in FIGURE_REGISTRY.items():
-        yield stem, fig.draw(given) if fig.applies(study, tables) else None
+    stems = [stem for stem, fig in FIGURE_REGISTRY.items() if fig.applies(study, tables)]
+    if len(stems) < len(FIGURE_REGISTRY):
+        step(len(FIGURE_REGISTRY) - len(stems))
+    written = {}
+    if _figure_workers(jobs) <= 1 or len(stems) <= 1:   # here, one after another: no worker to start
+        for stem in stems:
+            written[stem] = write_figure(folder, stem, *_rendered(given, stem))
+            step(1)
+        return written
+    import pickle
+
+    from joblib import delayed
+
+    # One figure per task (0.2-1.3 s each on the demo), handed out in registry order. The bytes come
+    # back as each figure finishes and are written here: every file is this process's atomic write,
+    # and a stopped worker leaves nothing half-written. The inputs travel as one pickle: given as
+    # they are, joblib would memmap the traces' arrays (past its 1 MB threshold) into a temporary
+    # folder whose removal at the end of the call waits for the workers to let go of it (the demo's
+    # last figure arrived 1.0 s late); max_nbytes=None avoids that too, but loky then replaces the
+    # replay's workers with new ones.
+    packed = pickle.dumps(given, protocol=pickle.HIGHEST_PROTOCOL)
+    results = _parallel(_figure_workers(jobs))(delayed(_rendered_in_worker)(packed, stem) for stem in stems)
+    try:
+        for stem, png, svg in results:
+            written[stem] = write_figure(folder, stem, png, svg)
+            step(1)
+    except BaseException:
+        _stop_figure_workers(results)
+        raise
+    return {stem: written[stem] for stem in stems}
+
+
+def _rendered(given, stem):
+    """The PNG and SVG bytes of the registered figure `stem`, drawn from `given`."""
+    from .style import figure_bytes
+
+    return figure_bytes(FIGURE_REGISTRY[stem].draw(given))
+
+
+def _rendered_in_worker(packed, stem):
+    """:func:`_rendered` in a worker, from the pickled inputs: (stem, png, svg), so that results can
+    arrive in any order."""
+    import pickle
+
+    return (stem, *_rendered(pickle.loads(packed), stem))

@@ -211,19 +211,43 @@ def save_figure(fig, folder, stem):
     -------
     png, svg : pathlib.Path
     """
-    from ..replay.store import atomic_write
+    _check_stem(stem)
+    return write_figure(folder, stem, *figure_bytes(fig))
 
-    if not isinstance(stem, str) or not stem or "/" in stem or "\\" in stem or stem.startswith("."):
-        raise ValueError(f"`stem` must be a plain file name without folders; got {stem!r}")
-    folder = Path(folder)
-    png, svg = folder / f"{stem}.png", folder / f"{stem}.svg"
+
+def figure_bytes(fig):
+    """The PNG (150 dpi) and SVG bytes :func:`save_figure` writes, rendered in memory (so that a
+    worker process can render a figure and hand the bytes back to be written).
+
+    Returns
+    -------
+    png, svg : bytes
+    """
+    import io
+
     import matplotlib
 
-    # The temporary file has no telling extension, so the format is named explicitly;
-    # metadata without dates and a fixed hash salt make repeated reports byte-identical.
+    # Metadata without dates and a fixed hash salt make repeated reports byte-identical.
+    png, svg = io.BytesIO(), io.BytesIO()
     with matplotlib.rc_context({"svg.hashsalt": "simlab", "svg.fonttype": "path"}):
-        atomic_write(png, lambda p: fig.savefig(p, format="png", dpi=DPI, facecolor="white",
-                                                metadata={"Software": None}))
-        atomic_write(svg, lambda p: fig.savefig(p, format="svg", facecolor="white",
-                                                metadata={"Date": None, "Creator": None}))
-    return png, svg
+        fig.savefig(png, format="png", dpi=DPI, facecolor="white", metadata={"Software": None})
+        fig.savefig(svg, format="svg", facecolor="white", metadata={"Date": None, "Creator": None})
+    return png.getvalue(), svg.getvalue()
+
+
+def write_figure(folder, stem, png, svg):
+    """Write the bytes of :func:`figure_bytes` as ``<stem>.png`` and ``<stem>.svg`` in `folder`, each
+    atomically; returns both paths."""
+    from ..replay.store import atomic_write
+
+    _check_stem(stem)
+    folder = Path(folder)
+    paths = folder / f"{stem}.png", folder / f"{stem}.svg"
+    for path, data in zip(paths, (png, svg)):
+        atomic_write(path, lambda p, data=data: p.write_bytes(data))
+    return paths
+
+
+def _check_stem(stem):
+    if not isinstance(stem, str) or not stem or "/" in stem or "\\" in stem or stem.startswith("."):
+        raise ValueError(f"`stem` must be a plain file name without folders; got {stem!r}")

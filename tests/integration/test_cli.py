@@ -90,6 +90,14 @@ def test_run_check_report(tmp_path):
     assert any(line.startswith("ei") and f"{med:.3g}" in line for line in out.stdout.splitlines())
     again = simlab("report", folder, cwd=tmp_path)
     assert again.returncode == 0 and f"{med:.3g}" in again.stdout
+    # the figures again, drawn by two worker processes: the same files byte for byte (common practice)
+    figures = {p.name: p.read_bytes() for p in (folder / "figures").iterdir()}
+    page = (folder / "report.html").read_bytes()
+    twice = simlab("report", folder, "--jobs", "2", "--quiet", cwd=tmp_path)
+    assert twice.returncode == 0 and twice.stdout == again.stdout, twice.stderr
+    assert "Traceback" not in twice.stderr and "Warning" not in twice.stderr, twice.stderr   # nothing from the workers
+    assert {p.name: p.read_bytes() for p in (folder / "figures").iterdir()} == figures
+    assert (folder / "report.html").read_bytes() == page
 
 
 @pytest.mark.slow

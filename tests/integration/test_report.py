@@ -306,6 +306,58 @@ def test_rebuilding_gives_the_same_files(written, tmp_path):
     assert again.report == tmp_path / "report.html"
 
 
+@pytest.fixture
+def counted_parallel(monkeypatch):
+    """joblib.Parallel, noting the workers each call asks for (the report imports it when it draws);
+    the workers are stopped afterwards, so that none idles on through the rest of the session."""
+    import joblib
+
+    calls = []
+
+    class Counted(joblib.Parallel):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            calls.append(self.n_jobs)
+
+    monkeypatch.setattr(joblib, "Parallel", Counted)
+    yield calls
+    from simlab.replay.workers import stop_local_workers
+    stop_local_workers()
+
+
+@pytest.mark.slow
+def test_figures_drawn_by_two_workers_are_the_same_files(written, tmp_path, counted_parallel):
+    """jobs=2 draws the figures in two worker processes: every figure file (PNG and SVG) and
+    report.html are byte-identical to the serial report's, and the progress steps still add up.
+    (Common practice: a parallel path checked against the serial one byte for byte.)"""
+    study, traces, serial, _ = written
+    steps = []
+    files = write_outputs(tmp_path, study, traces, jobs=2, progress=steps.append)
+    assert counted_parallel == [2, 2]   # the workers' path: their imports while the tables are made, the figures
+    assert [p.name for p in files.figures] == [p.name for p in serial.figures]   # in registry order, as serial
+    for ours, theirs in zip(files.figures, serial.figures):
+        assert ours.read_bytes() == theirs.read_bytes(), ours.name
+    assert files.report.read_bytes() == serial.report.read_bytes()
+    assert sum(steps) == report_steps() and all(n >= 1 for n in steps)
+    assert [p for p in tmp_path.rglob("*") if p.name.endswith(".tmp")] == []   # nothing half-written
+
+
+def test_an_error_in_a_figure_worker_surfaces_as_in_serial(tmp_path, counted_parallel):
+    """A figure that fails in a worker raises the same exception as one drawn here, and jobs=1 starts
+    no worker (common practice). The failure: decision tables without the within-target table."""
+    from simlab.report.outputs import _figure_files
+
+    study = _study(policies=[{"rule": "ei"}, {"rule": "random"}])
+    traces = replay(study)
+    raised = {}
+    for jobs in (1, 2):
+        with pytest.raises(KeyError) as info:
+            _figure_files(tmp_path / str(jobs), study, traces, {}, success=0.9, seed=0, jobs=jobs,
+                          step=lambda n: None)
+        raised[jobs] = (str(info.value), list(counted_parallel))
+    assert raised == {1: (repr("within_target.csv"), []), 2: (repr("within_target.csv"), [2])}
+
+
 @pytest.mark.slow
 def test_heavier_noise_lost_trials_rounds_and_refits_are_stated(tmp_path):
     study = parse_study({
