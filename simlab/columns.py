@@ -16,4 +16,5 @@ STOP_COLUMNS = ("stop_chance", "stop_gain", "stop_gap")
 # where trials fail (that campaign has failed at this budget, whatever its regret).
 LIMIT_COLUMNS = ("failed", "breaks", "rec_breaks")
 # worlds.csv, one row per replicate (the input columns, named as in [space], follow "replicate").
-WORLD_COLUMNS = ("replicate", "best_value", "optimum_gap", "reference", "reference_from_trial")
+WORLD_COLUMNS = ("replicate", "best_value", "optimum_gap", "optimum_searches", "optimum_spread", "reference",
+                 "reference_from_trial")

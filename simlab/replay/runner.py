@@ -203,6 +203,8 @@ def _world_rows(study: Study, reps: list[Replicate], runs_per_rep) -> pd.DataFra
     fstar = np.array([_fstar(rep, runs) for rep, runs in zip(reps, runs_per_rep)])
     best = np.array([rep.optimum[1] for rep in reps])
     rows.update({"best_value": study.sign * best, "optimum_gap": np.array([rep.optimum_gap for rep in reps]),
+                 "optimum_searches": np.array([rep.optimum_searches for rep in reps], dtype=np.int32),
+                 "optimum_spread": np.array([rep.optimum_spread for rep in reps]),
                  "reference": study.sign * fstar, "reference_from_trial": fstar < best})
     return pd.DataFrame(rows)
 

@@ -139,11 +139,20 @@ def _optimum_warning(study, worlds):
         return ""
     cells = Cells(WORLDS, worlds)
     worst = int(np.argmax(gaps))
+    spread = ""
+    if "optimum_spread" in worlds:
+        spreads = worlds["optimum_spread"].to_numpy(dtype=float)
+        widest = int(np.argmax(spreads))
+        spread = (f" The searches' values spread (worst minus best) by up to "
+                  f"{cells.span(widest, 'optimum_spread', 'sig')} {unit_words(study)} (replicate "
+                  f"{cells.span(widest, 'replicate', 'int')}, column <code>optimum_spread</code>): where every "
+                  "search found a different value, the best is likely short of the true optimum by more than the "
+                  "gap between the best two.")
     return (f'<div class="caution"><p><b>World optima may be missed.</b> On {wide.size} of {len(gaps)} '
             f"replicates the best two of the independent searches for the world's optimum (two, and up to four "
             f"more while they disagreed) still differed by more than 1 % of the "
             f"target ({number(limit)} {unit_words(study, limit)}); the largest gap is {cells.span(worst, 'optimum_gap', 'sig')} {unit_words(study)} on replicate "
-            f"{cells.span(worst, 'replicate', 'int')} (column <code>optimum_gap</code> of <code>{WORLDS}</code>). "
+            f"{cells.span(worst, 'replicate', 'int')} (column <code>optimum_gap</code> of <code>{WORLDS}</code>).{spread} "
             "Regret is measured against the better search and every input a campaign evaluated, but where the "
             "searches disagree the true optimum may be better still: regret there may be understated, "
             "and more so for policies that never came near it. Rough or short-lengthscale priors in several "

@@ -62,8 +62,9 @@ def test_best_value_against_differential_evolution(run):
 def test_worlds_csv_holds_what_regret_is_measured_against(run):
     study, result = run
     worlds = read_worlds(result.path)
-    assert list(worlds.columns) == ["replicate", *NAMES, "best_value", "optimum_gap", "reference",
-                                    "reference_from_trial"]
+    assert list(worlds.columns) == ["replicate", *NAMES, "best_value", "optimum_gap", "optimum_searches",
+                                    "optimum_spread", "reference", "reference_from_trial"]
+    assert (worlds["optimum_searches"] >= 2).all() and (worlds["optimum_spread"] >= worlds["optimum_gap"]).all()
     assert worlds["replicate"].tolist() == list(range(study.replicates))
     assert (worlds["optimum_gap"] >= 0).all()
     t = result.traces

@@ -169,4 +169,8 @@ def test_report_warns_when_a_gap_exceeds_one_percent_of_the_target():
     text = _optimum_warning(study, worlds)
     assert "World optima may be missed" in text and "1 of 3" in text
     assert 'data-src="worlds.csv" data-row="1" data-col="optimum_gap"' in text
+    assert "optimum_spread" not in text                      # a folder from before the column: no sentence on it
+    worlds["optimum_spread"] = [0.0, 0.03, 0.0049]
+    text = _optimum_warning(study, worlds)
+    assert 'data-src="worlds.csv" data-row="1" data-col="optimum_spread"' in text and "spread" in text
     assert _optimum_warning(study, None) == ""             # a folder from before worlds.csv
