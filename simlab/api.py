@@ -227,6 +227,8 @@ class WorldView:
     best_x: np.ndarray        # (d,) where the search found the optimum, user units
     best_value: float         # the searched optimum, user orientation
     optimum_gap: float        # how far a second, independent search disagreed (>= 0)
+    optimum_searches: int = 1     # independent searches run (more while the best two disagreed)
+    optimum_spread: float = 0.0   # worst minus best of their values (>= optimum_gap)
     _world: object = None
 
     @property
@@ -278,6 +280,9 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
           the better of two independent searches (:func:`simlab.worlds.replicate.world_optimum`);
           the maximum for a ``maximize`` study.
         - ``optimum_gap``: how far the two searches disagreed (>= 0, objective units).
+        - ``optimum_searches``, ``optimum_spread``: how many searches ran (two, and up to four more
+          while the best two disagreed) and how far their values spread (worst minus best); as in
+          ``worlds.csv``.
 
     Notes
     -----
@@ -304,7 +309,7 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
     """
     from threadpoolctl import threadpool_limits
 
-    from .worlds.replicate import make_world, world_optimum
+    from .worlds.replicate import make_world, optimum_searches, searched
 
     if not isinstance(study, Study):
         path = Path(study)
@@ -316,6 +321,6 @@ def world(study: Study | str | os.PathLike, replicate: int) -> WorldView:
     r = int(replicate)
     with threadpool_limits(1):
         w = make_world(study, r)
-        u, v, gap = world_optimum(w, study, r)
+        u, v, gap, searches, spread = searched(optimum_searches(w, study, r))
     return WorldView(study=study, replicate=r, best_x=study.space.from_unit(u), best_value=float(study.sign * v),
-                     optimum_gap=float(gap), _world=w)
+                     optimum_gap=float(gap), optimum_searches=searches, optimum_spread=float(spread), _world=w)

@@ -119,9 +119,15 @@ def world_optimum(world: World, study: Study, r: int) -> tuple[np.ndarray, float
     ``gap`` = second best - best, >= 0, in objective units: a lower bound on how far the best may
     still be from the true optimum (0 when two searches found the same value).
     """
-    found = optimum_searches(world, study, r)
+    u, v, gap, _, _ = searched(optimum_searches(world, study, r))
+    return u, v, gap
+
+
+def searched(found) -> tuple[np.ndarray, float, float, int, float]:
+    """What :func:`optimum_searches` found, summed up: (location, best value, gap to the second best,
+    number of searches, spread = worst - best)."""
     (v, u), v_next = found[0], found[min(1, len(found) - 1)][0]
-    return u, v, v_next - v
+    return u, v, v_next - v, len(found), found[-1][0] - v
 
 
 def optimum_searches(world: World, study: Study, r: int) -> list[tuple[float, np.ndarray]]:
@@ -217,9 +223,7 @@ def make_replicate(study: Study, r: int) -> Replicate:
     d, c = study.space.dim, study.campaign
     B = c.horizon
     world = make_world(study, r)
-    found = optimum_searches(world, study, r)
-    (v_best, u_best), searches = found[0], len(found)
-    gap, spread = found[min(1, searches - 1)][0] - v_best, found[-1][0] - v_best
+    u_best, v_best, gap, searches, spread = searched(optimum_searches(world, study, r))
     limits, worst = make_limits(study, r, world), float("nan")
     if limits is not None:
         u_free = u_best

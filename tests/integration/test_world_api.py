@@ -72,6 +72,7 @@ def test_worlds_csv_holds_what_regret_is_measured_against(run):
         w = simlab.world(study, r)
         row = worlds.iloc[r]
         assert row["best_value"] == w.best_value and row["optimum_gap"] == w.optimum_gap
+        assert row["optimum_searches"] == w.optimum_searches and row["optimum_spread"] == w.optimum_spread
         np.testing.assert_array_equal(row[NAMES].to_numpy(dtype=float), w.best_x)
         rows = t[t["replicate"] == r]
         # maximize: the reference is the larger of the searched optimum and every value evaluated
