@@ -67,7 +67,7 @@ class PathwiseDraws:
         self._basis = self.sample.basis(self.pool).astype(np.float32)   # (m, 2F)
         self._version = post.version
         self._data = (np.empty((0, self.pool.shape[1])), None)          # the evaluated inputs' features, kept
-        self._kept = None                                                # draw_kept's prior draws (W, Phi W)
+        self._kept = None                                                # draw_kept's prior draws (W, (Phi W)^T)
 
     def plausible(self, post) -> np.ndarray:
         """Indices of the pool points that can hold the minimum of a draw (see ``_SCREEN``)."""
@@ -140,8 +140,7 @@ class PathwiseDraws:
         the belief of that moment, while calls share their prior parts (common random numbers,
         as the stopping record uses them: one campaign's trials are then judged on the same
         prior functions). The product ``Phi W`` (``2 m F total`` flops) is paid once per
-        campaign instead of at every call, and the prior draws at the evaluated inputs once per
-        input.
+        campaign instead of at every call.
 
         Returns ``(G, GX)`` with G of shape (S, len(rows)), one row per draw (the transpose of
         :meth:`draw_in`'s: the kept draws are stored draw by draw, so a batch of them is one
@@ -151,20 +150,14 @@ class PathwiseDraws:
             self._build(st, rng)
         if self._kept is None:
             W = rng.standard_normal((self._basis.shape[1], int(total)))
-            self._kept = (W, np.ascontiguousarray((self._basis @ W.astype(np.float32)).T), None, None)
-        W, GT, kept_X, kept_fX = self._kept
+            self._kept = (W, np.ascontiguousarray((self._basis @ W.astype(np.float32)).T))
+        W, GT = self._kept
         all_rows = len(rows) == len(self.pool)
         n = st.n
         if n == 0:
             return (GT[cols].copy() if all_rows else GT[cols][:, rows]), np.empty((0, cols.stop - cols.start))
         X = st._X[b, :n]
-        if kept_X is None or len(kept_X) > n or not np.array_equal(kept_X, X[: len(kept_X)]):
-            kept_X, kept_fX = X[:0].copy(), np.empty((0, W.shape[1]))
-        if len(kept_X) < n:                     # the kept prior draws at inputs not seen before
-            kept_fX = np.vstack([kept_fX, self.sample.basis(X[len(kept_X):]) @ W])
-            kept_X = X.copy()
-            self._kept = (W, GT, kept_X, kept_fX)   # a new tuple: copies of these draws keep their own
-        w, a, GX = self._at_data(st, b, rng, kept_fX[:, cols])
+        w, a, GX = self._at_data(st, b, rng, self._data_basis(X) @ W[:, cols])
         if 2 * len(rows) >= len(self.pool):
             V = st._V[b, :n]
             corr = w.T @ V if all_rows else w.T @ V[:, rows]                   # cached cross term, O(n m S)
@@ -577,7 +570,7 @@ class MaxValueEntropySearch(Acquisition):
         exact = np.zeros(len(out), dtype=bool)
         out[first] = max_value_information(mu[first], sd[first], fstar, self._noise).mean(-1)
         exact[first] = True
-        if len(first) < keep or len(first) == len(out):
+        if len(first) == len(out):              # the whole pool is scored exactly
             return out
         low = out[first].min()
         rows = np.flatnonzero(~exact & (out > low))
