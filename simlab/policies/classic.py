@@ -349,29 +349,13 @@ class ThompsonSampling(Acquisition):
         for b in range(B):
             rows = np.flatnonzero(plausible[b])
             values[b, rows] = -(self._prior32(b, rows, amp[b], phase[b]) * scale[b, 0] + cross[b, rows])
-        def prior(U):
-            P = np.matmul(U, omega.transpose(0, 2, 1))            # (B, q, F)
-            P -= phase[:, None, :]
-            g = st.mean + scale * matvec(np.cos(P), amp)
-            dg = np.matmul(-scale[..., None] * amp[:, None, :] * np.sin(P), omega)
-            return g, dg
-
-        return self._finish(st, block, values, prior, beta)
+        return self._finish(st, block, values, stacked_prior(st.mean, omega, amp, phase, scale), beta)
 
     def _finish(self, st, block, values, prior, beta):
         """The choice from the ranked pool ``values``: a library's best row, or the best of the polished
         starts of the posterior sample ``prior(U) + K(U, X) beta`` (``prior(U) -> (g, dg)``). Keeps
         ``beta`` and ``values`` for score() and the tests."""
-        X, n = st._X[:, : st.n], st.n
-
-        def fg(U):
-            g, dg = prior(U)
-            if n:
-                Kq, dK = st.kernel.stacked_grad(U, X)
-                g = g + matvec(Kq, beta)
-                dg = dg + np.stack([matvec(dj, beta) for dj in dK], axis=-1)
-            return g, dg
-
+        fg = posterior_sample(st, prior, beta)
         chosen = (best_row(st, block, values) if block.library is not None else
                   _best_polished(st.pools, values, fg, self.n_starts, self.polish_iterations))
         self._beta, self._ranked = beta, values
@@ -406,11 +390,7 @@ class ThompsonSampling(Acquisition):
             rows = np.flatnonzero(plausible[b])
             values[b, rows] = -(sample.values32(st.pools[b, rows]) + cross[b, rows])   # ranked in float32
 
-        def prior(U):
-            return (np.stack([sample(U[b]) for b, sample in enumerate(self._samples)]),
-                    np.stack([sample.grad(U[b]) for b, sample in enumerate(self._samples)]))
-
-        return self._finish(st, block, values, prior, beta)
+        return self._finish(st, block, values, samples_prior(self._samples), beta)
 
     def _prior32(self, b, rows, amp, phase) -> np.ndarray:
         """Replicate b's prior draw over pool rows, in float32 arithmetic, without scale or mean
@@ -472,3 +452,45 @@ class ThompsonSampling(Acquisition):
             return -g
         dg = self.sample.grad(U) + np.einsum("qnd,n->qd", post.kernel.grad(U, post.X), self.beta)
         return -g, -dg
+
+
+# ------------------------------------------------------------------- stacked posterior samples
+def stacked_prior(mean, omega, amp, phase, scale):
+    """``prior(U) -> (g, dg)`` of a block of random-feature prior samples in amplitude-phase form
+    (omega (B, F, d), amp and phase (B, F), scale (B, 1)) at U (B, q, d): values (B, q) and
+    gradients (B, q, d), each replicate's from its own slices (``feature_values``'s arithmetic)."""
+    def prior(U):
+        P = np.matmul(U, omega.transpose(0, 2, 1))            # (B, q, F)
+        P -= phase[:, None, :]
+        g = mean + scale * matvec(np.cos(P), amp)
+        dg = np.matmul(-scale[..., None] * amp[:, None, :] * np.sin(P), omega)
+        return g, dg
+
+    return prior
+
+
+def samples_prior(samples):
+    """``prior(U)`` of a list of samples with ``__call__`` and ``grad`` (mixed-space features), one
+    replicate at a time."""
+    def prior(U):
+        return (np.stack([sample(U[b]) for b, sample in enumerate(samples)]),
+                np.stack([sample.grad(U[b]) for b, sample in enumerate(samples)]))
+
+    return prior
+
+
+def posterior_sample(st, prior, beta):
+    """``fg(U)`` of a block's posterior samples by Matheron's rule, ``prior(U) + K(U, X) beta`` with
+    beta (B, n) each replicate's ``(K + s2 I)^-1 (y - f(X) - eps)``: values (B, q) and gradients
+    (B, q, d) for :func:`~simlab.model.optimize.polish_block`."""
+    X, n = st._X[:, : st.n], st.n
+
+    def fg(U):
+        g, dg = prior(U)
+        if n:
+            Kq, dK = st.kernel.stacked_grad(U, X)
+            g = g + matvec(Kq, beta)
+            dg = dg + np.stack([matvec(dj, beta) for dj in dK], axis=-1)
+        return g, dg
+
+    return fg

@@ -7,9 +7,9 @@ import numpy as np
 from numpy.polynomial.hermite_e import hermegauss
 from ..lazy import optimize, special
 
-from ..model.optimize import polish
-from ..worlds.mixed import feature_sample
-from .base import Acquisition, Option
+from ..model.optimize import polish_block
+from ..worlds.mixed import MixedFeatureSample, feature_sample
+from .base import Acquisition, Option, _lowest_mean_block
 
 __all__ = ["ProbabilityOfMinimum", "MaxValueEntropySearch", "PathwiseDraws", "max_value_information"]
 
@@ -69,52 +69,6 @@ class PathwiseDraws:
         self._data = (np.empty((0, self.pool.shape[1])), None)          # the evaluated inputs' features, kept
         self._kept = None                                                # draw_kept's prior draws (W, (Phi W)^T)
 
-    def plausible(self, post) -> np.ndarray:
-        """Indices of the pool points that can hold the minimum of a draw (see ``_SCREEN``)."""
-        mu, sd = post.pool_moments()
-        if post.n == 0:
-            return np.arange(len(mu))
-        return np.flatnonzero(mu - _SCREEN * sd <= np.min(mu + _SCREEN * sd))
-
-    def draw(self, post, rng, n_samples: int, rows=None, *, at_data: bool = False):
-        """Posterior samples minus the prior mean at pool rows ``rows`` (all if None).
-
-        Parameters
-        ----------
-        rows : ndarray of int, optional
-            Increasing pool indices, as :meth:`plausible` returns them.
-
-        Returns
-        -------
-        G : ndarray of shape (len(rows), S), float32
-            One column per draw.
-        GX : ndarray of shape (n, S), only if ``at_data``
-            The same draws at the evaluated inputs (float64).
-        """
-        if post.version != self._version:        # the belief was refitted: new kernel, new features
-            self._build(post, rng)
-        all_rows = rows is None or len(rows) == len(self.pool)   # plausible() keeps the order
-        rows = np.arange(len(self.pool)) if all_rows else rows
-        S = int(n_samples)
-        W = rng.standard_normal((self._basis.shape[1], S))
-        Phi = self._basis if all_rows else self._basis[rows]
-        G = Phi @ W.astype(np.float32)                                         # prior draws, (r, S)
-        n = post.n
-        self._W, self._R = W, np.empty((0, S))
-        if n == 0:
-            return (G, np.empty((0, S))) if at_data else G
-        fX = self.sample.basis(post.X) @ W                                     # the same draws at the data
-        R = (post.y - post.mean)[:, None] - fX - np.sqrt(post.s2) * rng.standard_normal((n, S))
-        self._R = R
-        if 2 * len(rows) >= len(self.pool):
-            corr = post.pool_cross(R)                           # cached cross term, O(n m S)
-            G += corr if all_rows else corr[rows]
-        else:
-            G += post.kernel(self.pool[rows], post.X) @ post.solve(R)   # few rows: O(n |rows| S)
-        if not at_data:
-            return G
-        return G, fX + post.kernel(post.X) @ post.solve(R)
-
     def draw_in(self, st, b: int, rng, n_samples: int, rows, *, single: bool = False):
         """:meth:`draw` for replicate b of a stack (its pool, data and factors), with the
         draws at the evaluated inputs too: ``(G, GX)``.
@@ -171,9 +125,11 @@ class PathwiseDraws:
         """Prior draws G (rows, S) of weights W (2F, S), conditioned on replicate b's data: ``(G, GX)``."""
         n = st.n
         if n == 0:
+            self._last = (W, np.empty((0, W.shape[1])))
             return G, np.empty((0, W.shape[1]))
         X = st._X[b, :n]
         w, a, GX = self._at_data(st, b, rng, self._data_basis(X) @ W)
+        self._last = (W, a)                                                    # for path()
         if 2 * len(rows) >= len(self.pool):
             V = st._V[b, :n]
             corr = V.T @ w if len(rows) == len(self.pool) else V[:, rows].T @ w   # cached cross term, O(n m S)
@@ -207,11 +163,12 @@ class PathwiseDraws:
             self._data = (X.copy(), old)     # a new tuple: copies of these draws (the stopping record's) keep their own
         return old
 
-    def path(self, post, s: int):
-        """Draw s of the last :meth:`draw` as a function anywhere: ``fg(U) -> (values, gradients)``."""
-        self.sample.w = self._W[:, s].copy()
-        beta = post.solve(self._R[:, s]) if post.n else np.zeros(0)
-        sample, kernel, X = self.sample, post.kernel, post.X
+    def path(self, st, s: int, b: int = 0):
+        """Draw s of the last :meth:`draw_in` (replicate b of stack st) as a function anywhere:
+        ``fg(U) -> (values, gradients)`` for U (q, d)."""
+        W, a = self._last
+        self.sample.w = W[:, s].copy()
+        sample, kernel, X, beta = self.sample, st.kernel, st._X[b, : st.n], a[:, s]
 
         def fg(U):
             U = np.atleast_2d(U)
@@ -221,6 +178,11 @@ class PathwiseDraws:
                     sample.grad(U) + np.einsum("qnd,n->qd", kernel.grad(U, X), beta))
 
         return fg
+
+
+def _plausible(mu, sd, n: int) -> np.ndarray:
+    """Indices of the pool points (moments mu, sd) that can hold the minimum of a draw (see ``_SCREEN``)."""
+    return np.arange(len(mu)) if n == 0 else np.flatnonzero(mu - _SCREEN * sd <= np.min(mu + _SCREEN * sd))
 
 
 # ---------------------------------------------------------------------------------------- pbest
@@ -274,20 +236,30 @@ class ProbabilityOfMinimum(Acquisition):
                        choices=("samples", "believer", "liar")),
     }
     n_starts = 0
+    lockstep = True   # the one-campaign path is the block code on a block of one
 
     def start(self, ctx):
         super().start(ctx)
-        self.draws = PathwiseDraws(ctx.posterior, ctx.pool, ctx.rng, self.features)
+        self._draws = None
+        self._draws = _per_replicate_draws(self, ctx.posterior, [ctx.rng])
 
-    def _votes(self, post) -> np.ndarray:
-        """Pool index of each draw's minimum: shape (S,)."""
-        rows = self.draws.plausible(post)
-        G = self.draws.draw(post, self.ctx.rng, self.samples, rows)
+    @property
+    def draws(self) -> PathwiseDraws:
+        """The one campaign's draws (a block's are one per replicate)."""
+        return self._draws[0]
+
+    def _votes(self, st, b: int, rng, mu, sd) -> np.ndarray:
+        """Pool index of each of replicate b's draws' minimum: shape (S,). The correction is added in
+        float32 (``draw_in(single=True)``): only the argmin is read."""
+        rows = _plausible(mu, sd, st.n)
+        G, _ = self._draws[b].draw_in(st, b, rng, self.samples, rows, single=True)
         return rows[np.argmin(G, axis=0)]
 
     def probabilities(self, post) -> np.ndarray:
         """Share of the draws whose minimum over the pool lies at each pool point: shape (m,)."""
-        return np.bincount(self._votes(post), minlength=len(self.ctx.pool)) / float(self.samples)
+        mu, sd = post.stacked_pool_moments()
+        votes = self._votes(post, 0, self.ctx.rng, mu[0], sd[0])
+        return np.bincount(votes, minlength=len(self.ctx.pool)) / float(self.samples)
 
     def score_pool(self, post):
         return self.probabilities(post)
@@ -299,24 +271,56 @@ class ProbabilityOfMinimum(Acquisition):
     weights_feasibility = True
 
     def choose(self, post, t):
-        if t >= self.ctx.horizon - self.exploit_last:
-            return super().choose(post, t)              # the final switch to the lowest mean
-        votes = self._votes(post)
-        counts = np.bincount(votes, minlength=len(self.ctx.pool))
-        if self.weighted(post):
-            score = np.log1p(counts) + post.feasible.pool_log_chance()
-            return self.ctx.pool[int(np.argmax(score))].copy()
-        tied = np.flatnonzero(counts == counts.max())
-        if len(tied) > 1:
-            _, sd = post.pool_moments()
-            tied = tied[[int(np.argmax(sd[tied]))]]
-        best = int(tied[0])
-        start = self.ctx.pool[best][None, :]
-        if not self.refine or self.ctx.library:    # a library's trial is one of its rows, as drawn
-            return start[0].copy()
-        fg = self.draws.path(post, int(np.flatnonzero(votes == best)[0]))
-        U, _ = polish(fg, start, maxiter=self.polish_iterations)
-        return U[0]
+        if not self.weighted(post) or t >= self.ctx.horizon - self.exploit_last:
+            return super().choose(post, t)              # the block code on a block of one, or the final switch
+        counts = self.probabilities(post) * self.samples
+        score = np.log1p(counts) + post.feasible.pool_log_chance()
+        return self.ctx.pool[int(np.argmax(score))].copy()
+
+    def choose_block(self, st, t, block):
+        if t >= block.horizon - self.exploit_last:
+            return _lowest_mean_block(st, self.n_starts, self.polish_iterations)   # the final switch
+        self._draws = _per_replicate_draws(self, st, block.rngs)
+        mu, sd = st.stacked_pool_moments()
+        B, m = mu.shape
+        best, voter = np.empty(B, dtype=int), np.empty(B, dtype=int)
+        for b, rng in enumerate(block.rngs):
+            votes = self._votes(st, b, rng, mu[b], sd[b])
+            counts = np.bincount(votes, minlength=m)
+            tied = np.flatnonzero(counts == counts.max())
+            best[b] = tied[int(np.argmax(sd[b, tied]))] if len(tied) > 1 else tied[0]
+            voter[b] = np.flatnonzero(votes == best[b])[0]      # the first draw that voted for it
+        start = st.pools[np.arange(B), best]                    # (B, d)
+        if not self.refine or block.library is not None:       # a library's trial is one of its rows, as drawn
+            return start.copy()
+        U, _ = polish_block(self._voters(st, voter), start[:, None, :], iterations=self.polish_iterations)
+        return U[:, 0]
+
+    def _voters(self, st, voter):
+        """``fg(U)`` of each replicate's voting draw (number ``voter[b]`` of its last ``draw_in``), stacked
+        for :func:`~simlab.model.optimize.polish_block`: the same Matheron sample as Thompson sampling's."""
+        from .classic import posterior_sample, samples_prior, stacked_prior
+
+        samples, betas = [], []
+        for d, s in zip(self._draws, voter):
+            W, a = d._last
+            d.sample.w = W[:, s].copy()
+            samples.append(d.sample)
+            betas.append(a[:, s])
+        beta = np.stack(betas)                                  # (B, n)
+        if isinstance(samples[0], MixedFeatureSample):
+            return posterior_sample(st, samples_prior(samples), beta)
+        amp, phase = (np.stack(v) for v in zip(*(x.polar() for x in samples)))
+        return posterior_sample(st, stacked_prior(st.mean, np.stack([x.omega for x in samples]), amp, phase,
+                                                  np.array([[x.scale] for x in samples])), beta)
+
+
+def _per_replicate_draws(rule, st, rngs) -> list[PathwiseDraws]:
+    """Each replicate's pathwise draws (frequencies from its own stream), made at the first call of a
+    campaign and kept (``rule._draws``)."""
+    if getattr(rule, "_draws", None) is not None:   # a block's fresh policy has no start()
+        return rule._draws
+    return [PathwiseDraws(st, pool, rng, rule.features) for pool, rng in zip(st.pools, rngs)]
 
 
 # ---------------------------------------------------------------------------------------- MES
@@ -481,9 +485,8 @@ class MaxValueEntropySearch(Acquisition):
 
     def _draws_for(self, st, rngs):
         """Each replicate's pathwise draws (frequencies from its own stream), made once."""
-        if self.gumbel or getattr(self, "_draws", None) is not None:
-            return
-        self._draws = [PathwiseDraws(st, pool, rng, self.features) for pool, rng in zip(st.pools, rngs)]
+        if not self.gumbel:
+            self._draws = _per_replicate_draws(self, st, rngs)
 
     def choose_block(self, st, t, block):
         self._rngs, self._fstars = block.rngs, None
@@ -512,7 +515,7 @@ class MaxValueEntropySearch(Acquisition):
 
     def _sampled_minima(self, st, b, mu, sd, rng):
         """Minima of ``samples`` pathwise draws over replicate b's plausible pool points and data."""
-        rows = np.arange(len(mu)) if st.n == 0 else np.flatnonzero(mu - _SCREEN * sd <= np.min(mu + _SCREEN * sd))
+        rows = _plausible(mu, sd, st.n)
         G, GX = self._draws[b].draw_in(st, b, rng, self.samples, rows)
         low = G.min(0).astype(float)
         if st.n:

@@ -22,7 +22,7 @@ inputs and [candidates] libraries run in lockstep too (a library's rows are ever
 pool, scored exactly and never polished: ``Block.library``).
 
 Which rules: random, sobol, mean, lcb, gp-ucb, pi, ei (rules of the posterior moments),
-thompson and mes (posterior samples: each replicate draws its own weights, noise and
+thompson, pbest and mes (posterior samples: each replicate draws its own weights, noise and
 minima from its own stream, in the order the one-campaign path draws them), kg (each
 replicate's discrete set; the exact envelope is still computed replicate by replicate) and
 hedge (its members are lockstep rules; each replicate picks a member from its own stream).
@@ -33,9 +33,6 @@ every operation. The snapshot's ``score`` after a choice reads the state kept fr
 
 Still one campaign at a time, and why:
 
-- ``pbest``: its trial is 256 pathwise draws over the pool (a float32 product of
-  2048 x 256 x 256) and a count of their minima, then a SciPy polish of one draw; a block
-  would save only the Python around that product (see DEVELOPERS.md for the measured split).
 - rounds of several trials (``[campaign] batch`` > 1): pending trials are held as fantasies
   between choices (``Stack.fantasies`` exists; a block form of each rule's ``hold`` does not
   yet, and ``fill = "penalize"`` keeps a list of pending inputs per campaign).

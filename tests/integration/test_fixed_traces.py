@@ -1,7 +1,7 @@
 """Four fixed studies' traces against stored reference traces: moving code must not change a result.
 
 The studies between them take every path of the replay: lockstep rules (random, sobol, mean,
-lcb, pi, ei, gp-ucb), rules run one campaign at a time (thompson, pbest, mes, kg, hedge),
+lcb, pi, ei, gp-ucb), rules of their own draws (thompson, pbest, mes, kg, hedge),
 rounds of two trials filled by the kriging believer, horizon-aware campaigns (exploit_last),
 Student-t noise growing with the response, lost trials, uncertain hyperparameters and past
 trials. Every column is compared except `regret` and `regret_seen`, which follow the world

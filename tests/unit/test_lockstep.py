@@ -198,7 +198,7 @@ def test_only_campaigns_of_equal_length_run_in_lockstep():
     ei, kg, pbest = POLICIES["ei"](), POLICIES["kg"](), POLICIES["pbest"]()
     assert fits_lockstep(ei, belief, batch=1, lost=0.0)
     assert fits_lockstep(kg, belief, batch=1, lost=0.0)              # in lockstep since its block form
-    assert not fits_lockstep(pbest, belief, batch=1, lost=0.0)       # still one campaign at a time
+    assert fits_lockstep(pbest, belief, batch=1, lost=0.0)           # in lockstep since its block form
     assert not fits_lockstep(ei, belief, batch=2, lost=0.0)          # rounds fantasise
     assert not fits_lockstep(ei, belief, batch=1, lost=0.1)          # ragged beliefs
     refit = Belief(belief.kernel, 0.0, 0.1, refit_every=5)
@@ -233,7 +233,9 @@ MOVED = [[{"rule": "thompson", "features": 64}, {"rule": "thompson", "label": "t
          [{"rule": "mes", "samples": 8, "features": 32}, {"rule": "mes", "label": "mes gumbel", "gumbel": 1},
           {"rule": "mes", "label": "mes free", "noise_aware": 0, "exploit_last": 1}],
          [{"rule": "hedge"}, {"rule": "hedge", "label": "hedge eager", "eta": 20.0}],
-         [{"rule": "kg", "points": 16}, {"rule": "kg", "label": "kg exploit", "points": 8, "exploit_last": 1}]]
+         [{"rule": "kg", "points": 16}, {"rule": "kg", "label": "kg exploit", "points": 8, "exploit_last": 1}],
+         [{"rule": "pbest", "samples": 64, "features": 32},
+          {"rule": "pbest", "label": "pbest plain", "samples": 32, "refine": 0, "exploit_last": 1}]]
 
 
 @pytest.mark.parametrize("policies", MOVED, ids=lambda p: p[0]["rule"])
