@@ -44,10 +44,11 @@ class PathwiseDraws:
     Matheron's rule, as for Thompson sampling, with S weight vectors stacked in a matrix:
     ``G = m + Phi W + K(pool, X) (K + s2 I)^-1 (y - m - Phi_X W - E)`` with ``W`` of shape
     (2F, S) and ``E`` of shape (n, S), both standard normal (``E`` scaled by ``sqrt(s2)``).
-    The pool basis ``Phi`` is computed once per campaign and kept in single precision: the
-    product ``Phi W`` costs ``2 m F S`` flops and float32 runs it three times faster, while
-    its rounding (about 1e-7 of the prior sd) is far below anything a count of minimisers
-    or a sampled minimum can resolve. Pool points that cannot hold the minimum of a draw
+    The pool basis ``Phi`` is computed once per campaign in single precision
+    (``FeatureSample.basis32``) and kept: the product ``Phi W`` costs ``2 m F S`` flops and
+    float32 runs it three times faster, while its rounding (a few 1e-7 of the prior sd: 2e-7
+    per feature, summed over 2F features with standard normal weights) is far below anything
+    a count of minimisers or a sampled minimum can resolve. Pool points that cannot hold the minimum of a draw
     (see ``_SCREEN``) are left out. When the belief is refitted (``post.version`` changes)
     the frequencies are drawn again for the new kernel.
 
@@ -64,7 +65,8 @@ class PathwiseDraws:
 
     def _build(self, post, rng):
         self.sample = feature_sample(post.kernel, post.mean, rng, self.n_freq)
-        self._basis = self.sample.basis(self.pool).astype(np.float32)   # (m, 2F)
+        basis32 = getattr(self.sample, "basis32", None)                  # mixed-space samples have none
+        self._basis = basis32(self.pool) if basis32 else self.sample.basis(self.pool).astype(np.float32)  # (m, 2F)
         self._version = post.version
         self._data = (np.empty((0, self.pool.shape[1])), None)          # the evaluated inputs' features, kept
         self._kept = None                                                # draw_kept's prior draws (W, (Phi W)^T)

@@ -141,6 +141,24 @@ def test_feature_sample_gradient_matches_finite_differences(name):
     assert np.max(np.abs(other.grad(U) - fd)) > tol
 
 
+@pytest.mark.parametrize("name", KERNEL_NAMES)
+def test_float32_basis_matches_the_float64_basis(name):
+    """FeatureSample.basis32 against basis (NumPy float64 cosines and sines): within 3e-7 of a / sqrt(F)
+    per feature (float32's half-ulp at 1 is 6e-8; the phase after reduction to [-pi, pi] adds up to
+    pi x 6e-8), at short lengthscales where phases reach hundreds (matern12's heavy tail: thousands)."""
+    k = KERNELS[name]([0.02, 0.05], AMP)
+    s = FeatureSample(k, MEAN, np.random.default_rng(304), n_freq=256)
+    U = np.random.default_rng(305).random((2048, 2))
+    want, got = s.basis(U), s.basis32(U)
+    assert got.dtype == np.float32 and got.shape == want.shape
+    assert np.max(np.abs(got - want)) / s.scale < 3e-7
+    assert np.max(np.abs(U @ s.omega.T)) > 100.0               # the phases the reduction is there for
+    # negative control: casting the phases to float32 before the reduction misses the same bound
+    P = (U @ s.omega.T).astype(np.float32)
+    naive = np.hstack([np.cos(P), np.sin(P)]) * np.float32(s.scale)
+    assert np.max(np.abs(naive - want)) / s.scale > 3e-7
+
+
 # --------------------------------------------------------------------------- grid worlds
 GRID_N = 33
 LS1 = [0.2]
