@@ -332,15 +332,13 @@ def _inv_mills(g, log_cdf=None):
     return np.exp(-0.5 * g * g - _LOG_SQRT_2PI - (special.log_ndtr(g) if log_cdf is None else log_cdf))
 
 
-def _b(u):
-    """``Phi(u) log Phi(u) / phi(u)`` and ``log Phi(u)``, finite for every u.
+def _b_exact(u):
+    """``b(u) = Phi(u) log Phi(u) / phi(u)`` and ``log Phi(u)`` from the special functions, finite for every u.
 
     ``Phi/phi = sqrt(pi/2) special.erfcx(-u/sqrt2)`` for every u (no cancellation; it overflows only
-    beyond u ~ 37), so ``b = sqrt(pi/2) erfcx(-u/sqrt2) log Phi(u)`` in one pass over the array, with
-    ``log Phi`` from ``log_ndtr``, accurate where it is tiny. Above u = 30, where ``log Phi(u) = -Q``
-    to within Q^2 (Q = Phi(-u) < 1e-197), ``b = -Q / phi = -sqrt(pi/2) erfcx(u/sqrt2)``. Against the
-    former two-branch form (log1p(-Q) / Q for u > 0): relative differences below 2e-13 on a grid of
-    u in [-40, 40], 1.5 times faster on the noisy MES arrays.
+    beyond u ~ 37), so ``b = sqrt(pi/2) erfcx(-u/sqrt2) log Phi(u)``, with ``log Phi`` from ``log_ndtr``,
+    accurate where it is tiny. Above u = 30, where ``log Phi(u) = -Q`` to within Q^2 (Q = Phi(-u) <
+    1e-197), ``b = -Q / phi = -sqrt(pi/2) erfcx(u/sqrt2)``.
     """
     logp = special.log_ndtr(u)
     out = _SQRT_HALF_PI * special.erfcx(-np.minimum(u, 30.0) / np.sqrt(2.0)) * logp
@@ -348,6 +346,68 @@ def _b(u):
     if far.any():
         out[far] = -_SQRT_HALF_PI * special.erfcx(u[far] / np.sqrt(2.0))
     return out, logp
+
+
+class _BTable:
+    """``b(u)`` and ``b'(u) = log Phi(u) + 1 + u b(u)`` by cubic Hermite interpolation on a uniform grid.
+
+    The noisy information spends most of its time in ``b`` at 8 Gauss-Hermite nodes per input and
+    sampled minimum: ``log_ndtr`` and ``erfcx`` cost about 50 ns an element here. Interpolating the
+    exact values and derivatives at 4,097 knots on [-32, 32] (spacing 1/64; the coefficients from
+    SciPy's ``CubicHermiteSpline``, with ``b'' = lambda + b + u b'``, lambda = phi / Phi) costs about
+    6 ns an element: the interval index is one multiplication on a uniform grid, then four gathers
+    and Horner's rule. SciPy's own ``PPoly.__call__`` is not used for the evaluation because its
+    general breakpoint search measured 70 ns an element, slower than the special functions.
+    Accuracy: relative error at most 1.1e-11 for ``b``, absolute 7e-12 for ``b'`` (which crosses 0), over 2 million points of
+    [-32, 32] (``tests/unit/test_info_rules.py``), far below the 8-node rule's 5e-8 nats. Outside the
+    grid the exact forms are used.
+    """
+
+    lo, hi, size = -32.0, 32.0, 4096
+
+    def __init__(self):
+        from scipy.interpolate import CubicHermiteSpline
+
+        k = np.linspace(self.lo, self.hi, self.size + 1)
+        self.knots, self.step = k[:-1].copy(), (self.hi - self.lo) / self.size
+        b, logp = _b_exact(k)
+        db = logp + 1.0 + k * b
+        ddb = _inv_mills(k, logp) + b + k * db
+        self.b = [np.ascontiguousarray(c) for c in CubicHermiteSpline(k, b, db).c]
+        self.db = [np.ascontiguousarray(c) for c in CubicHermiteSpline(k, db, ddb).c]
+
+    def __call__(self, u, *, derivative: bool = False):
+        """``b(u)``, and with ``derivative`` also ``b'(u)``, each shaped like u."""
+        i = ((u - self.lo) * (1.0 / self.step)).astype(np.intp)
+        np.clip(i, 0, self.size - 1, out=i)
+        s = u - self.knots.take(i)
+        out = [self._horner(self.b, i, s)] + ([self._horner(self.db, i, s)] if derivative else [])
+        far = (u < self.lo) | (u > self.hi)
+        if far.any():
+            bf, logp = _b_exact(u[far])
+            out[0][far] = bf
+            if derivative:
+                out[1][far] = logp + 1.0 + u[far] * bf
+        return tuple(out) if derivative else out[0]
+
+    @staticmethod
+    def _horner(c, i, s):
+        out = c[0].take(i)
+        for cj in c[1:]:
+            out *= s
+            out += cj.take(i)
+        return out
+
+
+_B_TABLE = None
+
+
+def _b(u, *, derivative: bool = False):
+    """``b(u)`` (and ``b'(u)``) from the table (:class:`_BTable`), built at the first call."""
+    global _B_TABLE
+    if _B_TABLE is None:
+        _B_TABLE = _BTable()
+    return _B_TABLE(u, derivative=derivative)
 
 
 def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = False):
@@ -422,12 +482,11 @@ def max_value_information(mu, sd, fstar, noise: float = 0.0, *, grad: bool = Fal
     sy = np.sqrt(sd * sd + s * s)
     rho, kappa = sd / sy, s / sy
     u = (kappa * g)[..., None] + rho[..., None] * _GH_NODES          # (q, K, Q)
-    bu, logp = _b(u)
+    bu, db = _b(u, derivative=True) if grad else (_b(u), None)
     G = (bu * _GH_WEIGHTS).sum(-1)     # a sum over the last axis: the same bits in any block
     info = 0.5 * rho**2 * g * lam - logpsi + kappa * lam * G
     if not grad:
         return info
-    db = logp + 1.0 + u * bu
     Eb1 = (db * _GH_WEIGHTS).sum(-1)
     Ebs = (db * (_GH_WEIGHTS * _GH_NODES)).sum(-1)
     dlam = -lam * (g + lam)

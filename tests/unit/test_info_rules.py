@@ -139,6 +139,31 @@ def test_noisy_mes_limits_and_bound():
         assert np.all(noisy <= free + 1e-12)
 
 
+def test_b_table_matches_the_special_functions():
+    """The noisy information's b(u) = Phi(u) log Phi(u) / phi(u) and b'(u) = log Phi(u) + 1 + u b(u), read
+    from the interpolation table, against scipy.stats.norm's logcdf and logpdf (another route to the same
+    quantities: b = exp(logcdf - logpdf) logcdf) on 400,001 points of [-31.9, 31.9], and beyond the grid."""
+    from simlab.policies.info import _b, _BTable
+
+    u = np.linspace(-31.9, 31.9, 400_001)
+    logp = norm.logcdf(u)
+    want = np.exp(logp - norm.logpdf(u)) * logp
+    dwant = logp + 1.0 + u * want
+    got, dgot = _b(u, derivative=True)
+    # norm.logcdf carries ~1e-15 relative, exp(logcdf - logpdf) loses |u|^2 eps ~ 1e-13 at |u| = 32, and
+    # the reference b' multiplies that by |u|: the bounds are relative to b and to 1 + |u b|
+    assert np.max(np.abs(got - want) / np.maximum(np.abs(want), 1e-300)) < 1e-10
+    assert np.max(np.abs(dgot - dwant) / (1.0 + np.abs(u * want))) < 1e-10
+    far = np.array([-60.0, -32.5, 32.5, 35.0])
+    lp = norm.logcdf(far)
+    np.testing.assert_allclose(_b(far), np.exp(lp - norm.logpdf(far)) * lp, rtol=1e-12)
+    # negative control: a table 16 times coarser (spacing 1/4) misses the same bound
+    coarse = _BTable.__new__(_BTable)
+    coarse.size = 256
+    coarse.__init__()
+    assert np.max(np.abs(coarse(u) - want) / np.maximum(np.abs(want), 1e-300)) > 1e-10
+
+
 @pytest.mark.parametrize("noise", [0.0, 0.05, 0.7])
 def test_mes_derivatives_match_finite_differences(noise):
     rng = np.random.default_rng(3)
