@@ -44,6 +44,10 @@ class Figure:
     stem: ClassVar[str] = ""
     section: ClassVar[str] = "results"
     alt: ClassVar[str] = ""
+    # False: applies() reads only the study and draw() only the study and traces, never the decision
+    # tables, so workers may draw the figure while the tables are still being made
+    needs_tables: ClassVar[bool] = True
+    slow: ClassVar[bool] = False    # about a second or more on the demo: handed to a worker first
 
     def applies(self, study, tables) -> bool:
         """Whether the study has this figure (default: always)."""
@@ -60,6 +64,7 @@ class Figure:
 
 class RegretFigure(Figure):
     stem, alt = "regret", "Median regret against trial for each policy, log scale"
+    needs_tables = False
 
     def caption(self, study, success):
         return ("Median regret of the recommendation after each trial (line) and the middle 50 % of campaigns "
@@ -77,6 +82,7 @@ class RegretFigure(Figure):
 
 class RoundsFigure(Figure):
     stem, alt = "regret_rounds", "Median regret against round for each policy, log scale"
+    needs_tables = False
 
     def applies(self, study, tables):
         return study.campaign.batch > 1
@@ -133,6 +139,7 @@ class RetiredFigure(Figure):
 
 class FinalRegretFigure(Figure):
     stem, alt = "final_regret", "Regret of every campaign at the largest budget"
+    needs_tables = False
 
     def caption(self, study, success):
         return (f"Regret of every simulated campaign after {study.campaign.horizon} trials, one dot per world. "
@@ -184,6 +191,7 @@ class WinRateFigure(Figure):
 
 class PlacementFigure(Figure):
     stem, section, alt = "placement", "placement", "Histograms of each policy's own trials along every input"
+    slow = True
 
     def applies(self, study, tables):
         # no own trials when the initial design uses the whole budget
@@ -246,6 +254,8 @@ class HarmFigure(Figure):
 
 class SnapshotFigure(Figure):
     stem, section, alt = "snapshot", "snapshot", "Campaign snapshot of one replicate"
+    needs_tables = False
+    slow = True
 
     def applies(self, study, tables):
         # the snapshot shows the next trial after the initial design: none when the design uses the whole budget

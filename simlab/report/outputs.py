@@ -118,17 +118,18 @@ def write_outputs(folder, study, traces, *, success=0.9, figures=True, seed=0, p
                          f"{missing} that record them")
     folder = Path(folder)
     step = progress if progress is not None else (lambda n: None)
-    warming = _start_figure_workers(jobs) if figures else None   # their imports, while the tables are made
+    # with workers, the figures that read no table are drawn while this process makes the tables
+    early = _start_early_figures(study, traces, success=success, seed=seed, jobs=jobs) if figures else None
     try:
         tables, paths = _decision_tables(folder, study, traces, success=success, seed=seed, step=step)
     except BaseException:
-        _stop_figure_workers(warming)
+        _stop_figure_workers(None if early is None else early[1])
         raise
 
     images, figure_paths = {}, []
     if figures:
         for stem, (png, svg) in _figure_files(folder / FIGURES, study, traces, tables, success=success, seed=seed,
-                                              jobs=jobs, step=step, warming=warming).items():
+                                              jobs=jobs, step=step, early=early).items():
             figure_paths += [png, svg]
             images[stem] = svg.read_bytes()   # the page embeds the SVG: vector, sharp in print
 
@@ -242,16 +243,46 @@ def _figure_workers(jobs):
     return min(workers(jobs), len(FIGURE_REGISTRY))
 
 
-def _start_figure_workers(jobs):
-    """With more than one job, have every figure worker import matplotlib and the drawing code (about
-    1 s each, the first time) while this process makes the tables; returns the joblib generator to
-    drain before the figures are handed out (None with one job)."""
+def _start_early_figures(study, traces, *, success, seed, jobs):
+    """With more than one job, hand the workers the figures that read no decision table
+    (``Figure.needs_tables``), slow ones first, so that they draw (and, in fresh workers, import
+    matplotlib and the drawing code, about 1 s the first time) while this process makes the tables.
+    Returns ``(stems, generator)`` for :func:`_figure_files` to drain, or None with one job."""
     n = _figure_workers(jobs)
     if n <= 1:
         return None
+    stems = _handout([stem for stem, fig in FIGURE_REGISTRY.items() if not fig.needs_tables and fig.applies(study, {})])
+    if not stems:
+        return None
+    from .style import policy_colors
+
+    given = FigureInput(study=study, traces=traces, tables={}, success=success, seed=seed,
+                        colors=policy_colors(study.labels))
+    return stems, _in_workers(n, given, stems)
+
+
+def _handout(stems):
+    """The order figures go to workers: slow ones first (``Figure.slow``), otherwise registry order, so that
+    the last figure to finish is a short one."""
+    return sorted(stems, key=lambda stem: not FIGURE_REGISTRY[stem].slow)
+
+
+def _in_workers(n, given, stems):
+    """joblib's generator of ``(stem, png, svg)`` for `stems` drawn by n workers from `given`.
+
+    One figure per task (0.25-1.25 s each on the demo). The bytes come back as each figure finishes
+    and are written by the caller: every file is this process's atomic write, and a stopped worker
+    leaves nothing half-written. The inputs travel as one pickle: given as they are, joblib would
+    memmap the traces' arrays (past its 1 MB threshold) into a temporary folder whose removal at the
+    end of the call waits for the workers to let go of it (the demo's last figure arrived 1.0 s
+    late); max_nbytes=None avoids that too, but loky then replaces the replay's workers with new ones.
+    """
+    import pickle
+
     from joblib import delayed
 
-    return _parallel(n)(delayed(_import_drawing)() for _ in range(n))
+    packed = pickle.dumps(given, protocol=pickle.HIGHEST_PROTOCOL)
+    return _parallel(n)(delayed(_rendered_in_worker)(packed, stem) for stem in stems)
 
 
 def _parallel(n):
@@ -277,63 +308,40 @@ def _stop_figure_workers(running):
         stop_local_workers()
 
 
-def _import_drawing():
-    """What a figure worker imports and sets up before its first figure (its font cache too)."""
-    from matplotlib.figure import Figure
-
-    from . import plots, snapshot  # noqa: F401
-    from .style import figure_bytes
-
-    tiny = Figure(figsize=(1, 1))
-    tiny.add_subplot().set_title("simlab")
-    figure_bytes(tiny)
-
-
-def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step, warming=None):
+def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step, early=None):
     """Draw and write every registered figure that applies; {stem: (png, svg)} in registry order.
 
     `step` is called once per registered figure: at once for those that do not apply, after its
-    files are written for the others. `warming`: the generator of :func:`_start_figure_workers`."""
+    files are written for the others. `early`: :func:`_start_early_figures`'s figures, already in
+    the workers' hands; the others are handed out once those are written."""
     from .style import policy_colors, write_figure
 
-    if warming is not None:
-        try:
-            for _ in warming:
-                pass
-        except BaseException:
-            _stop_figure_workers(warming)
-            raise
     given = FigureInput(study=study, traces=traces, tables=tables, success=success, seed=seed,
                         colors=policy_colors(study.labels))
     stems = [stem for stem, fig in FIGURE_REGISTRY.items() if fig.applies(study, tables)]
     if len(stems) < len(FIGURE_REGISTRY):
         step(len(FIGURE_REGISTRY) - len(stems))
     written = {}
-    if _figure_workers(jobs) <= 1 or len(stems) <= 1:   # here, one after another: no worker to start
+    if early is None and (_figure_workers(jobs) <= 1 or len(stems) <= 1):   # here, one after another
         for stem in stems:
             written[stem] = write_figure(folder, stem, *_rendered(given, stem))
             step(1)
         return written
-    import pickle
-
-    from joblib import delayed
-
-    # One figure per task (0.2-1.3 s each on the demo), handed out in registry order. The bytes come
-    # back as each figure finishes and are written here: every file is this process's atomic write,
-    # and a stopped worker leaves nothing half-written. The inputs travel as one pickle: given as
-    # they are, joblib would memmap the traces' arrays (past its 1 MB threshold) into a temporary
-    # folder whose removal at the end of the call waits for the workers to let go of it (the demo's
-    # last figure arrived 1.0 s late); max_nbytes=None avoids that too, but loky then replaces the
-    # replay's workers with new ones.
-    packed = pickle.dumps(given, protocol=pickle.HIGHEST_PROTOCOL)
-    results = _parallel(_figure_workers(jobs))(delayed(_rendered_in_worker)(packed, stem) for stem in stems)
-    try:
-        for stem, png, svg in results:
-            written[stem] = write_figure(folder, stem, png, svg)
-            step(1)
-    except BaseException:
-        _stop_figure_workers(results)
-        raise
+    done = set(early[0]) if early is not None else set()
+    phases = ([early[1]] if early is not None else []) + [None]
+    for running in phases:
+        if running is None:
+            rest = _handout([stem for stem in stems if stem not in done])
+            if not rest:
+                break
+            running = _in_workers(_figure_workers(jobs), given, rest)
+        try:
+            for stem, png, svg in running:
+                written[stem] = write_figure(folder, stem, png, svg)
+                step(1)
+        except BaseException:
+            _stop_figure_workers(running)
+            raise
     return {stem: written[stem] for stem in stems}
 
 
