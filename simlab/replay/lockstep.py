@@ -2,8 +2,11 @@
 
 The one-screen loop, for a block of B replicates sharing a policy and a budget::
 
-    for each trial t:
-        choose   xs (B, d)   initial design, or policy.choose_block(stack, t, block)
+    for each round (``[campaign] batch`` trials; the last may be shorter):
+        choose   each trial's xs (B, d): initial design, or policy.choose_block(stack, t, block);
+                 inside stack.fantasies() every pending trial but the round's last is held
+                 (policy.hold_block), then policy.release()
+      for each trial t of the round, in order:
         evaluate f  (B,)     every replicate's own world at its own input
         observe  y  (B,)     the replicate's shared noise draw for trial t
         update   stack.add(xs, y)      one row of every factor, one product per block
@@ -16,9 +19,10 @@ friends), so each campaign's trace has the same bits as :func:`simlab.replay.cam
 gives it alone; ``tests/unit/test_lockstep.py`` compares them.
 
 Campaigns run in lockstep when the rule declares ``lockstep = True`` and every campaign of
-the block stays the same length at every step: one trial per round, no lost trials and no
-belief refits. Other campaigns are replayed one at a time. Spaces with stepped or categorical
-inputs and [candidates] libraries run in lockstep too (a library's rows are every replicate's
+the block stays the same length at every step: no lost trials and no belief refits (rounds of
+several trials hold the same number of pending trials in every replicate). Other campaigns are
+replayed one at a time. Spaces with stepped or categorical inputs and [candidates] libraries
+run in lockstep too (a library's rows are every replicate's
 pool, scored exactly and never polished: ``Block.library``).
 
 Which rules: random, sobol, mean, lcb, gp-ucb, pi, ei (rules of the posterior moments),
@@ -29,16 +33,20 @@ hedge (its members are lockstep rules; each replicate picks a member from its ow
 Every one of them makes its one-campaign choice by running its block code on a block of
 one, and polishes with :func:`~simlab.model.optimize.polish_block`, so the two paths share
 every operation. The snapshot's ``score`` after a choice reads the state kept from it
-(``Acquisition._keep_state``), never a second draw.
+(``Acquisition._keep_state``), never a second draw. In a round, pending trials are held the
+same way: ``Policy.hold_block`` (believer: each replicate's posterior mean at its pending
+input, from the stacked moments; liar: a constant per replicate from its real observations;
+samples: nothing; hedge: each replicate's trial held by the member that chose it), and the
+one-campaign ``hold`` is that code on a block of one.
 
 Still one campaign at a time, and why:
 
 - ``pbest``: its trial is 256 pathwise draws over the pool (a float32 product of
   2048 x 256 x 256) and a count of their minima, then a SciPy polish of one draw; a block
   would save only the Python around that product (see DEVELOPERS.md for the measured split).
-- rounds of several trials (``[campaign] batch`` > 1): pending trials are held as fantasies
-  between choices (``Stack.fantasies`` exists; a block form of each rule's ``hold`` does not
-  yet, and ``fill = "penalize"`` keeps a list of pending inputs per campaign).
+- rounds filled by local penalization (``fill = "penalize"`` with ``[campaign] batch`` > 1): the
+  rule keeps a list of pending inputs and a Lipschitz state per campaign and scores through
+  the one-campaign ``_penalized`` (``fits_lockstep`` reads the policy's ``fill``).
 - lost trials (``[world] lost`` > 0): the belief skips a row, so replicates of one block would
   hold different numbers of rows; :class:`~simlab.model.gp.Stack` keeps one ``n`` for the
   block (a row count per replicate would lift this).
