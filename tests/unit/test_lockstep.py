@@ -349,9 +349,9 @@ def test_hold_block_holds_what_each_fill_says(fill, lie):
 
 
 @pytest.mark.parametrize("policies", IN_ROUNDS, ids=lambda p: p[0]["rule"])
-@pytest.mark.parametrize("batch", [2, 3])
-def test_rounds_are_bit_identical_to_one_at_a_time(policies, batch):
-    s = study_with(ROUNDS, "test", policy=policies, campaign={"batch": batch})
+@pytest.mark.parametrize("batch,world", [(2, {}), (3, {}), (3, {"noise": 0.0})], ids=["2", "3", "3-noise-free"])
+def test_rounds_are_bit_identical_to_one_at_a_time(policies, batch, world):
+    s = study_with(ROUNDS, "test", policy=policies, campaign={"batch": batch}, world=world)
     assert all(_fits(policy, batch) for policy in policies)
     ref = replay(s, lockstep=False, chunk=7)
     assert ref["round"].max() > ref["round"].min() + 1         # several rounds, some of several trials
