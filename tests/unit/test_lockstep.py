@@ -284,7 +284,7 @@ IN_ROUNDS = [[{"rule": "ei"}, {"rule": "ei", "label": "ei liar", "fill": "liar"}
               {"rule": "thompson", "label": "ts believer", "features": 32, "fill": "believer", "exploit_last": 1}],
              [{"rule": "mes", "samples": 4, "features": 32}, {"rule": "kg", "points": 8},
               {"rule": "kg", "label": "kg liar", "points": 8, "fill": "liar", "lie": "min"}],
-             [{"rule": "hedge", "eta": 20.0}, {"rule": "random"}, {"rule": "sobol"}]]
+             [{"rule": "hedge", "eta": 20.0}, {"rule": "random"}, {"rule": "sobol"}, {"rule": "gp-ucb"}]]
 
 
 def _fits(policy, batch):
