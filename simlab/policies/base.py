@@ -124,6 +124,20 @@ class Policy(WithOptions):
         campaign at the end of the round (inside ``post.fantasies()``).
         """
 
+    def hold_block(self, st: Stack, U) -> None:
+        """:meth:`hold` for a block of replicates in lockstep: each replicate's pending trial, U (B, d).
+
+        The default holds what :meth:`_held_values` says each pending trial returned (nothing for
+        non-adaptive rules). Undone at the end of the round, inside ``st.fantasies()``.
+        """
+        values = self._held_values(st, U)
+        if values is not None:
+            Stack.add(st, U, values)    # Stack's own add (B rows): a Posterior's takes one (d,) input
+
+    def _held_values(self, st: Stack, U) -> np.ndarray | None:
+        """What each replicate's pending trial at U (B, d) is taken to have returned, (B,); None: nothing held."""
+        return None
+
     def release(self) -> None:
         """The round's results are in: forget pending trials."""
 
@@ -278,20 +292,32 @@ class Acquisition(Policy):
 
     # ------------------------------------------------------------------ rounds of trials
     def hold(self, post, u):
+        if self.fill != "penalize":      # believer, liar, samples: the block code on a block of one
+            self.hold_block(post, np.asarray(u, dtype=float)[None])
+            return
+        if self._held == 0:
+            self._penalty_state(post)
+        self._held += 1
+        mu, sd = post.moments(np.atleast_2d(u))
+        self._pending.append((np.asarray(u, dtype=float), float(mu[0]), float(self._floor(post, sd)[0])))
+
+    def _held_values(self, st, U):
+        """Believer: each replicate's posterior mean at its pending input (from the stacked moments, as
+        the choice reads them). Liar: a constant per replicate, the ``lie`` of that replicate's real
+        observations, fixed at the round's first hold (the prior mean before any observation).
+        Samples: nothing (every choice draws a fresh sample). Penalize keeps a list per campaign
+        instead (:meth:`hold`; such campaigns run one at a time)."""
         first = self._held == 0
         self._held += 1
         if self.fill == "believer":
-            post.add(u, float(post.moments(np.atleast_2d(u))[0][0]))
-        elif self.fill == "liar":
-            if first:  # the lie comes from real observations, fixed for the round
-                y = post.y
-                self._lie = float({"min": np.min, "mean": np.mean, "max": np.max}[self.lie](y)) if len(y) else post.mean
-            post.add(u, self._lie)
-        elif self.fill == "penalize":
-            if first:
-                self._penalty_state(post)
-            mu, sd = post.moments(np.atleast_2d(u))
-            self._pending.append((np.asarray(u, dtype=float), float(mu[0]), float(self._floor(post, sd)[0])))
+            return st.stacked_moments(np.asarray(U, dtype=float)[:, None, :])[0][:, 0]
+        if self.fill == "liar":
+            if first:  # the lie comes from real observations (no fantasy is held yet), fixed for the round
+                n = st.n
+                reduce = {"min": np.min, "mean": np.mean, "max": np.max}[self.lie]
+                self._lie = reduce(st._y[:, :n], axis=-1) if n else np.full(st.size, st.mean)
+            return self._lie
+        return None
 
     def release(self):
         self._pending, self._held = [], 0

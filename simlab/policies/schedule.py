@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..model.gp import Stack
 from .base import Acquisition, Option, Policy
 from .classic import ConfidenceBound, ExpectedImprovement, ProbabilityOfImprovement
 
@@ -147,9 +148,13 @@ class GPHedge(Policy):
     def choose(self, post, t):
         return self.choose_block(post, t, self.ctx.block())[0]
 
+    def _ready(self, size: int) -> None:
+        """Members and gains for a block of ``size`` campaigns (a block starts them at its first choice or hold)."""
+        if getattr(self, "gains", None) is None or len(self.gains) != size:
+            self._begin(size)
+
     def choose_block(self, st, t, block):
-        if getattr(self, "gains", None) is None or len(self.gains) != st.size:
-            self._begin(st.size)
+        self._ready(st.size)
         if not self._holding:            # first choice of a round: the last round's results are in
             self.collect(st)
             self._n_seen = st.n
@@ -165,11 +170,29 @@ class GPHedge(Policy):
     def hold(self, post, u):
         """A round of several trials: the member that chose the pending trial fills it in its
         own way (by default the kriging believer), so every member sees it before nominating
-        again; a trial the portfolio did not choose (initial design) is held by EI's."""
+        again; a trial the portfolio did not choose (initial design) is held by EI's. The block
+        code on a block of one (:meth:`hold_block`)."""
+        self.hold_block(post, np.asarray(u, dtype=float)[None])
+
+    def hold_block(self, st, U):
+        """:meth:`hold` for a block: each replicate's pending trial is filled by the member that chose it
+        for that replicate (members may differ between replicates), all rows added in one update.
+
+        Each member computes its held values over the whole block and the replicates it chose for
+        take theirs. That is exact because the members fill as kriging believers (their default:
+        the portfolio passes them no ``fill``), whose value at a replicate is its posterior mean
+        there, per slice, whatever the other replicates hold; a fill with per-round state (liar's
+        constant, fixed at the member's first hold) would need that state per replicate.
+        """
+        self._ready(st.size)             # a round's first holds may be initial-design rows
         self._holding = True
-        member = self.members[int(self.picked[0])] if self._chose_last else self.members[0]
+        picked = self.picked if self._chose_last else np.zeros(st.size, dtype=int)
         self._chose_last = False
-        member.hold(post, u)
+        values = np.empty(st.size)
+        for j in np.unique(picked):
+            held = self.members[j]._held_values(st, U)
+            values[picked == j] = held[picked == j]
+        Stack.add(st, U, values)    # Stack's own add (B rows): a Posterior's takes one (d,) input
 
     def release(self):
         self._holding = False

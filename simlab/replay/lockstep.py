@@ -2,8 +2,11 @@
 
 The one-screen loop, for a block of B replicates sharing a policy and a budget::
 
-    for each trial t:
-        choose   xs (B, d)   initial design, or policy.choose_block(stack, t, block)
+    for each round (``[campaign] batch`` trials; the last may be shorter):
+        choose   each trial's xs (B, d): initial design, or policy.choose_block(stack, t, block);
+                 inside stack.fantasies() every pending trial but the round's last is held
+                 (policy.hold_block), then policy.release()
+      for each trial t of the round, in order:
         evaluate f  (B,)     every replicate's own world at its own input
         observe  y  (B,)     the replicate's shared noise draw for trial t
         update   stack.add(xs, y)      one row of every factor, one product per block
@@ -16,9 +19,10 @@ friends), so each campaign's trace has the same bits as :func:`simlab.replay.cam
 gives it alone; ``tests/unit/test_lockstep.py`` compares them.
 
 Campaigns run in lockstep when the rule declares ``lockstep = True`` and every campaign of
-the block stays the same length at every step: one trial per round, no lost trials and no
-belief refits. Other campaigns are replayed one at a time. Spaces with stepped or categorical
-inputs and [candidates] libraries run in lockstep too (a library's rows are every replicate's
+the block stays the same length at every step: no lost trials and no belief refits (rounds of
+several trials hold the same number of pending trials in every replicate). Other campaigns are
+replayed one at a time. Spaces with stepped or categorical inputs and [candidates] libraries
+run in lockstep too (a library's rows are every replicate's
 pool, scored exactly and never polished: ``Block.library``).
 
 Which rules: random, sobol, mean, lcb, gp-ucb, pi, ei (rules of the posterior moments),
@@ -29,13 +33,17 @@ hedge (its members are lockstep rules; each replicate picks a member from its ow
 Every one of them makes its one-campaign choice by running its block code on a block of
 one, and polishes with :func:`~simlab.model.optimize.polish_block`, so the two paths share
 every operation. The snapshot's ``score`` after a choice reads the state kept from it
-(``Acquisition._keep_state``), never a second draw.
+(``Acquisition._keep_state``), never a second draw. In a round, pending trials are held the
+same way: ``Policy.hold_block`` (believer: each replicate's posterior mean at its pending
+input, from the stacked moments; liar: a constant per replicate from its real observations;
+samples: nothing; hedge: each replicate's trial held by the member that chose it), and the
+one-campaign ``hold`` is that code on a block of one.
 
 Still one campaign at a time, and why:
 
-- rounds of several trials (``[campaign] batch`` > 1): pending trials are held as fantasies
-  between choices (``Stack.fantasies`` exists; a block form of each rule's ``hold`` does not
-  yet, and ``fill = "penalize"`` keeps a list of pending inputs per campaign).
+- rounds filled by local penalization (``fill = "penalize"`` with ``[campaign] batch`` > 1): the
+  rule keeps a list of pending inputs and a Lipschitz state per campaign and scores through
+  the one-campaign ``_penalized`` (``fits_lockstep`` reads the policy's ``fill``).
 - lost trials (``[world] lost`` > 0): the belief skips a row, so replicates of one block would
   hold different numbers of rows; :class:`~simlab.model.gp.Stack` keeps one ``n`` for the
   block (a row count per replicate would lift this).
@@ -63,12 +71,17 @@ __all__ = ["run_block", "fits_lockstep"]
 
 
 def fits_lockstep(policy: Policy, belief: Belief, *, batch: int, lost: float) -> bool:
-    """Whether campaigns of this policy can advance in lockstep."""
-    return policy.lockstep and batch == 1 and belief.refit_every == 0 and lost == 0.0
+    """Whether campaigns of this policy can advance in lockstep.
+
+    Rounds (``batch`` > 1) do, except with ``fill = "penalize"``, whose pending trials and
+    Lipschitz state are kept per campaign (``Acquisition.hold``).
+    """
+    rounds = batch == 1 or getattr(policy, "fill", None) != "penalize"
+    return policy.lockstep and rounds and belief.refit_every == 0 and lost == 0.0
 
 
 def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budget: int, rngs,
-              history: tuple[np.ndarray, np.ndarray] | None = None, snap=None,
+              batch: int = 1, history: tuple[np.ndarray, np.ndarray] | None = None, snap=None,
               library: bool = False, stop=None) -> list[Trace]:
     """Replay one policy on a block of replicates in lockstep.
 
@@ -84,6 +97,9 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
         New trials in each campaign.
     rngs : list of numpy.random.Generator
         Each replicate's own stream for this policy.
+    batch : int
+        Trials per round: every trial of a round is chosen (pending ones held as fantasies,
+        ``Policy.hold_block``) before any result is back, as in ``run_campaign``.
     history : (ndarray (h, d), ndarray (h,)), optional
         Past trials shared by every replicate (first in every trace).
     snap : callable, optional
@@ -104,7 +120,7 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
     H, yH = past_trials(history, d)
     h, n = len(yH), len(yH) + budget
     st = Stack(belief.kernel, belief.mean, belief.noise, pools=np.stack([r.pool for r in reps]),
-               capacity=n + 1)
+               capacity=n + batch)                          # room for a round's fantasies
     block = Block(rngs=list(rngs), sequences=np.stack([r.sequence for r in reps]), horizon=budget,
                   library=reps[0].pool if library else None)
     design = np.stack([r.design for r in reps])
@@ -119,20 +135,40 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
             f[:, i] = worlds(U[:, i])
             st.add(U[:, i], y[:, i])
             rec[:, i] = np.argmin(st.means_at_data(), axis=-1)
-        for t in range(budget):
-            i = h + t
-            U[:, i] = design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block)   # choose
-            if snap is not None:
-                U[:, i] = snap(U[:, i])
-            if library and not all(np.ascontiguousarray(u).tobytes() in rows for u in U[:, i]):
-                raise RuntimeError(f"policy {policy.label!r} chose an input that is not a row of the library")
-            f[:, i] = worlds(U[:, i])                                                              # evaluate
-            y[:, i] = observer.many(f[:, i], shocks[:, t], lost[:, t])                            # observe
-            st.add(U[:, i], y[:, i])                                                               # update
-            rec[:, i] = np.argmin(st.means_at_data(), axis=-1)                                     # record
-            if log is not None:
-                log.after(st, i)
+        for start in range(0, budget, batch):                     # one round of up to `batch` trials
+            ts = range(start, min(start + batch, budget))
+            chosen = _fill_round(policy, st, ts, design, block, snap)                              # choose
+            for t, Ut in zip(ts, chosen):
+                i = h + t
+                U[:, i] = Ut
+                if library and not all(np.ascontiguousarray(u).tobytes() in rows for u in U[:, i]):
+                    raise RuntimeError(f"policy {policy.label!r} chose an input that is not a row of the library")
+                f[:, i] = worlds(U[:, i])                                                          # evaluate
+                y[:, i] = observer.many(f[:, i], shocks[:, t], lost[:, t])                        # observe
+                st.add(U[:, i], y[:, i])                                                           # update
+                rec[:, i] = np.argmin(st.means_at_data(), axis=-1)                                 # record
+                if log is not None:
+                    log.after(st, i)
     finally:
         st.release()
     return [Trace(U=U[b], y=y[b], f=f[b], rec=rec[b], stats=log.columns(b) if log is not None else {})
             for b in range(B)]
+
+
+def _fill_round(policy: Policy, st: Stack, ts: range, design: np.ndarray, block: Block, snap=None) -> list[np.ndarray]:
+    """Choose every trial of a round for the whole block, (B, d) each, before any result is back
+    (``campaign._fill_round`` for a block: the same order of choices, holds and release)."""
+    def pick(t):
+        U = np.asarray(design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block), dtype=float)
+        return U if snap is None else snap(U)
+
+    if len(ts) == 1:                                       # nothing pending: no fantasies to undo
+        return [pick(ts[0])]
+    chosen = []
+    with st.fantasies():
+        for k, t in enumerate(ts):
+            chosen.append(pick(t))
+            if k + 1 < len(ts):
+                policy.hold_block(st, chosen[-1])          # pending: believer, liar, the member that chose...
+    policy.release()
+    return chosen

@@ -110,7 +110,7 @@ def _campaigns(study: Study, reps: list[Replicate], *, lockstep: bool = True):
             if together:
                 rngs = [stream(study.seed, rep.index, "policy", spec.label) for rep in reps]
                 traces = run_block(make_policy(spec), belief, reps, observer=observer, budget=b, rngs=rngs,
-                                   history=history, snap=_snap(study), library=study.space.library is not None,
+                                   batch=c.batch, history=history, snap=_snap(study), library=study.space.library is not None,
                                    stop=_stop_start(recorder, reps, spec.label))
             else:
                 traces = [_alone(study, spec, belief, observer, history, rep, b, _stop_start(recorder, [rep], spec.label),
