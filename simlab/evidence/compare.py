@@ -6,7 +6,8 @@ from itertools import combinations
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+
+from ..lazy import stats
 
 from .frame import (check_budgets, check_probability, check_target, check_traces, regret_at)
 from .intervals import exact_bounds, median_rows

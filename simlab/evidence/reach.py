@@ -8,7 +8,8 @@ import warnings
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+
+from ..lazy import stats
 
 from .frame import (SHARE_TOLERANCE, check_budgets, check_method, check_probability, check_target, check_traces,
                     horizons)
