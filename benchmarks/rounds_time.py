@@ -20,23 +20,13 @@ import os
 import statistics
 import subprocess
 import sys
-import tarfile
 import tempfile
 import time
 from pathlib import Path
 
+from _revision import export   # benchmarks/ is first on sys.path when a script here runs
+
 ROOT = Path(__file__).resolve().parents[1]
-
-
-def _export(rev: str, into: Path) -> Path:
-    """The simlab package of git revision ``rev`` under ``into`` (nothing else of the checkout)."""
-    into.mkdir(parents=True, exist_ok=True)
-    archive = into / "src.tar"
-    with open(archive, "wb") as out:
-        subprocess.run(["git", "-C", str(ROOT), "archive", rev, "simlab"], stdout=out, check=True)
-    with tarfile.open(archive) as tar:
-        tar.extractall(into, filter="data")
-    return into
 
 
 def _study(folder: Path, batch: int, replicates: int) -> Path:
@@ -69,7 +59,7 @@ def main() -> None:
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        trees = {"before": _export(args.before, tmp / "before"), "now": ROOT}
+        trees = {"before": export(args.before, tmp / "before"), "now": ROOT}
         study = _study(tmp, args.batch, args.replicates)
         times = {side: [] for side in trees}
         for _ in range(args.repeats):

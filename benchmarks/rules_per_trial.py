@@ -21,9 +21,10 @@ import json
 import os
 import subprocess
 import sys
-import tarfile
 import tempfile
 from pathlib import Path
+
+from _revision import export   # benchmarks/ is first on sys.path when a script here runs
 
 RULES = ("ei", "pi", "lcb", "mean", "random", "sobol", "gp-ucb", "thompson", "mes", "pbest", "kg", "hedge")
 
@@ -54,17 +55,6 @@ print(json.dumps({"rule": rule, "per_trial": wall / (R * (horizon - initial))}))
 """
 
 
-def _export(rev: str, into: Path) -> Path:
-    """The simlab package of git revision ``rev`` under ``into`` (nothing else of the checkout)."""
-    root = Path(__file__).resolve().parents[1]
-    archive = into / "src.tar"
-    with open(archive, "wb") as out:
-        subprocess.run(["git", "-C", str(root), "archive", rev, "simlab"], stdout=out, check=True)
-    with tarfile.open(archive) as tar:
-        tar.extractall(into, filter="data")
-    return into
-
-
 def _measure(src: Path, rule: str, args) -> float:
     env = dict(os.environ, PYTHONPATH=str(src), OMP_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1")
     out = subprocess.run([sys.executable, "-c", _WORKER, rule, str(args.replicates), "5", str(args.horizon)],
@@ -87,7 +77,7 @@ def main():
     with tempfile.TemporaryDirectory() as tmp:
         trees = {"now": now}
         if args.before:
-            trees = {"before": _export(args.before, Path(tmp)), **trees}
+            trees = {"before": export(args.before, Path(tmp)), **trees}
         times: dict[str, dict[str, list[float]]] = {k: {r: [] for r in rules} for k in trees}
         print(f"time per trial (ms), block of {args.replicates}, 2-D, pool 2048, 5 + {args.horizon - 5} trials, "
               f"median of {args.repeats}; x EI = ratio to EI's time in the same column", flush=True)

@@ -12,7 +12,7 @@ from ..model.feasible import FeasibleBelief
 from ..model.gp import Posterior
 from ..policies import Context, Policy
 from ..worlds.draws import World
-from .trace import Trace, allocate, past_trials
+from .trace import Trace, allocate, fill_round, past_trials
 
 __all__ = ["run_campaign"]
 
@@ -135,19 +135,9 @@ def _refit(post: Posterior, rng: np.random.Generator) -> None:
 
 
 def _fill_round(policy: Policy, post: Posterior, ts: range, design: np.ndarray, snap=None) -> list[np.ndarray]:
-    """Choose every trial of a round before any of its results is back."""
+    """Choose every trial of a round before any of its results is back (:func:`~.trace.fill_round`)."""
     def pick(t):
         u = np.asarray(design[t] if t < len(design) else policy.choose(post, t), dtype=float)
         return u if snap is None else snap(u)
 
-    if len(ts) == 1:                                       # nothing pending: no fantasies to undo
-        return [pick(ts[0])]
-    chosen = []
-    with post.fantasies():
-        for k, t in enumerate(ts):
-            u = pick(t)
-            chosen.append(u)
-            if k + 1 < len(ts):
-                policy.hold(post, u)                       # pending: believer, liar, penalizer...
-    policy.release()
-    return chosen
+    return fill_round(policy, post, ts, pick, policy.hold)

@@ -65,7 +65,7 @@ from ..worlds.noise import Observer
 from ..policies import Policy
 from ..policies.base import Block
 from ..worlds.draws import WorldBlock
-from .trace import Trace, allocate, past_trials
+from .trace import Trace, allocate, fill_round, past_trials
 
 __all__ = ["run_block", "fits_lockstep"]
 
@@ -157,18 +157,9 @@ def run_block(policy: Policy, belief: Belief, reps, *, observer: Observer, budge
 
 def _fill_round(policy: Policy, st: Stack, ts: range, design: np.ndarray, block: Block, snap=None) -> list[np.ndarray]:
     """Choose every trial of a round for the whole block, (B, d) each, before any result is back
-    (``campaign._fill_round`` for a block: the same order of choices, holds and release)."""
+    (:func:`~.trace.fill_round`, as ``campaign._fill_round``: the same order of choices, holds and release)."""
     def pick(t):
         U = np.asarray(design[:, t] if t < design.shape[1] else policy.choose_block(st, t, block), dtype=float)
         return U if snap is None else snap(U)
 
-    if len(ts) == 1:                                       # nothing pending: no fantasies to undo
-        return [pick(ts[0])]
-    chosen = []
-    with st.fantasies():
-        for k, t in enumerate(ts):
-            chosen.append(pick(t))
-            if k + 1 < len(ts):
-                policy.hold_block(st, chosen[-1])          # pending: believer, liar, the member that chose...
-    policy.release()
-    return chosen
+    return fill_round(policy, st, ts, pick, policy.hold_block)

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["Trace", "past_trials", "allocate"]
+__all__ = ["Trace", "past_trials", "allocate", "fill_round"]
 
 
 @dataclass
@@ -54,3 +54,20 @@ def allocate(n: int, d: int, *block: int) -> tuple[np.ndarray, np.ndarray, np.nd
     """Uninitialised U, y, f, rec for n rows of d inputs (with leading axes `block`, e.g. (B,))."""
     return (np.empty((*block, n, d)), np.empty((*block, n)), np.empty((*block, n)),
             np.empty((*block, n), dtype=int))
+
+
+def fill_round(policy, belief, ts: range, pick, hold) -> list[np.ndarray]:
+    """Choose every trial of a round before any of its results is back, in both loops: ``pick(t)``
+    each trial in turn, ``hold(belief, chosen)`` each pending one but the last (believer, liar,
+    penalizer, the member that chose...) inside ``belief.fantasies()``, then ``policy.release()``.
+    A round of one holds nothing and has no fantasies to undo."""
+    if len(ts) == 1:
+        return [pick(ts[0])]
+    chosen = []
+    with belief.fantasies():
+        for k, t in enumerate(ts):
+            chosen.append(pick(t))
+            if k + 1 < len(ts):
+                hold(belief, chosen[-1])
+    policy.release()
+    return chosen
