@@ -72,72 +72,70 @@ class PathwiseDraws:
         self._kept = None                                                # draw_kept's prior draws (W, (Phi W)^T)
 
     def draw_in(self, st, b: int, rng, n_samples: int, rows, *, single: bool = False):
-        """:meth:`draw` for replicate b of a stack (its pool, data and factors), with the
-        draws at the evaluated inputs too: ``(G, GX)``.
+        """``n_samples`` posterior draws minus the prior mean over pool ``rows`` of replicate b of a
+        stack (its pool, data and factors), and the same draws at its evaluated inputs: ``(G, GX)``
+        with G of shape (S, len(rows)), float32, one row per draw, and GX (n, S), float64.
 
         Solves go through the stack's kept inverse factor (``L^-T L^-1``) rather than a
         Cholesky solve, so replicate b gets the same bits whether the stack holds it alone
-        or beside others (every product is on b's own slices). ``single``: the correction is
-        rounded to float32 before it is added to the float32 prior draws (adding float64 to
-        float32 in place costs as much as the product itself; the values differ by float32
-        rounding, about 1e-7 of the prior sd). MES keeps the float64 addition.
+        or beside others (every product is on b's own slices). The draws come out draw by draw
+        (``W^T Phi^T``), as :meth:`draw_kept` keeps them, so both condition through one
+        :meth:`_condition`. ``single``: the correction is rounded to float32 before it is
+        added to the float32 prior draws (adding float64 to float32 in place costs as much as
+        the product itself; the values differ by float32 rounding, about 1e-7 of the prior sd).
+        MES keeps the float64 addition.
         """
         if st.version != self._version:          # the belief was refitted: new kernel, new features
             self._build(st, rng)
-        all_rows = len(rows) == len(self.pool)
         W = rng.standard_normal((self._basis.shape[1], int(n_samples)))
-        Phi = self._basis if all_rows else self._basis[rows]
-        return self._condition(st, b, rng, Phi @ W.astype(np.float32), W, rows, single=single)
+        return self._condition(st, b, rng, self._prior(W, rows), W, rows, single=single, fresh=True)
 
     def draw_kept(self, st, b: int, rng, cols: slice, rows, *, total: int):
-        """:meth:`draw_in` (float32 correction) for columns ``cols`` of ``total`` prior draws made
+        """:meth:`draw_in` (float32 correction) for draws ``cols`` of ``total`` prior draws made
         once, at the first call, and kept: each call conditions them on the data it is given,
         with fresh noise (Matheron's rule), so every call's draws are independent samples of
         the belief of that moment, while calls share their prior parts (common random numbers,
         as the stopping record uses them: one campaign's trials are then judged on the same
         prior functions). The product ``Phi W`` (``2 m F total`` flops) is paid once per
-        campaign instead of at every call.
-
-        Returns ``(G, GX)`` with G of shape (S, len(rows)), one row per draw (the transpose of
-        :meth:`draw_in`'s: the kept draws are stored draw by draw, so a batch of them is one
-        contiguous block), and GX of shape (n, S).
+        campaign instead of at every call. Returns ``(G, GX)`` as :meth:`draw_in`: G (S, len(rows)),
+        one row per draw (a batch of kept draws is one contiguous block), GX (n, S).
         """
         if st.version != self._version:          # the belief was refitted: new kernel, new features
             self._build(st, rng)
         if self._kept is None:
             W = rng.standard_normal((self._basis.shape[1], int(total)))
-            self._kept = (W, np.ascontiguousarray((self._basis @ W.astype(np.float32)).T))
+            self._kept = (W, self._prior(W, np.arange(len(self.pool))))
         W, GT = self._kept
-        all_rows = len(rows) == len(self.pool)
-        n = st.n
-        if n == 0:
-            return (GT[cols].copy() if all_rows else GT[cols][:, rows]), np.empty((0, cols.stop - cols.start))
-        X = st._X[b, :n]
-        w, a, GX = self._at_data(st, b, rng, self._data_basis(X) @ W[:, cols])
-        if 2 * len(rows) >= len(self.pool):
-            V = st._V[b, :n]
-            corr = w.T @ V if all_rows else w.T @ V[:, rows]                   # cached cross term, O(n m S)
-        else:
-            corr = a.T @ st.kernel(X, self.pool[rows])                         # few rows: O(n |rows| S)
-        G = corr.astype(np.float32)
-        G += GT[cols] if all_rows else GT[cols][:, rows]
-        return G, GX
+        G = GT[cols] if len(rows) == len(self.pool) else GT[cols][:, rows]
+        return self._condition(st, b, rng, G, W[:, cols], rows, single=True, fresh=False)
 
-    def _condition(self, st, b, rng, G, W, rows, *, single: bool):
-        """Prior draws G (rows, S) of weights W (2F, S), conditioned on replicate b's data: ``(G, GX)``."""
+    def _prior(self, W, rows) -> np.ndarray:
+        """Prior draws of weights W (2F, S) over pool rows, float32: (S, len(rows))."""
+        Phi = self._basis if len(rows) == len(self.pool) else self._basis[rows]   # whole rows: a fast gather
+        return W.T.astype(np.float32) @ Phi.T          # BLAS reads the transpose in place
+
+    def _condition(self, st, b, rng, G, W, rows, *, single: bool, fresh: bool):
+        """Prior draws G (S, rows) of weights W (2F, S), conditioned on replicate b's data: ``(G, GX)``.
+        ``fresh``: G is this call's own array (else it is kept and must not change)."""
         n = st.n
         if n == 0:
             self._last = (W, np.empty((0, W.shape[1])))
-            return G, np.empty((0, W.shape[1]))
+            return (G if fresh else G.copy()), np.empty((0, W.shape[1]))
         X = st._X[b, :n]
         w, a, GX = self._at_data(st, b, rng, self._data_basis(X) @ W)
         self._last = (W, a)                                                    # for path()
         if 2 * len(rows) >= len(self.pool):
             V = st._V[b, :n]
-            corr = V.T @ w if len(rows) == len(self.pool) else V[:, rows].T @ w   # cached cross term, O(n m S)
+            corr = w.T @ V if len(rows) == len(self.pool) else w.T @ V[:, rows]   # cached cross term, O(n m S)
         else:
-            corr = st.kernel(self.pool[rows], X) @ a                           # few rows: O(n |rows| S)
-        G += corr.astype(np.float32) if single else corr
+            corr = a.T @ st.kernel(X, self.pool[rows])                         # few rows: O(n |rows| S)
+        if single:                  # float32 sums commute: the same bits as adding to G in place
+            out = corr.astype(np.float32)
+            out += G
+            return out, GX
+        if not fresh:
+            G = G.copy()
+        G += corr
         return G, GX
 
     def _at_data(self, st, b, rng, fX):
@@ -255,7 +253,7 @@ class ProbabilityOfMinimum(Acquisition):
         float32 (``draw_in(single=True)``): only the argmin is read."""
         rows = _plausible(mu, sd, st.n)
         G, _ = self._draws[b].draw_in(st, b, rng, self.samples, rows, single=True)
-        return rows[np.argmin(G, axis=0)]
+        return rows[np.argmin(G, axis=1)]
 
     def probabilities(self, post) -> np.ndarray:
         """Share of the draws whose minimum over the pool lies at each pool point: shape (m,)."""
@@ -578,7 +576,7 @@ class MaxValueEntropySearch(Acquisition):
         """Minima of ``samples`` pathwise draws over replicate b's plausible pool points and data."""
         rows = _plausible(mu, sd, st.n)
         G, GX = self._draws[b].draw_in(st, b, rng, self.samples, rows)
-        low = G.min(0).astype(float)
+        low = G.min(1).astype(float)
         if st.n:
             low = np.minimum(low, GX.min(0))
         return st.mean + low
