@@ -389,3 +389,38 @@ def test_negative_control_a_wrong_hold_in_the_block_is_seen(monkeypatch, wrong):
     monkeypatch.setattr(Policy, "hold_block", changed)
     with pytest.raises(AssertionError):
         pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=3), ref, check_exact=True)
+
+
+# ---------------------------------------------------------------- one process: small chunks, larger blocks
+def test_one_process_joins_small_chunks_into_blocks_without_changing_a_chunk(monkeypatch):
+    """With one job the default plan's chunks (3 replicates each here) are computed in blocks of at
+    least 20 replicates, then handed back chunk by chunk: every chunk's traces and worlds rows are the
+    ones it gets as its own block (chunk=3), bit for bit, and the chunks stay the plan's."""
+    import simlab.replay.runner as runner
+
+    s = study_with(SAMPLING, "test", study={**SAMPLING["study"], "replicates": 24},
+                   policy=[{"rule": "ei"}, {"rule": "thompson", "features": 32}], campaign={"initial": 3, "budgets": [5]})
+    plan = runner.chunk_plan(s)
+    assert [len(c) for c in plan] == [3] * 8
+    sizes, real = [], runner._replay_chunk
+
+    def counted(study, replicates, lockstep=True):
+        sizes.append(len(replicates))
+        return real(study, replicates, lockstep)
+
+    monkeypatch.setattr(runner, "_replay_chunk", counted)
+    joined = dict(runner.replay_chunks(s))
+    assert sizes == [21, 3]                                   # blocks of at least 20, then the rest
+    sizes.clear()
+    alone = dict(runner.replay_chunks(s, chunk=3))            # a chunk size asked for is the block
+    assert sizes == [3] * 8
+    assert sorted(joined) == sorted(alone) == list(range(8))
+    for i, reps in enumerate(plan):
+        assert sorted(joined[i]["replicate"].unique()) == reps
+        pd.testing.assert_frame_equal(joined[i], alone[i], check_exact=True)
+        pd.testing.assert_frame_equal(joined[i].attrs["worlds"], alone[i].attrs["worlds"], check_exact=True)
+    # negative control: handing back a chunk the whole block's worlds rows is seen by the same comparison
+    wrong = joined[0].attrs["worlds"]
+    bigger = pd.concat([wrong, joined[1].attrs["worlds"]], ignore_index=True)
+    with pytest.raises(AssertionError):
+        pd.testing.assert_frame_equal(bigger, alone[0].attrs["worlds"], check_exact=True)
