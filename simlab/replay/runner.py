@@ -265,7 +265,7 @@ def chunk_plan(study: Study, chunk: int | None = None) -> list[list[int]]:
     workers), so a resumed run cuts the work exactly as the interrupted one did.
 
     A chunk is also a lockstep block (one process joins small chunks into larger blocks:
-    :func:`_serial_groups`). The default, an eighth of the replicates but at most
+    :func:`_joined`). The default, an eighth of the replicates but at most
     64, keeps at least 8 tasks for workers to share and blocks of up to 64 in large studies
     (past that, blocks stop paying: benchmarks/bench_vs_sklearn.py), fewer when a block's
     pool cross term (replicates x trials x pool points) would pass 128 MiB.
@@ -284,21 +284,23 @@ def _largest_block(study: Study) -> int:
     return max(1, min(64, (128 << 20) // per_replicate))
 
 
-# Replicates a lockstep block should hold at least when one process replays chunk after chunk: below
+# Replicates a lockstep block should hold at least (where every worker still gets a block): below
 # this the per-trial Python of a block (the polish's ~100 small array operations an iteration) is paid
 # by few campaigns. benchmarks/studies/ei-2d.toml (40 replicates, 30 trials of EI, one job): 1.66 s in
 # blocks of 5 (the plan's eighth), 1.26 s in 16, 1.16 s in 20, 1.07 s in 40.
-_SERIAL_BLOCK = 20
+_LEAST_BLOCK = 20
 
 
-def _serial_groups(study: Study, tasks):
-    """Consecutive chunks joined into lockstep blocks of at least ``_SERIAL_BLOCK`` replicates (at most
-    :func:`_largest_block`), for one process replaying them in turn. The chunks stay the plan's (what a
-    resumed run finds on disk); only the blocks that compute them grow, and a campaign's traces do not
-    depend on its block."""
+def _joined(study: Study, tasks, workers: int = 1):
+    """Consecutive chunks joined into lockstep blocks of at least ``_LEAST_BLOCK`` replicates (at most
+    :func:`_largest_block`, and small enough to leave every one of ``workers`` processes a block). The
+    chunks stay the plan's (what a resumed run finds on disk); only the blocks that compute them grow,
+    and a campaign's traces do not depend on its block."""
+    total = sum(len(reps) for _, reps in tasks)
+    least = min(_LEAST_BLOCK, -(-total // max(workers, 1)))
     cap, groups, size = _largest_block(study), [], 0
     for task in tasks:
-        if groups and size < _SERIAL_BLOCK and size + len(task[1]) <= cap:
+        if groups and size < least and size + len(task[1]) <= cap:
             groups[-1].append(task)
             size += len(task[1])
         else:
@@ -345,18 +347,22 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     tasks = [(i, reps) for i, reps in enumerate(chunk_plan(study, chunk)) if i not in skip]
     # never more workers than chunks to share: each worker is a process with its own memory
     workers = min(_workers(jobs), max(len(tasks), 1))
-    if cluster is None and workers == 1:
-        # one process: the default plan's chunks are computed in blocks of at least _SERIAL_BLOCK replicates
-        # (a chunk size asked for is kept as the block, as the tests of block independence need)
-        groups = _serial_groups(study, tasks) if chunk is None and lockstep else [[task] for task in tasks]
+    # the default plan's chunks are computed in blocks of at least _LEAST_BLOCK replicates where that still
+    # leaves every local worker a block (a chunk size asked for is kept as the block, as the tests of block
+    # independence need; a cluster's workers are not counted here, so it gets the plan's chunks)
+    join = chunk is None and lockstep and cluster is None
+    groups = _joined(study, tasks, workers) if join else [[task] for task in tasks]
+    workers = min(workers, max(len(groups), 1))
+    if cluster is None and workers == 1:        # here, in this process (Ctrl-C stays this process's)
         for group in groups:
             frame = _replay_chunk(study, [r for _, reps in group for r in reps], lockstep)
             yield from _split(frame, group)
         return
-    calls = (delayed(_indexed)(study, i, reps, lockstep) for i, reps in tasks)
+    calls = (delayed(_indexed)(study, group, lockstep) for group in groups)
     if cluster is None:
         try:
-            yield from Parallel(n_jobs=workers, return_as="generator_unordered")(calls)
+            for parts in Parallel(n_jobs=workers, return_as="generator_unordered")(calls):
+                yield from parts
         except BaseException:
             _stop_local_workers()   # Ctrl-C, SIGTERM or an error: no worker outlives the run
             raise
@@ -365,7 +371,8 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     try:
         with parallel_config(backend="dask", wait_for_workers_timeout=60):
             n = max(1, sum(client.nthreads().values()))
-            yield from Parallel(n_jobs=n, return_as="generator_unordered")(calls)
+            for parts in Parallel(n_jobs=n, return_as="generator_unordered")(calls):
+                yield from parts
     finally:
         if isinstance(cluster, str):
             client.close()
@@ -400,14 +407,17 @@ def connect(cluster: str, *, timeout: float = 10.0):
                          "`dask scheduler` or check the address") from None
 
 
-def _indexed(study: Study, i: int, reps: list[int], lockstep: bool = True):
+def _indexed(study: Study, group, lockstep: bool = True):
+    """A worker's task: the chunks ``group`` (``[(chunk index, replicates), ...]``) as one block, returned
+    chunk by chunk as a list of ``(chunk index, frame)``."""
     import signal
     import threading
     if threading.current_thread() is threading.main_thread():
         # A worker process: Ctrl-C reaches the whole process group, but the parent stops
         # the workers itself; a worker printing its own KeyboardInterrupt is only noise.
         signal.signal(signal.SIGINT, signal.SIG_IGN)
-    return i, _replay_chunk(study, reps, lockstep)
+    frame = _replay_chunk(study, [r for _, reps in group for r in reps], lockstep)
+    return list(_split(frame, group))
 
 
 def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=None,

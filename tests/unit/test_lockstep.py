@@ -391,10 +391,11 @@ def test_negative_control_a_wrong_hold_in_the_block_is_seen(monkeypatch, wrong):
         pd.testing.assert_frame_equal(replay(s, lockstep=True, chunk=3), ref, check_exact=True)
 
 
-# ---------------------------------------------------------------- one process: small chunks, larger blocks
-def test_one_process_joins_small_chunks_into_blocks_without_changing_a_chunk(monkeypatch):
+# ---------------------------------------------------------------- small chunks, larger blocks
+def test_small_chunks_are_joined_into_blocks_without_changing_a_chunk(monkeypatch):
     """With one job the default plan's chunks (3 replicates each here) are computed in blocks of at
-    least 20 replicates, then handed back chunk by chunk: every chunk's traces and worlds rows are the
+    least 20 replicates (with more workers, smaller ones that leave each a block), then handed back
+    chunk by chunk: every chunk's traces and worlds rows are the
     ones it gets as its own block (chunk=3), bit for bit, and the chunks stay the plan's."""
     import simlab.replay.runner as runner
 
@@ -419,6 +420,19 @@ def test_one_process_joins_small_chunks_into_blocks_without_changing_a_chunk(mon
         assert sorted(joined[i]["replicate"].unique()) == reps
         pd.testing.assert_frame_equal(joined[i], alone[i], check_exact=True)
         pd.testing.assert_frame_equal(joined[i].attrs["worlds"], alone[i].attrs["worlds"], check_exact=True)
+    # two workers get a block of 12 each (the joined blocks travel to the workers and come back chunk by chunk)
+    two = dict(runner.replay_chunks(s, jobs=2))
+    assert sorted(two) == list(range(8))
+    for i in range(8):
+        pd.testing.assert_frame_equal(two[i], alone[i], check_exact=True)
+        pd.testing.assert_frame_equal(two[i].attrs["worlds"], alone[i].attrs["worlds"], check_exact=True)
+    # with two workers each gets a block: 40 replicates in chunks of 5 become two blocks of 20
+    groups = runner._joined(s, [(i, reps) for i, reps in enumerate(plan)], 2)
+    assert [sum(len(r) for _, r in g) for g in groups] == [12, 12]     # 24 replicates: at least 12 a worker
+    forty = study_with(SAMPLING, "test", study={**SAMPLING["study"], "replicates": 40}, policy=[{"rule": "ei"}])
+    tasks = list(enumerate(runner.chunk_plan(forty)))
+    assert [sum(len(r) for _, r in g) for g in runner._joined(forty, tasks, 2)] == [20, 20]
+    assert [sum(len(r) for _, r in g) for g in runner._joined(forty, tasks, 8)] == [5] * 8
     # negative control: handing back a chunk the whole block's worlds rows is seen by the same comparison
     wrong = joined[0].attrs["worlds"]
     bigger = pd.concat([wrong, joined[1].attrs["worlds"]], ignore_index=True)
