@@ -177,9 +177,10 @@ def _check(args) -> int:
         from .replay.estimate import measure
         est = measure(study)
         workers = args.jobs if args.jobs > 0 else _cores()
+        block = f" and {est.per_block:.1f} s per block" if est.per_block else ""
         print(f"# timing: simlab run needs about {duration(est.run(study, args.jobs))} with --jobs {workers} "
-              f"({est.per_replicate:.2f} s per replicate, timed on the first {est.timed} with their world optima; "
-              f"{est.report:.1f} s for the report; {est.startup:.1f} s to start)")
+              f"({est.per_replicate:.2f} s per replicate{block}, timed on the first {est.timed} with their world "
+              f"optima; {est.report_time(args.jobs):.1f} s for the report; {est.startup:.1f} s to start)")
         sw = study.sweep
         cells = len(sw.lengthscale) * len(sw.amplitude)
         print(f"# timing: simlab sweep ({cells} cells x {sw.replicates} replicates) needs about "

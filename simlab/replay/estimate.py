@@ -22,16 +22,20 @@ class Estimate:
     Attributes
     ----------
     per_replicate : float
-        Seconds per replicate of the first chunk, replayed as a worker replays it: world,
-        world optimum, design and every policy's campaigns, as one lockstep block.
+        Seconds per replicate in a lockstep block (world, world optimum, design and every policy's
+        campaigns), fitted with ``per_block`` to two timed blocks (:func:`measure`).
+    per_block : float
+        Seconds a block pays once, whatever its size (0 where the fit was not positive).
     timed : int
         Replicates timed.
     startup : float
         Seconds from the interpreter's start to simlab ready to replay (imports); paid once by
         the command and once more by its worker processes, which start together.
     report : float
-        Seconds to write the decision CSVs, figures and report.html (mostly figures: nearly
-        independent of the number of replicates).
+        Seconds to write the decision CSVs, figures and report.html in one process (mostly
+        figures: nearly independent of the number of replicates).
+    figures : float
+        The figures' part of ``report``, which workers share (:meth:`report_time`).
     others : float
         Other runnable processes sharing the machine's cores while the chunk was timed
         (from the CPU share this process got; 0 on an idle machine). On a shared machine a
@@ -43,10 +47,12 @@ class Estimate:
     startup: float
     report: float
     others: float = 0.0
+    per_block: float = 0.0
+    figures: float = 0.0
 
     def run(self, study: Study, jobs: int) -> float:
         """Wall seconds of ``simlab run STUDY --jobs jobs`` (report included)."""
-        return self.startup + self._replay(study, jobs) + self.report
+        return self.startup + self._replay(study, jobs) + self.report_time(jobs)
 
     def sweep(self, study: Study, jobs: int) -> float:
         """Wall seconds of ``simlab sweep STUDY --jobs jobs``: every cell replays ``[sweep] replicates``
@@ -57,11 +63,21 @@ class Estimate:
         return self.startup + cells * self._replay(cell, jobs, start=False) + self._start_workers(cell, jobs)
 
     def _replay(self, study: Study, jobs: int, *, start: bool = True) -> float:
+        from .runner import _joined
+
         plan = chunk_plan(study)
         workers = min(_workers(jobs), len(plan))
-        costs = [self.per_replicate * len(c) for c in plan]
+        blocks = _joined(study, list(enumerate(plan)), workers)      # what the workers will compute
+        workers = min(workers, len(blocks))
+        costs = [self.per_block + self.per_replicate * sum(len(r) for _, r in block) for block in blocks]
         span = _makespan(costs, workers) * _slowdown(workers, self.others, cores())
         return span + (self._start_workers(study, jobs) if start else 0.0)
+
+    def report_time(self, jobs: int) -> float:
+        """The report: its tables here, its figures shared by the workers (at most one a figure)."""
+        from ..report.outputs import _figure_workers
+
+        return self.report - self.figures + self.figures / max(_figure_workers(jobs), 1)
 
     def _start_workers(self, study: Study, jobs: int) -> float:
         # worker processes start together, each importing simlab: timed for real (first use)
@@ -116,6 +132,17 @@ def _others(cpu: float, wall: float, cores: int) -> float:
     return max(cores / share - 1.0, 0.0) if share < 0.95 else 0.0
 
 
+def _block_fit(sizes: list[int], seconds: list[float]) -> tuple[float, float]:
+    """``(b, a)`` of a block's time ``a + b B`` through two timed blocks of different sizes; the mean per
+    replicate and ``a = 0`` where there is one block or the line is not positive in both."""
+    mean = sum(seconds) / max(sum(sizes), 1)
+    if len(sizes) != 2 or sizes[0] == sizes[1]:
+        return mean, 0.0
+    slope = (seconds[1] - seconds[0]) / (sizes[1] - sizes[0])
+    fixed = seconds[0] - sizes[0] * slope
+    return (slope, fixed) if slope > 0 and fixed > 0 else (mean, 0.0)
+
+
 def process_age() -> float:
     """Seconds since this interpreter started (from Linux's /proc; 0 where there is none)."""
     try:
@@ -128,36 +155,52 @@ def process_age() -> float:
         return 0.0
 
 
-def measure(study: Study, *, replicates: int = 4) -> Estimate:
-    """Time whole chunks (the first ones, as workers replay them) until ``replicates``
-    replicates are timed (a prefix of the first chunk if it is larger), then the report on
-    their traces, in a temporary folder. Costs about that many replicates plus one report.
+def measure(study: Study, *, replicates: int = 6) -> Estimate:
+    """Time the first ``replicates`` replicates as two lockstep blocks, a third of them and then the
+    rest, as workers replay them, and the report on their traces (its tables, then with its
+    figures), in temporary folders.
+
+    Notes
+    -----
+    A block's time is fitted as ``a + b B`` for B replicates: ``b`` the replicates' own work (world,
+    world optimum, design, every policy's campaigns), ``a`` what a block pays once whatever its size
+    (Python around every trial's stacked arithmetic). Two blocks of different sizes give both; the
+    run's blocks (:func:`simlab.replay.runner._joined`: 20-64 replicates where the study has them) then
+    cost ``a + b B`` each. Timing one small block and scaling it by its replicates overstated the
+    demo by 1.7x (47 s for a 28 s run): at 4 replicates a block's ``a`` is most of its time. Where the
+    fit is not positive (timing noise, worlds of unequal cost) the mean per replicate is used.
     """
     import pandas as pd
     import pyarrow.parquet  # noqa: F401  (imported by every run: part of its start-up)
 
     from .. import api  # noqa: F401
+    from ..lazy import optimize, special, stats
     from .runner import _replay_chunk
     startup = process_age()
-    blocks, n = [], 0
-    for chunk in chunk_plan(study):
-        blocks.append(chunk[: replicates - n] if not blocks else chunk)
-        n += len(blocks[-1])
-        if n >= replicates:
-            break
-    frames = []
-    t0, c0 = time.perf_counter(), time.process_time()
+    stats.qmc, special.ndtr, optimize.minimize       # first uses import them: start-up, not replicates
+    order = [r for chunk in chunk_plan(study) for r in chunk][:max(int(replicates), 1)]
+    cut = max(len(order) // 3, 1)
+    blocks = [order[:cut], order[cut:]] if len(order) >= 3 else [order]
+    frames, times = [], []
+    c0, t_all = time.process_time(), time.perf_counter()
     for block in blocks:
+        t0 = time.perf_counter()
         frame = _replay_chunk(study, block)
+        times.append(time.perf_counter() - t0)
         frame.attrs.clear()   # the chunk's worlds rows and warnings; pandas cannot concat frames in attrs
         frames.append(frame)
-    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
-    per = wall / n
+    wall, cpu = time.perf_counter() - t_all, time.process_time() - c0
+    n = len(order)
+    per, fixed = _block_fit([len(b) for b in blocks], times)
     traces = pd.concat(frames, ignore_index=True)
     traces["policy"] = pd.Categorical(traces["policy"], categories=list(study.labels))
     from ..report.outputs import write_outputs
-    t0 = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="simlab-check-") as tmp:
-        write_outputs(tmp, study, traces)
-    report = time.perf_counter() - t0
-    return Estimate(per_replicate=per, timed=n, startup=startup, report=report, others=_others(cpu, wall, cores()))
+        t0 = time.perf_counter()
+        write_outputs(os.path.join(tmp, "tables"), study, traces, figures=False)
+        tables = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        write_outputs(os.path.join(tmp, "all"), study, traces)
+        report = time.perf_counter() - t0
+    return Estimate(per_replicate=per, timed=n, startup=startup, report=report, others=_others(cpu, wall, cores()),
+                    per_block=fixed, figures=max(report - tables, 0.0))

@@ -2,7 +2,7 @@
 
 import pytest
 
-from simlab.replay.estimate import _makespan, _others, _slowdown
+from simlab.replay.estimate import Estimate, _block_fit, _makespan, _others, _slowdown
 
 
 def test_an_idle_machine_gives_each_worker_a_core():
@@ -47,3 +47,30 @@ def test_timing_the_workers_start_leaves_no_worker_behind():
     worker_startup.cache_clear()
     assert worker_startup(2) > 0
     assert _workers_alive(psutil) == []
+
+
+def test_block_fit_separates_a_blocks_fixed_cost_from_its_replicates():
+    # a block of B replicates taking 1.5 + 0.2 B seconds (two points fix a line: exact arithmetic)
+    assert _block_fit([2, 4], [1.9, 2.3]) == pytest.approx((0.2, 1.5))
+    # timing noise that makes the line fall, or its intercept negative: the mean per replicate, no fixed cost
+    assert _block_fit([2, 4], [2.0, 1.8]) == pytest.approx((3.8 / 6, 0.0))
+    assert _block_fit([2, 4], [0.2, 2.0]) == pytest.approx((2.2 / 6, 0.0))
+    assert _block_fit([5], [2.0]) == pytest.approx((0.4, 0.0))
+
+
+def test_replay_estimate_prices_the_blocks_the_run_will_compute(monkeypatch):
+    """40 replicates: the plan's chunks of 5 are computed by one process as two blocks of 20
+    (runner._joined), so the replay costs 2 x (1 + 20 x 0.1) s, not 8 x (1 + 5 x 0.1)."""
+    from studies import study_with
+
+    study = study_with({"study": {"name": "t", "goal": "minimize", "replicates": 40, "seed": 1},
+                        "space": {"a": [0.0, 1.0]}, "world": {"lengthscale": [0.3], "amplitude": 1.0, "noise": 0.1},
+                        "campaign": {"initial": 2, "budgets": [4], "pool": 64}, "target": {"regret": 0.1}},
+                       "t", policy=[{"rule": "ei"}])
+    est = Estimate(per_replicate=0.1, timed=6, startup=0.0, report=2.0, per_block=1.0, figures=1.5)
+    assert est._replay(study, 1) == pytest.approx(6.0)
+    assert est.report_time(1) == pytest.approx(2.0)
+    # negative control: were the chunks not joined, the same estimate prices eight blocks of 5
+    import simlab.replay.runner as runner
+    monkeypatch.setattr(runner, "_joined", lambda study, tasks, workers=1: [[task] for task in tasks])
+    assert est._replay(study, 1) == pytest.approx(8 * (1.0 + 5 * 0.1))
