@@ -70,6 +70,7 @@ def test_replay_estimate_prices_the_blocks_the_run_will_compute(monkeypatch):
     est = Estimate(per_replicate=0.1, timed=6, startup=0.0, report=2.0, per_block=1.0, figures=1.5)
     assert est._replay(study, 1) == pytest.approx(6.0)
     assert est.report_time(1) == pytest.approx(2.0)
+    assert est.report_time(2) == pytest.approx(0.5 + 1.5 * 0.75)     # figures: (1 + 1/2) / 2 of their serial time
     # negative control: were the chunks not joined, the same estimate prices eight blocks of 5
     import simlab.replay.runner as runner
     monkeypatch.setattr(runner, "_joined", lambda study, tasks, workers=1: [[task] for task in tasks])
