@@ -397,3 +397,7 @@ def _plan_refusal(exc, args):
     return FolderBusy(exc.file, exc.field, what, kind=exc.kind)
 
 
+
+
+if __name__ == "__main__":     # `python -m simlab.cli` works as `python -m simlab` does
+    raise SystemExit(main())

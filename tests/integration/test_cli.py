@@ -38,6 +38,19 @@ def test_help_has_examples(tmp_path, command):
     assert "example" in out.stdout or command == []
 
 
+def test_the_cli_module_runs_as_the_package_does(tmp_path):
+    """`python -m simlab.cli` is the same command as `python -m simlab` (it printed nothing before)."""
+    import subprocess
+    import sys
+
+    module = subprocess.run([sys.executable, "-m", "simlab.cli", "--version"], cwd=tmp_path, capture_output=True,
+                            text=True, timeout=60)
+    package = simlab("--version", cwd=tmp_path)
+    assert module.returncode == package.returncode == 0
+    assert module.stdout == package.stdout and module.stdout.startswith("simlab ")
+    assert "Warning" not in module.stderr
+
+
 @pytest.mark.parametrize("text,field", [
     (SMALL.replace("noise = 0.05", "noise = -0.05"), "world.noise"),
     (SMALL.replace("dose = [0.0, 1.0]", "dose = [1.0, 0.0]"), "space.dose"),
