@@ -265,7 +265,7 @@ def _pair_bounds(st, r, md, mu, sd, target) -> tuple[np.ndarray, np.ndarray]:
     var_rec = np.maximum(kvar - rowdot(v, v), 0.0)[:, None]                 # (B, 1)
     mu_rec = md[at, r][:, None]
     # the pool
-    cov = st.kernel.stacked(xr, st.pools)[:, 0, :] - vecmat(v, st._V[:, :n])       # (B, m)
+    cov = _pool_cov(st, r)                                                  # (B, m)
     q_pool = _beaten(mu_rec - target - mu, var_rec + sd * sd - 2.0 * cov, kvar)
     # the evaluated inputs: columns of L^-1 K(X, X), as rows of a contiguous array (last-axis sums)
     Vd = np.ascontiguousarray((L - st._s2()[:, None, None] * Li.transpose(0, 2, 1)))  # rows: (L^-1 K)^T
@@ -275,6 +275,21 @@ def _pair_bounds(st, r, md, mu, sd, target) -> tuple[np.ndarray, np.ndarray]:
     lower = 1.0 - (q_pool.sum(-1) + q_data.sum(-1))
     upper = 1.0 - np.maximum(q_pool.max(-1), q_data.max(-1))
     return np.maximum(lower, 0.0), upper
+
+
+def _pool_cov(st, r) -> np.ndarray:
+    """Posterior covariance of each replicate's evaluated input ``r[b]`` with its pool, (B, m), from the kept
+    factors alone.
+
+    The recommendation is an evaluated input, so ``k(X, x_r) = (L L^T - s2 I) e_r`` and
+    ``v = L^-1 k(X, x_r) = L^T e_r - s2 L^-1 e_r``, while ``k(x_r, pool) = e_r^T L V``; hence
+    ``k(x_r, pool) - v^T V = s2 (L^-1 e_r)^T V``: one row of ``L^-1`` times the cached cross term, with no
+    kernel evaluation over the pool and none of the cancellation of the difference (both terms near the
+    prior variance where the belief knows the recommendation well). ``s2`` is the factor's own diagonal
+    (noise, nugget and any raised jitter: ``Stack._s2``)."""
+    n, at = st.n, np.arange(st.size)
+    Li_r = st._Li[at, :n, r]                                                # column r of L^-1, (B, n)
+    return st._s2()[:, None] * vecmat(Li_r, st._V[:, :n])
 
 
 def _beaten(margin, var, kvar) -> np.ndarray:

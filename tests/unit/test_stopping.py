@@ -12,7 +12,7 @@ from simlab.evidence.stopping import stopping_curves, stopping_table, stopping_t
 from simlab.model.gp import Posterior, Stack
 from simlab.model.kernels import Matern52
 from simlab.replay.runner import replay
-from simlab.stopping.record import RecordPlan, StopRecorder, _largest_ei, _pair_bounds, record_plan
+from simlab.stopping.record import RecordPlan, StopRecorder, _largest_ei, _pair_bounds, _pool_cov, record_plan
 from simlab.study.dump import dump_study
 from simlab.study.spec import StudyError, parse_study
 from studies import study_with
@@ -131,6 +131,31 @@ def test_pairwise_bounds_bracket_the_exact_chance():
     lower, upper = _pair_bounds(post, np.array([post.recommend()]), post.mean_at_data()[None], mu[None],
                                 sd[None], 0.2)
     assert exact > 0.9 and lower[0] > 0.8 and lower[0] - 0.0075 <= exact <= upper[0] + 0.0075
+
+
+@pytest.mark.parametrize("noise", [0.3, 0.0])
+def test_pool_covariance_of_the_recommendation_matches_a_dense_solve(noise):
+    """The pair bounds' Cov(f(x_r), f(pool)) from the kept factors (s2 (L^-1 e_r)^T V) against the posterior
+    covariance k(x_r, P) - k(x_r, X) (K + s2 I)^-1 k(X, P) by numpy.linalg.solve (Rasmussen & Williams 2006,
+    eq. 2.24), per replicate of a stack; noise-free too, where s2 is the nugget alone."""
+    from simlab.model.gp import Stack
+
+    rng = np.random.default_rng(5)
+    k = Matern52([0.2, 0.3], 1.5)
+    pools = rng.random((3, 300, 2))
+    st = Stack(k, 0.0, noise, pools=pools, capacity=20)
+    for _ in range(12):
+        st.add(rng.random((3, 2)), rng.normal(size=3))
+    r = np.array([2, 7, 11])
+    got = _pool_cov(st, r)
+    for b in range(3):
+        X = st._X[b, : st.n]
+        K = k(X) + st._s2()[b] * np.eye(st.n)
+        want = k(X[r[b]][None], pools[b])[0] - k(X[r[b]][None], X)[0] @ np.linalg.solve(K, k(X, pools[b]))
+        np.testing.assert_allclose(got[b], want, rtol=0, atol=1e-11)
+        # negative control: the row of L^-1 without the factor's diagonal s2 misses by far
+        bare = got[b] / st._s2()[b]
+        assert np.max(np.abs(bare - want)) > 1e-3
 
 
 def test_small_gain_is_closed_form_expected_improvement():
