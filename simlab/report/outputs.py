@@ -327,14 +327,8 @@ def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step, e
             written[stem] = write_figure(folder, stem, *_rendered(given, stem))
             step(1)
         return written
-    done = set(early[0]) if early is not None else set()
-    phases = ([early[1]] if early is not None else []) + [None]
-    for running in phases:
-        if running is None:
-            rest = _handout([stem for stem in stems if stem not in done])
-            if not rest:
-                break
-            running = _in_workers(_figure_workers(jobs), given, rest)
+
+    def write_all(running):
         try:
             for stem, png, svg in running:
                 written[stem] = write_figure(folder, stem, png, svg)
@@ -342,6 +336,12 @@ def _figure_files(folder, study, traces, tables, *, success, seed, jobs, step, e
         except BaseException:
             _stop_figure_workers(running)
             raise
+
+    if early is not None:              # drained before the rest are handed out: one hand-out at a time
+        write_all(early[1])
+    rest = _handout([stem for stem in stems if stem not in written])
+    if rest:
+        write_all(_in_workers(_figure_workers(jobs), given, rest))
     return {stem: written[stem] for stem in stems}
 
 
