@@ -309,18 +309,19 @@ def _joined(study: Study, tasks, workers: int = 1):
     return groups
 
 
-def _split(frame: pd.DataFrame, group):
-    """``(chunk index, frame)`` for every chunk of a group replayed as one block, each as
-    :func:`_replay_chunk` would have returned it alone."""
+def _replay_group(study: Study, group, lockstep: bool = True) -> list[tuple[int, pd.DataFrame]]:
+    """The chunks ``group`` (``[(chunk index, replicates), ...]``) replayed as one block, handed back as
+    ``[(chunk index, frame), ...]``, each frame as :func:`_replay_chunk` would have returned the chunk alone."""
+    frame = _replay_chunk(study, [r for _, reps in group for r in reps], lockstep)
     if len(group) == 1:
-        yield group[0][0], frame
-        return
-    worlds = frame.attrs["worlds"]
+        return [(group[0][0], frame)]
+    worlds, parts = frame.attrs["worlds"], []
     for i, reps in group:
         part = frame[frame["replicate"].isin(reps)].reset_index(drop=True)
         part.attrs = {"warnings": frame.attrs["warnings"],
                       "worlds": worlds[worlds["replicate"].isin(reps)].reset_index(drop=True)}
-        yield i, part
+        parts.append((i, part))
+    return parts
 
 
 def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip=frozenset(),
@@ -355,8 +356,7 @@ def replay_chunks(study: Study, *, jobs: int = 1, chunk: int | None = None, skip
     workers = min(workers, max(len(groups), 1))
     if cluster is None and workers == 1:        # here, in this process (Ctrl-C stays this process's)
         for group in groups:
-            frame = _replay_chunk(study, [r for _, reps in group for r in reps], lockstep)
-            yield from _split(frame, group)
+            yield from _replay_group(study, group, lockstep)
         return
     calls = (delayed(_indexed)(study, group, lockstep) for group in groups)
     if cluster is None:
@@ -408,16 +408,14 @@ def connect(cluster: str, *, timeout: float = 10.0):
 
 
 def _indexed(study: Study, group, lockstep: bool = True):
-    """A worker's task: the chunks ``group`` (``[(chunk index, replicates), ...]``) as one block, returned
-    chunk by chunk as a list of ``(chunk index, frame)``."""
+    """A worker's task: :func:`_replay_group`."""
     import signal
     import threading
     if threading.current_thread() is threading.main_thread():
         # A worker process: Ctrl-C reaches the whole process group, but the parent stops
         # the workers itself; a worker printing its own KeyboardInterrupt is only noise.
         signal.signal(signal.SIGINT, signal.SIG_IGN)
-    frame = _replay_chunk(study, [r for _, reps in group for r in reps], lockstep)
-    return list(_split(frame, group))
+    return _replay_group(study, group, lockstep)
 
 
 def replay(study: Study, *, jobs: int = 1, chunk: int | None = None, progress=None,
