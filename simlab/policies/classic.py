@@ -324,9 +324,7 @@ class ThompsonSampling(Acquisition):
         for b, (sample, rng) in enumerate(zip(self._samples, rngs)):
             sample.redraw(rng)
             eps[b] = np.sqrt(s2[b]) * rng.standard_normal(n)
-        omega = np.stack([s.omega for s in self._samples])
-        amp, phase = (np.stack(a) for a in zip(*(s.polar() for s in self._samples)))
-        scale = np.array([[s.scale] for s in self._samples])
+        omega, amp, phase, scale = stacked_parts(self._samples)
         if n:
             X = st._X[:, :n]
             r = st._y[:, :n] - feature_values(omega, amp, phase, scale, st.mean, X) - eps
@@ -455,6 +453,14 @@ class ThompsonSampling(Acquisition):
 
 
 # ------------------------------------------------------------------- stacked posterior samples
+def stacked_parts(samples):
+    """A block's random-feature samples (one :class:`~simlab.worlds.draws.FeatureSample` per replicate)
+    stacked in amplitude-phase form: ``(omega (B, F, d), amp (B, F), phase (B, F), scale (B, 1))``."""
+    omega = np.stack([s.omega for s in samples])
+    amp, phase = (np.stack(a) for a in zip(*(s.polar() for s in samples)))
+    return omega, amp, phase, np.array([[s.scale] for s in samples])
+
+
 def stacked_prior(mean, omega, amp, phase, scale):
     """``prior(U) -> (g, dg)`` of a block of random-feature prior samples in amplitude-phase form
     (omega (B, F, d), amp and phase (B, F), scale (B, 1)) at U (B, q, d): values (B, q) and

@@ -299,7 +299,7 @@ class ProbabilityOfMinimum(Acquisition):
     def _voters(self, st, voter):
         """``fg(U)`` of each replicate's voting draw (number ``voter[b]`` of its last ``draw_in``), stacked
         for :func:`~simlab.model.optimize.polish_block`: the same Matheron sample as Thompson sampling's."""
-        from .classic import posterior_sample, samples_prior, stacked_prior
+        from .classic import posterior_sample, samples_prior, stacked_parts, stacked_prior
 
         samples, betas = [], []
         for d, s in zip(self._draws, voter):
@@ -310,9 +310,7 @@ class ProbabilityOfMinimum(Acquisition):
         beta = np.stack(betas)                                  # (B, n)
         if isinstance(samples[0], MixedFeatureSample):
             return posterior_sample(st, samples_prior(samples), beta)
-        amp, phase = (np.stack(v) for v in zip(*(x.polar() for x in samples)))
-        return posterior_sample(st, stacked_prior(st.mean, np.stack([x.omega for x in samples]), amp, phase,
-                                                  np.array([[x.scale] for x in samples])), beta)
+        return posterior_sample(st, stacked_prior(st.mean, *stacked_parts(samples)), beta)
 
 
 def _per_replicate_draws(rule, st, rngs) -> list[PathwiseDraws]:
